@@ -1,0 +1,189 @@
+"""The Python API: from a spec to a :class:`Model` (design + hypotheses + findings) and its files.
+
+``groupmodel build`` on the command line is :func:`build` followed by :meth:`Model.write`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .checks import Finding, cell_counts_by_term, check_design, condition_number, matrix_rank, variance_inflation
+from .design import Design, build_design
+from .errors import ModelError
+from .hypotheses import Hypothesis, build_hypotheses
+from .outputs import OutputFolder
+from .spec import ModelSpec, load_spec
+from .table import Sample, select_sample
+
+DISCLAIMER = "groupmodel output supports research; it is not a clinical or diagnostic tool."
+
+
+@dataclass
+class Model:
+    """A built model: the sample, the design, the hypotheses and what the checks found.
+
+    Attributes
+    ----------
+    spec : ModelSpec
+    sample : Sample
+        Included observations and the list of exclusions with reasons.
+    design : Design
+    hypotheses : dict
+        Name -> Hypothesis, in spec order.
+    findings : list of Finding
+        Design checks, level notes and hypothesis problems.
+    """
+
+    spec: ModelSpec
+    sample: Sample
+    design: Design
+    hypotheses: dict[str, Hypothesis]
+    findings: list[Finding] = field(default_factory=list)
+
+    @property
+    def errors(self) -> list[Finding]:
+        return [f for f in self.findings if f.severity == "error"]
+
+    @property
+    def warnings(self) -> list[Finding]:
+        return [f for f in self.findings if f.severity == "warning"]
+
+    def raise_for_errors(self) -> None:
+        """Raise a ModelError carrying every error finding (exit code 1)."""
+        if self.errors:
+            raise ModelError(" | ".join(f.message for f in self.errors))
+
+    # ----- tables --------------------------------------------------------------------------------
+    def design_frame(self) -> pd.DataFrame:
+        frame = pd.DataFrame(self.design.matrix, columns=self.design.column_names)
+        frame.insert(0, "participant_id", self.design.participant_ids)
+        return frame
+
+    def contrast_rows(self) -> tuple[np.ndarray, list[str], list[str]]:
+        """All contrast rows stacked (q_total, p), with 'name row' labels and each row's test."""
+        rows, labels, tests = [], [], []
+        for h in self.hypotheses.values():
+            for i, r in enumerate(h.weights):
+                rows.append(r)
+                labels.append(h.name if h.n_rows == 1 else f"{h.name} {i + 1}")
+                tests.append(h.test)
+        matrix = np.array(rows) if rows else np.zeros((0, self.design.n_columns))
+        return matrix, labels, tests
+
+    def contrasts_frame(self) -> pd.DataFrame:
+        records = []
+        for h in self.hypotheses.values():
+            for i, r in enumerate(h.weights):
+                records.append({"hypothesis": h.name, "row": i + 1, **dict(zip(self.design.column_names, r,
+                                                                             strict=True))})
+        return pd.DataFrame(records, columns=["hypothesis", "row", *self.design.column_names])
+
+    # ----- sidecars ------------------------------------------------------------------------------
+    def design_sidecar(self) -> dict[str, Any]:
+        d = self.design
+        s = np.linalg.svd(d.matrix, compute_uv=False)
+        return {
+            "software": "groupmodel",
+            "software_version": __version__,
+            "note": DISCLAIMER,
+            "spec": str(self.spec.path),
+            "participants": str(self.sample.source),
+            "n_observations": d.n_observations,
+            "columns": d.column_sidecar(),
+            "factors": {f: c.as_dict() for f, c in d.factors.items()},
+            "covariates": {c: v.as_dict() for c, v in d.covariates.items()},
+            "intercept": d.intercept,
+            "terms": [":".join(t) if t else "intercept" for t in d.terms],
+            "rank": matrix_rank(d.matrix),
+            "rank_tolerance": "largest singular value x max(n, p) x machine epsilon",
+            "singular_values": s.tolist(),
+            "condition_number": condition_number(d.matrix),
+            "condition_number_scaling": "columns scaled to unit length",
+            "variance_inflation": variance_inflation(d.matrix, d.column_names),
+            "cell_counts": cell_counts_by_term(d),
+            "cells": [
+                {"cell": dict(zip(d.factors, c, strict=True)), "count": int(k), "design_row": r.tolist()}
+                for c, k, r in zip(d.cells, d.cell_counts, d.cell_rows(), strict=True)
+            ],
+            "excluded": [e.as_dict() for e in self.sample.exclusions],
+            "findings": [f.as_dict() for f in self.findings],
+        }
+
+    def contrasts_sidecar(self) -> dict[str, Any]:
+        return {
+            "software": "groupmodel",
+            "software_version": __version__,
+            "note": DISCLAIMER,
+            "columns": self.design.column_names,
+            "hypotheses": {name: h.as_dict(self.design) for name, h in self.hypotheses.items()},
+        }
+
+    # ----- engine view ---------------------------------------------------------------------------
+    def tests(self) -> list[Any]:
+        """The hypotheses as engine tests (:class:`groupmodel.ols.Test`)."""
+        from .ols import Test
+
+        return [Test(h.name, h.weights, h.test, h.tail) for h in self.hypotheses.values()]
+
+    # ----- files ---------------------------------------------------------------------------------
+    def write_into(self, out: OutputFolder, pictures: bool = True) -> list[str]:
+        """Write design and contrast files into an open output folder; returns the file names."""
+        out.write_tsv("design.tsv", self.design_frame())
+        out.write_json("design.json", self.design_sidecar())
+        out.write_tsv("contrasts.tsv", self.contrasts_frame())
+        out.write_json("contrasts.json", self.contrasts_sidecar())
+        names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+        if pictures:
+            from .figures import plot_contrasts, plot_design
+
+            plot_design(out.file("design.png"), self.design.matrix, self.design.column_names,
+                        self.design.participant_ids)
+            rows, labels, tests = self.contrast_rows()
+            plot_contrasts(out.file("contrasts.png"), rows, labels, self.design.column_names, tests)
+            names += ["design.png", "contrasts.png"]
+        return names
+
+    def write(self, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
+        """Write the design files atomically into ``out``; refuses a model with errors (ModelError)."""
+        folder = OutputFolder(out, force=force)
+        self.raise_for_errors()
+        with folder as o:
+            self.write_into(o, pictures=pictures)
+        return Path(out)
+
+
+def build(spec: ModelSpec | Path | str, numeric_columns: Sequence[str] = ()) -> Model:
+    """Build the model of a spec: read the table, build the design and hypotheses, run the checks.
+
+    Parameters
+    ----------
+    spec : ModelSpec or path
+    numeric_columns : sequence of str
+        Extra numeric columns every included row must have (e.g. the outcome of a table-level fit).
+
+    Returns
+    -------
+    Model
+        Problems of the model (rank deficiency, non-estimable hypotheses) are in ``model.findings`` with
+        severity ``error``; unreadable or invalid input raises at once.
+    """
+    if not isinstance(spec, ModelSpec):
+        spec = load_spec(spec)
+    sample = select_sample(spec, numeric_columns=numeric_columns)
+    design = build_design(spec, sample)
+    findings = [Finding("note", "levels", n) for n in sample.notes]
+    findings += check_design(design)
+    hypotheses = build_hypotheses(design, spec.hypotheses)
+    for h in hypotheses.values():
+        for problem in h.problems:
+            findings.append(Finding("error", "not_estimable", f"hypothesis {h.name} is not estimable: {problem}"))
+        for note in h.notes:
+            findings.append(Finding("note", "hypothesis_rows", f"hypothesis {h.name}: {note}"))
+    return Model(spec, sample, design, hypotheses, findings)

@@ -1,0 +1,144 @@
+"""Atomic writing of output folders: TSV tables, JSON sidecars, images.
+
+All files of one run are written into a hidden temporary folder beside the
+requested one and renamed into place only when every file has been written,
+so an interrupted or failed run leaves nothing half-written.  An existing,
+non-empty output folder is refused unless ``force`` is set.
+
+This module knows nothing about statistics.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from types import TracebackType
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import OutputError
+
+#: Text written for a missing value in every TSV groupmodel writes (BIDS convention).
+NA = "n/a"
+
+
+def _jsonable(value: Any) -> Any:
+    """Convert numpy scalars/arrays and non-finite floats into plain JSON values."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [_jsonable(v) for v in value.tolist()]
+    if isinstance(value, np.generic):
+        return _jsonable(value.item())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None if math.isnan(value) else ("inf" if value > 0 else "-inf")
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
+def dumps_json(obj: Any) -> str:
+    """JSON text with 2-space indents, numpy values converted, non-finite floats made explicit."""
+    return json.dumps(_jsonable(obj), indent=2, ensure_ascii=False) + "\n"
+
+
+def format_tsv(frame: pd.DataFrame, float_format: str | None = None) -> str:
+    """Tab-separated text with ``n/a`` for missing values and shortest round-trip floats."""
+    return frame.to_csv(sep="\t", index=False, na_rep=NA, float_format=float_format, lineterminator="\n")
+
+
+class OutputFolder:
+    """A folder whose contents appear all at once.
+
+    Use as a context manager::
+
+        with OutputFolder(Path("design"), force=False) as out:
+            out.write_text("design.tsv", text)
+        # design/ now exists with every file, or not at all
+
+    Parameters
+    ----------
+    target : Path
+        The folder the user asked for.
+    force : bool
+        Replace an existing non-empty folder.  Without it such a folder is an
+        :class:`~groupmodel.errors.OutputError` raised at construction, before
+        any work is done.
+    """
+
+    def __init__(self, target: Path | str, force: bool = False) -> None:
+        self.target = Path(target)
+        self.force = force
+        if self.target.exists():
+            if not self.target.is_dir():
+                raise OutputError(
+                    f"--out {self.target}: expected a folder, found a file; choose another path"
+                )
+            if any(self.target.iterdir()) and not force:
+                raise OutputError(
+                    f"--out {self.target}: the folder exists and is not empty; "
+                    "choose another path or add --force to replace it"
+                )
+        parent = self.target.parent if str(self.target.parent) else Path(".")
+        if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
+            raise OutputError(f"--out {self.target}: the folder {parent} is not writable; choose another path")
+        self.path: Path | None = None
+
+    def __enter__(self) -> OutputFolder:
+        parent = self.target.parent if str(self.target.parent) else Path(".")
+        try:
+            parent.mkdir(parents=True, exist_ok=True)
+            self.path = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.partial-", dir=parent))
+        except OSError as exc:
+            raise OutputError(
+                f"--out {self.target}: cannot create a folder there ({exc.strerror}); choose another path"
+            ) from exc
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        assert self.path is not None
+        if exc_type is not None:
+            shutil.rmtree(self.path, ignore_errors=True)
+            return
+        try:
+            if self.target.exists():
+                old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-", dir=self.path.parent))
+                os.rename(self.target, old / "previous")
+                os.rename(self.path, self.target)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                os.rename(self.path, self.target)
+        except OSError as exc2:
+            shutil.rmtree(self.path, ignore_errors=True)
+            raise OutputError(f"--out {self.target}: could not move results into place ({exc2})") from exc2
+
+    def file(self, name: str) -> Path:
+        """Path inside the temporary folder for ``name`` (sub-folders are created)."""
+        assert self.path is not None, "use OutputFolder as a context manager"
+        p = self.path / name
+        p.parent.mkdir(parents=True, exist_ok=True)
+        return p
+
+    def write_text(self, name: str, text: str) -> Path:
+        p = self.file(name)
+        p.write_text(text, encoding="utf-8")
+        return p
+
+    def write_json(self, name: str, obj: Any) -> Path:
+        return self.write_text(name, dumps_json(obj))
+
+    def write_tsv(self, name: str, frame: pd.DataFrame) -> Path:
+        return self.write_text(name, format_tsv(frame))

@@ -1,0 +1,305 @@
+"""Read ``participants.tsv`` and select the observations a model uses.
+
+Every value is read as text first (so numeric-looking factor levels stay
+strings, e.g. ``"0.5"``); covariates are converted to numbers afterwards with
+an error naming the row and column of any text that is not a number.  Rows are
+left out for three reasons only -- the spec's ``exclude`` list, its ``include``
+filter, or a missing value (``n/a``) in a column the model reads -- and each
+left-out row is listed with its reason.  Nothing vanishes silently.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import SpecError, TableError
+from .spec import ModelSpec
+
+#: Values read as missing.  ``n/a`` is the BIDS marker; an empty field is not valid BIDS but means the same.
+MISSING = ("n/a", "")
+
+
+@dataclass(frozen=True)
+class Exclusion:
+    """One left-out row of the table.
+
+    ``row`` is the 1-based data row in the file (the header is row 0).
+    """
+
+    participant_id: str
+    row: int
+    reason: str
+
+    def as_dict(self) -> dict[str, object]:
+        return {"participant_id": self.participant_id, "row": self.row, "reason": self.reason}
+
+
+@dataclass(frozen=True)
+class Sample:
+    """The observations a model is fitted to, and the account of who was left out.
+
+    Attributes
+    ----------
+    data : pandas.DataFrame
+        One row per included observation, in table order, with ``participant_id``, a ``row`` column (1-based
+        data row in the file), factor columns as text and covariate / outcome columns as float64.
+    exclusions : tuple of Exclusion
+        Every left-out row with its reason, in table order.
+    levels : dict
+        Factor name -> its levels in declared order (after dropping undeclared-but-unobserved ones).
+    notes : list of str
+        Remarks on how levels were chosen (printed as notes).
+    """
+
+    data: pd.DataFrame
+    exclusions: tuple[Exclusion, ...]
+    levels: dict[str, tuple[str, ...]]
+    source: Path
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def n(self) -> int:
+        return len(self.data)
+
+    @property
+    def participant_ids(self) -> list[str]:
+        return self.data["participant_id"].tolist()
+
+
+def read_table(path: Path) -> pd.DataFrame:
+    """Read a BIDS participants table as text.
+
+    Returns
+    -------
+    pandas.DataFrame
+        All columns as Python ``str`` (object dtype), stripped of surrounding white space.
+
+    Raises
+    ------
+    TableError
+        Missing or unreadable file, not tab-separated, no ``participant_id`` column, duplicate ids.
+    """
+    name = path.name
+    if not path.exists():
+        raise TableError(f"participants table {path}: file not found; check the path in the model spec")
+    if path.is_dir():
+        raise TableError(f"participants table {path}: expected a TSV file, found a folder; give the file")
+    try:
+        with open(path, encoding="utf-8-sig", newline="") as fh:
+            lines = fh.read().splitlines()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise TableError(f"participants table {path}: cannot be read as UTF-8 text ({exc}); check the file") from None
+    lines = [ln for ln in lines if ln.strip()]
+    if not lines:
+        raise TableError(f"{name}: the file is empty; expected a header row starting with participant_id")
+    header = lines[0].split("\t")
+    if len(header) == 1 and ("," in lines[0] or ";" in lines[0]):
+        raise TableError(
+            f"{name} line 1: expected tab-separated columns, found {lines[0][:40]!r} with no tabs; "
+            "save the table as TSV (tab-separated)"
+        )
+    header = [h.strip() for h in header]
+    if "participant_id" not in header:
+        raise TableError(
+            f"{name} line 1: expected a participant_id column, found columns {header}; "
+            "add participant_id as the first column (BIDS)"
+        )
+    if len(set(header)) != len(header):
+        dup = sorted({h for h in header if header.count(h) > 1})
+        raise TableError(f"{name} line 1: column names {dup} appear more than once; rename them")
+    rows = []
+    for i, ln in enumerate(lines[1:], start=2):
+        fields = next(csv.reader([ln], delimiter="\t", quoting=csv.QUOTE_NONE))
+        if len(fields) != len(header):
+            raise TableError(
+                f"{name} line {i}: expected {len(header)} tab-separated fields, found {len(fields)}; "
+                "fix the row (use n/a for a missing value)"
+            )
+        rows.append([f.strip() for f in fields])
+    frame = pd.DataFrame(rows, columns=header, dtype=object)
+    ids = frame["participant_id"]
+    missing_id = [i + 1 for i, v in enumerate(ids) if v in MISSING]
+    if missing_id:
+        raise TableError(f"{name} row {missing_id[0]}: participant_id is missing; give every row an id")
+    dup_mask = ids.duplicated(keep=False)
+    if dup_mask.any():
+        first = ids[dup_mask].iloc[0]
+        where = [i + 1 for i, v in enumerate(ids) if v == first]
+        raise TableError(
+            f"{name} rows {where}: participant_id {first!r} appears {len(where)} times; "
+            "each participant must have one row"
+        )
+    return frame
+
+
+def read_sidecar_levels(path: Path | None) -> dict[str, tuple[str, ...]]:
+    """Levels declared in a BIDS ``participants.json`` (column -> keys of its ``Levels``)."""
+    if path is None:
+        return {}
+    try:
+        raw = json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise TableError(f"participants sidecar {path}: file not found; fix participants_sidecar in the spec") from None
+    except json.JSONDecodeError as exc:
+        raise TableError(
+            f"participants sidecar {path} line {exc.lineno}, column {exc.colno}: invalid JSON ({exc.msg}); "
+            "fix the syntax"
+        ) from None
+    out: dict[str, tuple[str, ...]] = {}
+    if isinstance(raw, dict):
+        for col, desc in raw.items():
+            if isinstance(desc, dict) and isinstance(desc.get("Levels"), dict):
+                out[col] = tuple(str(k) for k in desc["Levels"])
+    return out
+
+
+def _to_number(value: str) -> float | None:
+    try:
+        x = float(value)
+    except ValueError:
+        return None
+    return x if np.isfinite(x) else None
+
+
+def select_sample(
+    spec: ModelSpec,
+    table: pd.DataFrame | None = None,
+    sidecar_levels: dict[str, tuple[str, ...]] | None = None,
+    numeric_columns: Sequence[str] = (),
+) -> Sample:
+    """Apply exclude, include and missing-value rules and resolve factor levels.
+
+    Parameters
+    ----------
+    spec : ModelSpec
+    table : DataFrame, optional
+        The table as text (default: read ``spec.participants``).
+    sidecar_levels : dict, optional
+        Levels from participants.json (default: read ``spec.participants_sidecar``).
+    numeric_columns : sequence of str
+        Further numeric columns that must be present (e.g. the outcome of a table-level fit); a row with
+        ``n/a`` there is left out like any other missing value.
+    """
+    if table is None:
+        table = read_table(spec.participants)
+    if sidecar_levels is None:
+        sidecar_levels = read_sidecar_levels(spec.participants_sidecar)
+    name = spec.participants.name
+    factors = spec.model_factors()
+    covariates = list(spec.model_covariates()) + [c for c in numeric_columns if c not in spec.model_covariates()]
+    needed = list(spec.columns_used()) + [c for c in numeric_columns if c not in spec.columns_used()]
+    for col in list(needed) + list(spec.include):
+        if col not in table.columns:
+            where = "$.include" if col in spec.include and col not in needed else "the model"
+            raise TableError(
+                f"{name}: column {col!r} used by {spec.name} {where} is not in the table "
+                f"(columns {list(table.columns)}); fix the name in the spec or add the column"
+            )
+    known = set(table["participant_id"])
+    unknown = [p for p in spec.exclude if p not in known]
+    if unknown:
+        raise SpecError(
+            f"{spec.name} $.exclude: participant_id {unknown[0]!r} is not in {name}; fix or remove the id"
+        )
+
+    exclusions: list[Exclusion] = []
+    keep: list[int] = []
+    excluded_ids = set(spec.exclude)
+    for i, rec in enumerate(table.to_dict("records")):
+        pid = rec["participant_id"]
+        row = i + 1
+        if pid in excluded_ids:
+            exclusions.append(Exclusion(pid, row, f"listed in {spec.name} exclude"))
+            continue
+        filtered = next(
+            (c for c, allowed in spec.include.items() if rec[c] not in allowed), None
+        )
+        if filtered is not None:
+            exclusions.append(
+                Exclusion(pid, row, f"column {filtered} is {rec[filtered]!r}, not in include {list(spec.include[filtered])}")
+            )
+            continue
+        missing = [c for c in needed if rec[c] in MISSING]
+        if missing:
+            what = ", ".join(missing)
+            exclusions.append(Exclusion(pid, row, f"missing value (n/a) in column {what}"))
+            continue
+        keep.append(i)
+
+    data = table.iloc[keep].reset_index(drop=True)
+    rows = [i + 1 for i in keep]
+    out = pd.DataFrame({"participant_id": data["participant_id"].tolist(), "row": rows})
+    notes: list[str] = []
+    levels: dict[str, tuple[str, ...]] = {}
+    for f in factors:
+        fs = spec.factors[f]
+        values = data[f].tolist()
+        observed = list(dict.fromkeys(values))
+        if fs.levels is not None:
+            declared: tuple[str, ...] = fs.levels
+            source = f"{spec.name} factors.{f}.levels"
+        elif f in sidecar_levels:
+            declared = sidecar_levels[f]
+            source = f"{spec.participants_sidecar.name if spec.participants_sidecar else 'participants.json'} {f}.Levels"
+        else:
+            declared = tuple(sorted(observed))
+            source = ""
+        if source:
+            for r, v in zip(rows, values, strict=True):
+                if v not in declared:
+                    raise TableError(
+                        f"{name} row {r}, column {f!r}: level {v!r} is not declared in {source} {list(declared)}; "
+                        "fix the value or add the level"
+                    )
+        if fs.levels is None and source:
+            unused = [lv for lv in declared if lv not in observed]
+            if unused:
+                notes.append(
+                    f"factor {f}: level(s) {unused} from {source} have no included participant and are left out "
+                    "of the design"
+                )
+                declared = tuple(lv for lv in declared if lv in observed)
+        if fs.reference is not None and fs.reference not in declared:
+            raise SpecError(
+                f"{spec.name} $.factors.{f}.reference: expected one of the levels {list(declared)}, "
+                f"found {fs.reference!r}; fix the reference"
+            )
+        if fs.scores is not None and len(fs.scores) != len(declared):
+            raise SpecError(
+                f"{spec.name} $.factors.{f}.scores: expected {len(declared)} scores (one per level "
+                f"{list(declared)}), found {len(fs.scores)}; give one score per level"
+            )
+        if len(declared) < 2:
+            raise TableError(
+                f"{name} column {f!r}: a factor needs at least 2 levels among the included participants, "
+                f"found {list(declared)}; drop the factor from the terms or check include/exclude"
+            )
+        levels[f] = declared
+        out[f] = pd.Series(values, dtype=object)
+    extra_factor_cols = [c for c in needed if c not in factors and c not in covariates]
+    for c in extra_factor_cols:  # within-centring factors that are not model terms
+        out[c] = pd.Series(data[c].tolist(), dtype=object)
+    for c in covariates:
+        nums = []
+        for r, v in zip(rows, data[c].tolist(), strict=True):
+            x = _to_number(v)
+            if x is None:
+                raise TableError(
+                    f"{name} row {r}, column {c!r}: expected a number, found {v!r}; "
+                    "fix the value (use n/a for a missing value) or declare the column as a factor"
+                )
+            nums.append(x)
+        out[c] = np.asarray(nums, dtype=float)
+    return Sample(data=out, exclusions=tuple(exclusions), levels=levels, source=spec.participants, notes=notes)
+
+
+def format_exclusions(exclusions: Iterable[Exclusion]) -> list[str]:
+    """One readable line per left-out row."""
+    return [f"{e.participant_id} (row {e.row}): {e.reason}" for e in exclusions]

@@ -233,7 +233,8 @@ class Design:
         levels = dict(zip(self.factors, cell, strict=True))
         hold = self.hold_values(cell, at)
         transformed = {
-            n: float(c.transform(hold[n], levels.get(c.within) if c.within else None)) for n, c in self.covariates.items()
+            n: float(c.transform(hold[n], levels.get(c.within) if c.within else None))
+            for n, c in self.covariates.items()
         }
         hi = self._row_transformed(levels, {**transformed, covariate: 1.0})
         lo = self._row_transformed(levels, {**transformed, covariate: 0.0})

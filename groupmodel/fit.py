@@ -123,4 +123,285 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
     }
 
 
-__all__ = ["TableFit", "fit_table", "write_table_fit", "results_table", "InputError"]
+
+# --------------------------------------------------------------------------------------------------
+# Voxelwise fit
+# --------------------------------------------------------------------------------------------------
+#: Share of --memory given to the image data matrix; the rest is for one chunk's work and the result maps.
+DATA_SHARE = 0.6
+#: Maps written for each kind of test (statistic names as in the sidecars).
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p")
+F_MAPS = ("F", "z", "p", "mlog10p")
+_INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
+            "mlog10p": "none", "residual_variance": "estimate"}
+
+
+@dataclass
+class VoxelFit:
+    """Maps of a voxelwise fit, in mask order, plus what is needed to write them.
+
+    Attributes
+    ----------
+    model : Model
+    grid : groupmodel.images.Grid
+    mask : ndarray of bool, shape grid.shape
+    maps : dict
+        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``) ->
+        float64 array of shape (n_in_mask,).
+    residual_variance : ndarray, shape (n_in_mask,)
+    df_resid : int
+    mask_report : dict
+        Voxel counts of the mask (in mask, left out for NaN/inf, left out for zero everywhere).
+    dropped : list of (participant_id, reason)
+        Participants left out for missing images (with --drop-missing-images).
+    """
+
+    model: Model
+    grid: Any
+    mask: np.ndarray
+    maps: dict[str, dict[str, np.ndarray]]
+    residual_variance: np.ndarray
+    df_resid: int
+    mask_report: dict[str, int]
+    dropped: list[tuple[str, str]]
+    warnings: list[str]
+    inference: dict[str, Any] | None = None
+
+    def summary(self) -> pd.DataFrame:
+        """Per hypothesis: test, df, peak |statistic|, peak z, voxels with p < 0.001 and p < 0.05 (uncorrected)."""
+        rows = []
+        for h in self.model.hypotheses.values():
+            m = self.maps[h.name]
+            stat = m["t"] if h.test == "t" else m["F"]
+            rows.append({
+                "hypothesis": h.name,
+                "test": h.test,
+                "tail": h.tail,
+                "df1": h.n_rows,
+                "df2": self.df_resid,
+                "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if stat.size else np.nan,
+                "peak_z": float(np.nanmax(m["z"])) if stat.size else np.nan,
+                "voxels_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
+                "voxels_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
+            })
+        return pd.DataFrame(rows)
+
+
+def _progress(total: int, desc: str) -> Any:
+    """A tqdm bar on a terminal, nothing otherwise."""
+    import sys
+
+    if not sys.stderr.isatty():
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, desc=desc, unit="vox", leave=False)
+
+
+def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, list[tuple[str, str]]]:
+    """Resolve and check the images of a model's observations; rebuild the model if some are dropped.
+
+    Returns
+    -------
+    model : Model
+        With participants without images left out (listed among the exclusions) when ``drop_missing``.
+    source : groupmodel.images.ImageSource
+        Checked, in design-row order.
+    dropped : list of (participant_id, reason)
+    """
+    from .images import check_images, resolve_images
+    from .table import read_table
+
+    spec = model.spec
+    if not spec.images:
+        raise InputError(
+            f'{spec.name}: expected an "images" entry (a path pattern such as '
+            '"maps/{participant_id}_effect.nii.gz", a column of paths, or one 4-D file); found none; '
+            "add it, or fit one table column with --outcome"
+        )
+    table = read_table(spec.participants)
+    file_rows = [r - 1 for r in model.sample.data["row"]]
+    rows = table.iloc[file_rows].reset_index(drop=True)
+    source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
+                            source_label=f'{spec.name} "images"', file_rows=file_rows, n_file_rows=len(table))
+    source, dropped = check_images(source, drop_missing=drop_missing)
+    if dropped:
+        extra = {pid: reason for pid, reason in dropped}
+        model = build(spec, extra_exclusions=extra)
+        rows = table.iloc[[r - 1 for r in model.sample.data["row"]]].reset_index(drop=True)
+        source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
+                                source_label=f'{spec.name} "images"')
+        source, _ = check_images(source)
+    return model, source, dropped
+
+
+def fit_images(
+    spec: ModelSpec | Path | str,
+    mask: Path | str | None = None,
+    memory_bytes: int = 2 * 1024**3,
+    drop_missing: bool = False,
+    chunk_voxels: int | None = None,
+    progress: bool = True,
+) -> VoxelFit:
+    """Fit every hypothesis of ``spec`` at every voxel of its images.
+
+    Parameters
+    ----------
+    spec : ModelSpec or path
+    mask : path, optional
+        Mask image on the grid of the images (default: the spec's ``mask``, else every voxel finite in all
+        images and nonzero in some).
+    memory_bytes : int
+        Budget for image data and working arrays (bytes).
+    drop_missing : bool
+        Leave out participants whose image is missing (listed) instead of stopping.
+    chunk_voxels : int, optional
+        Voxels per chunk (default: from the budget).  Results do not depend on it.
+    progress : bool
+        Show a progress bar when stderr is a terminal.
+    """
+    from .images import chunk_size_for, load_masked
+
+    if not isinstance(spec, ModelSpec):
+        spec = load_spec(spec)
+    model = build(spec)
+    _require_fittable(model)
+    model, source, dropped = open_images(model, drop_missing)
+    _require_fittable(model)
+    tests = model.tests()
+    prepared = prepare(model.design.matrix, tests)
+    mask_path = mask if mask is not None else spec.mask
+    data = load_masked(source, mask_path, int(memory_bytes * DATA_SHARE))
+    try:
+        n_vox = data.n_in_mask
+        maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
+                for h in model.hypotheses.values()}
+        resid_var = np.empty(n_vox)
+        if chunk_voxels is None:
+            n_maps = sum(len(m) for m in maps.values()) + 1
+            work = max(memory_bytes * (1 - DATA_SHARE) - n_maps * n_vox * 8, memory_bytes * 0.1)
+            chunk_voxels = chunk_size_for(model.design.n_observations, len(tests), int(work))
+        bar = _progress(n_vox, "fitting") if progress else None
+        for cols, y in data.chunks(chunk_voxels):
+            res = fit_chunk(prepared, y)
+            resid_var[cols] = res.residual_variance
+            for h in model.hypotheses.values():
+                r = res[h.name]
+                m = maps[h.name]
+                if h.test == "t":
+                    m["effect"][cols] = r.effect
+                    m["se"][cols] = r.se
+                    m["t"][cols] = r.statistic
+                else:
+                    m["F"][cols] = r.statistic
+                m["z"][cols] = r.z
+                m["p"][cols] = r.p
+                m["mlog10p"][cols] = r.mlog10p
+            if bar is not None:
+                bar.update(cols.stop - cols.start)
+        if bar is not None:
+            bar.close()
+        report = {
+            "voxels_in_mask": int(n_vox),
+            "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
+            "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
+            "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
+        }
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
+                        list(data.warnings))
+    finally:
+        data.close()
+
+
+def _map_name(grid: Any, stem: str) -> str:
+    return stem + (".gii" if grid.kind == "gifti" else ".nii.gz")
+
+
+def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
+    """The JSON sidecar of one map."""
+    out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
+    if name is not None:
+        h = fit.model.hypotheses[name]
+        out.update({
+            "test": h.test,
+            "statement": h.statement,
+            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
+            "df1": h.n_rows,
+            "df2": fit.df_resid,
+            "tail": h.tail,
+        })
+    else:
+        out.update({"df2": fit.df_resid})
+    out.update(extra)
+    out.update({"software": "groupmodel", "software_version": __version__, "note": DISCLAIMER})
+    return out
+
+
+def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
+                    extra_writer: Any = None) -> list[str]:
+    """Write every map with its sidecar, the mask, the design files and a summary, atomically."""
+    from .images import write_map, write_mask
+
+    folder = OutputFolder(out, force=force)
+    written: list[str] = []
+    with folder as o:
+        written += fit.model.write_into(o)
+        for h in fit.model.hypotheses.values():
+            for stat, values in fit.maps[h.name].items():
+                fname = _map_name(fit.grid, f"{h.name}_{stat}")
+                intent = None
+                if stat == "t":
+                    intent = ("t test", (fit.df_resid,))
+                elif stat == "F":
+                    intent = ("f test", (h.n_rows, fit.df_resid))
+                elif stat in ("z", "p"):
+                    intent = (_INTENTS[stat], ())
+                write_map(o.file(fname), values, fit.mask, fit.grid, intent=intent,
+                          description=f"groupmodel {h.name} {stat}"[:79])
+                o.write_json(fname.split(".")[0] + ".json", map_sidecar(fit, h.name, stat))
+                written.append(fname)
+        fname = _map_name(fit.grid, "residual_variance")
+        write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")
+        o.write_json("residual_variance.json", map_sidecar(fit, None, "residual_variance"))
+        mname = _map_name(fit.grid, "mask")
+        write_mask(o.file(mname), fit.mask, fit.grid)
+        o.write_json("mask.json", {"statistic": "mask", **fit.mask_report, "software_version": __version__})
+        written += [fname, mname]
+        o.write_tsv("summary.tsv", fit.summary())
+        o.write_json("summary.json", {
+            "software": "groupmodel", "software_version": __version__, "note": DISCLAIMER,
+            "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
+            "df_resid": fit.df_resid, "mask": fit.mask_report,
+            "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+            "warnings": fit.warnings, "inference": fit.inference,
+        })
+        written += ["summary.tsv", "summary.json"]
+        if extra_writer is not None:
+            written += extra_writer(o)
+    return written
+
+
+def run_voxelwise_cli(args: Any) -> int:
+    """``groupmodel fit`` without --outcome: fit, print a summary, write the maps."""
+    fit = fit_images(args.spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images)
+    m = fit.model
+    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
+          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
+          f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
+    if m.sample.exclusions:
+        print(f"excluded {len(m.sample.exclusions)}:")
+        for e in m.sample.exclusions:
+            print(f"  {e.participant_id} (row {e.row}): {e.reason}")
+    for w in fit.warnings:
+        print(f"  warning: {w}")
+    for h in m.hypotheses.values():
+        print(f"  {h.name} [{h.test}]: {h.statement}")
+    print(fit.summary().to_string(index=False))
+    write_voxel_fit(fit, args.out, force=args.force)
+    print(f"wrote {args.out}")
+    print(DISCLAIMER)
+    return 0
+
+
+__all__ = ["TableFit", "VoxelFit", "fit_table", "fit_images", "write_table_fit", "write_voxel_fit",
+           "results_table", "InputError"]

@@ -204,7 +204,9 @@ def _parse_at(design: Design, body: Mapping[str, Any], hname: str) -> tuple[dict
     for key, value in (body.get("at") or {}).items():
         if key in design.factors:
             if not isinstance(value, str):
-                raise SpecError(f"hypotheses.{hname}.at.{key}: expected a level (text) of factor {key}, found {value!r}")
+                raise SpecError(
+                    f"hypotheses.{hname}.at.{key}: expected a level (text) of factor {key}, found {value!r}"
+                )
             _require_level(design, key, value, f"at.{key}", hname)
             at_levels[key] = value
         elif key in design.covariates:

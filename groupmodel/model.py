@@ -5,7 +5,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -159,7 +159,11 @@ class Model:
         return Path(out)
 
 
-def build(spec: ModelSpec | Path | str, numeric_columns: Sequence[str] = ()) -> Model:
+def build(
+    spec: ModelSpec | Path | str,
+    numeric_columns: Sequence[str] = (),
+    extra_exclusions: Mapping[str, str] | None = None,
+) -> Model:
     """Build the model of a spec: read the table, build the design and hypotheses, run the checks.
 
     Parameters
@@ -167,6 +171,8 @@ def build(spec: ModelSpec | Path | str, numeric_columns: Sequence[str] = ()) -> 
     spec : ModelSpec or path
     numeric_columns : sequence of str
         Extra numeric columns every included row must have (e.g. the outcome of a table-level fit).
+    extra_exclusions : mapping, optional
+        participant_id -> reason for rows a later stage leaves out (e.g. missing images).
 
     Returns
     -------
@@ -176,7 +182,7 @@ def build(spec: ModelSpec | Path | str, numeric_columns: Sequence[str] = ()) -> 
     """
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
-    sample = select_sample(spec, numeric_columns=numeric_columns)
+    sample = select_sample(spec, numeric_columns=numeric_columns, extra_exclusions=extra_exclusions)
     design = build_design(spec, sample)
     findings = [Finding("note", "levels", n) for n in sample.notes]
     findings += check_design(design)

@@ -137,9 +137,10 @@ def _schema_message(error: jsonschema.ValidationError, spec_name: str) -> str:
             "fix the spelling or remove the key"
         )
     if best.validator == "oneOf" and where.startswith("$.hypotheses"):
+        found = sorted(best.instance) if isinstance(best.instance, dict) else repr(best.instance)
         return (
             f"{spec_name} {where}: expected exactly one of the keys main, interaction, compare, mean, trend, "
-            f"slope, cells, weights; found {sorted(best.instance) if isinstance(best.instance, dict) else best.instance!r}; "
+            f"slope, cells, weights; found {found}; "
             "keep exactly one"
         )
     return f"{spec_name} {where}: {best.message}; fix the value to match the model spec schema (see README)"

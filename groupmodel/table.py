@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import csv
 import json
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -173,6 +173,7 @@ def select_sample(
     table: pd.DataFrame | None = None,
     sidecar_levels: dict[str, tuple[str, ...]] | None = None,
     numeric_columns: Sequence[str] = (),
+    extra_exclusions: Mapping[str, str] | None = None,
 ) -> Sample:
     """Apply exclude, include and missing-value rules and resolve factor levels.
 
@@ -186,6 +187,9 @@ def select_sample(
     numeric_columns : sequence of str
         Further numeric columns that must be present (e.g. the outcome of a table-level fit); a row with
         ``n/a`` there is left out like any other missing value.
+    extra_exclusions : mapping, optional
+        participant_id -> reason, for rows left out by a later stage (e.g. a missing image with
+        ``--drop-missing-images``); listed with the others.
     """
     if table is None:
         table = read_table(spec.participants)
@@ -218,12 +222,17 @@ def select_sample(
         if pid in excluded_ids:
             exclusions.append(Exclusion(pid, row, f"listed in {spec.name} exclude"))
             continue
+        if extra_exclusions and pid in extra_exclusions:
+            exclusions.append(Exclusion(pid, row, extra_exclusions[pid]))
+            continue
         filtered = next(
             (c for c, allowed in spec.include.items() if rec[c] not in allowed), None
         )
         if filtered is not None:
             exclusions.append(
-                Exclusion(pid, row, f"column {filtered} is {rec[filtered]!r}, not in include {list(spec.include[filtered])}")
+                Exclusion(
+                    pid, row, f"column {filtered} is {rec[filtered]!r}, not in include {list(spec.include[filtered])}"
+                )
             )
             continue
         missing = [c for c in needed if rec[c] in MISSING]
@@ -247,7 +256,8 @@ def select_sample(
             source = f"{spec.name} factors.{f}.levels"
         elif f in sidecar_levels:
             declared = sidecar_levels[f]
-            source = f"{spec.participants_sidecar.name if spec.participants_sidecar else 'participants.json'} {f}.Levels"
+            sidecar_name = spec.participants_sidecar.name if spec.participants_sidecar else "participants.json"
+            source = f"{sidecar_name} {f}.Levels"
         else:
             declared = tuple(sorted(observed))
             source = ""

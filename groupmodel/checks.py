@@ -64,12 +64,12 @@ def dependent_columns(matrix: np.ndarray, names: list[str]) -> list[str]:
     """
     kept: list[int] = []
     out = []
+    tol = rank_tolerance(matrix, np.linalg.svd(matrix, compute_uv=False)) * 10
     for j in range(matrix.shape[1]):
         trial = matrix[:, kept + [j]]
         s = np.linalg.svd(trial, compute_uv=False)
-        if s.size and s.min() > rank_tolerance(matrix, np.linalg.svd(matrix, compute_uv=False)) * 10 and (
-            s.min() / s.max() > 1e-10
-        ):
+        # More columns than rows: svd returns only n values, so the column is dependent whatever they are.
+        if s.size == trial.shape[1] and s.min() > tol and s.min() / s.max() > 1e-10:
             kept.append(j)
             continue
         if not np.any(matrix[:, j]):

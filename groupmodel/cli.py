@@ -120,19 +120,33 @@ def make_parser() -> argparse.ArgumentParser:
         help="audit hand-written design and contrast files",
         description="Read a design and contrast files written by hand or by other scripts and report, "
         "finding by finding, whether they match the participants (and images), are full rank and "
-        "estimable, and what each column encodes and each contrast tests.",
-        epilog="example:\n  groupmodel check --design design.txt --contrasts contrasts.txt "
-        "--participants participants.tsv --factors training,chronotype --json report.json\n\n"
+        "estimable, what each column encodes and what each contrast tests over cell means.",
+        epilog="examples:\n"
+        "  groupmodel check --design design.txt --contrasts contrasts.txt "
+        "--participants participants.tsv --factors training,chronotype --covariates age\n"
+        "  groupmodel check --design example_study/faulty/design.txt "
+        "--contrasts example_study/faulty/contrasts.txt \\\n"
+        "      --participants example_study/participants.tsv --spec example_study/model.json "
+        "--images example_study/faulty/images.txt --json report.json\n\n"
+        "Design rows follow participants.tsv (after the spec's n/a exclusions with --spec) unless the design "
+        "has a participant_id column.\n"
         "exit code 0 when no finding is an error, 1 when one is, 2 for unreadable input.",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    c.add_argument("--design", type=Path, required=True, help="design file (TSV/CSV with header, or numbers)")
-    c.add_argument("--contrasts", type=Path, help="contrast file (one row per contrast row)")
+    c.add_argument("--design", type=Path, required=True,
+                   help="design file: TSV/CSV with a header, or plain numbers; '#' lines are comments")
+    c.add_argument("--contrasts", type=Path,
+                   help="contrast file, one row per line; rows sharing a name (a first text column, or a "
+                   "hypothesis/contrast/name/label column) form one F test")
     c.add_argument("--participants", type=Path, required=True, help="participants.tsv the rows follow")
-    c.add_argument("--factors", help="comma-separated factor columns, e.g. training,chronotype")
-    c.add_argument("--covariates", help="comma-separated covariate columns, e.g. age")
-    c.add_argument("--spec", type=Path, help="a model spec to compare against")
-    c.add_argument("--images", type=Path, help="text file listing image paths in design-row order")
+    c.add_argument("--factors", help="comma-separated factor columns, e.g. training,chronotype (default: the "
+                   "spec's, or the table columns the design turns out to encode)")
+    c.add_argument("--covariates", help="comma-separated covariate columns, e.g. age (default: the spec's, or "
+                   "the numeric table columns the design turns out to use)")
+    c.add_argument("--spec", type=Path, help="a model spec to compare with: column space, and which of its "
+                   "hypotheses each contrast tests")
+    c.add_argument("--images", type=Path, help="text file listing image paths in design-row order; the "
+                   "sub-<label> in each path is compared with the row's participant")
     c.add_argument("--json", type=Path, help="also write the findings as JSON to this file")
     c.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
     return p
@@ -152,7 +166,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
     _report_model(model)
     if model.errors:
         print("nothing written: the model has errors (see above)")
-        return 1
+        model.raise_for_errors()  # the same one line on stderr and exit code 1 as every other error
     with folder as out:
         names = model.write_into(out, pictures=not args.no_pictures)
     print(f"wrote {args.out}: {', '.join(names)}")

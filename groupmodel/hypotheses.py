@@ -482,14 +482,20 @@ def interpret_weights(design: Design, rows: np.ndarray) -> tuple[np.ndarray | No
     statement : str
     """
     rows = np.atleast_2d(rows)
-    candidates: list[tuple[str | None, np.ndarray]] = [(None, design.cell_rows())]
+    candidates: list[tuple[str | None, np.ndarray, dict[str, float]]] = [(None, design.cell_rows(), {})]
+    # Raw weights on the columns of an uncentred (or value-centred) covariate model compare cells where the
+    # covariate's column is 0 (e.g. age = 0), not at its mean: try that too, and say so in the statement.
+    at_zero = {n: float(c.center) for n, c in design.covariates.items()
+               if c.within is None and not np.isclose(float(c.center), c.mean)}  # type: ignore[arg-type]
+    if at_zero:
+        candidates.append((None, design.cell_rows(at_zero), at_zero))
     for cov in design.covariates:
-        candidates.append((cov, np.array([design.cell_slope_row(c, cov) for c in design.cells])))
-    for slope_of, basis in candidates:
+        candidates.append((cov, np.array([design.cell_slope_row(c, cov) for c in design.cells]), {}))
+    for slope_of, basis, at in candidates:
         w = rows @ np.linalg.pinv(basis)
         if np.allclose(w @ basis, rows, atol=1e-8 * max(1.0, np.abs(rows).max())):
             texts = [describe_cell_weights(design, wr, slope_of) for wr in w]
-            return w, slope_of, "; and ".join(texts)
+            return w, slope_of, "; and ".join(texts) + _hold_phrase(design, at, skip=slope_of)
     return None, None, (
         "not a combination of cell means or of one covariate's slopes: it mixes intercepts and slopes, "
         "or involves columns that no cell's design row reaches"

@@ -16,7 +16,7 @@ import pandas as pd
 from . import __version__
 from .checks import Finding, cell_counts_by_term, check_design, condition_number, matrix_rank, variance_inflation
 from .design import Design, build_design
-from .errors import ModelError
+from .errors import ModelError, SpecError
 from .hypotheses import Hypothesis, build_hypotheses
 from .outputs import OutputFolder
 from .spec import ModelSpec, load_spec
@@ -186,7 +186,10 @@ def build(
     design = build_design(spec, sample)
     findings = [Finding("note", "levels", n) for n in sample.notes]
     findings += check_design(design)
-    hypotheses = build_hypotheses(design, spec.hypotheses)
+    try:
+        hypotheses = build_hypotheses(design, spec.hypotheses)
+    except SpecError as exc:  # name the spec file and give a JSON path, as every other spec error
+        raise SpecError(f"{spec.name} $.{exc}") from None
     for h in hypotheses.values():
         for problem in h.problems:
             findings.append(Finding("error", "not_estimable", f"hypothesis {h.name} is not estimable: {problem}"))

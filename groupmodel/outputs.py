@@ -88,6 +88,8 @@ class OutputFolder:
                     "choose another path or add --force to replace it"
                 )
         parent = self.target.parent if str(self.target.parent) else Path(".")
+        if parent.exists() and not parent.is_dir():
+            raise OutputError(f"--out {self.target}: {parent} is a file, not a folder; choose another path")
         if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
             raise OutputError(f"--out {self.target}: the folder {parent} is not writable; choose another path")
         self.path: Path | None = None

@@ -160,6 +160,13 @@ def parse_term(text: str) -> list[Term]:
     return out
 
 
+def _as_level(value: str | float) -> str:
+    """A spec value compared with table text: ``2`` and ``2.0`` both become ``"2"``."""
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value)
+
+
 def _read_json(path: Path) -> Any:
     try:
         text = path.read_text(encoding="utf-8")
@@ -255,7 +262,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
 
 
     exclude = tuple(raw.get("exclude", []))
-    include = {k: tuple(str(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
+    include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
     sidecar = raw.get("participants_sidecar")
     participants = base / raw["participants"]
     if sidecar is not None:

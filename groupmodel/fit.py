@@ -173,21 +173,23 @@ class VoxelFit:
         for h in self.model.hypotheses.values():
             m = self.maps[h.name]
             stat = m["t"] if h.test == "t" else m["F"]
+            # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
+            tested = ~np.isnan(stat)
             rows.append({
                 "hypothesis": h.name,
                 "test": h.test,
                 "tail": h.tail,
                 "df1": h.n_rows,
                 "df2": self.df_resid,
-                "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if stat.size else np.nan,
-                "peak_z": float(np.nanmax(m["z"])) if stat.size else np.nan,
+                "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
+                "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 "voxels_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
                 "voxels_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
             })
         return pd.DataFrame(rows)
 
 
-def _progress(total: int, desc: str) -> Any:
+def _progress(total: int, desc: str, unit: str = "vox") -> Any:
     """A tqdm bar on a terminal, nothing otherwise."""
     import sys
 
@@ -195,7 +197,7 @@ def _progress(total: int, desc: str) -> Any:
         return None
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit="vox", leave=False)
+    return tqdm(total=total, desc=desc, unit=unit, leave=False)
 
 
 def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, list[tuple[str, str]]]:
@@ -271,7 +273,19 @@ def fit_images(
     tests = model.tests()
     prepared = prepare(model.design.matrix, tests)
     mask_path = mask if mask is not None else spec.mask
-    data = load_masked(source, mask_path, int(memory_bytes * DATA_SHARE))
+    # Reading (decompressing) the images is usually the longest step: it gets its own bar.
+    read_bar = _progress(len(source), "reading images", unit="image") if progress else None
+
+    def images_read(done: int, total: int) -> None:
+        read_bar.update(done - read_bar.n)
+
+    try:
+        data = load_masked(source, mask_path, int(memory_bytes * DATA_SHARE),
+                           progress=None if read_bar is None else images_read)
+    finally:
+        if read_bar is not None:
+            read_bar.close()
+    bar = None
     try:
         n_vox = data.n_in_mask
         maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
@@ -299,8 +313,15 @@ def fit_images(
                 m["mlog10p"][cols] = r.mlog10p
             if bar is not None:
                 bar.update(cols.stop - cols.start)
-        if bar is not None:
-            bar.close()
+        warnings = list(data.warnings)
+        if maps:
+            first = next(iter(maps.values()))
+            n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+            if n_flat:
+                warnings.append(
+                    f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
+                    "value in every image: their t, F, z and p are NaN (not tested)"
+                )
         report = {
             "voxels_in_mask": int(n_vox),
             "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
@@ -308,8 +329,10 @@ def fit_images(
             "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
         }
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
-                        list(data.warnings))
+                        warnings)
     finally:
+        if bar is not None:
+            bar.close()
         data.close()
 
 
@@ -358,7 +381,8 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                     intent = (_INTENTS[stat], ())
                 write_map(o.file(fname), values, fit.mask, fit.grid, intent=intent,
                           description=f"groupmodel {h.name} {stat}"[:79])
-                o.write_json(fname.split(".")[0] + ".json", map_sidecar(fit, h.name, stat))
+                # the sidecar is named after the map's stem: hypothesis names may contain dots
+                o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat))
                 written.append(fname)
         fname = _map_name(fit.grid, "residual_variance")
         write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")

@@ -831,7 +831,7 @@ class MaskedData:
         Observation labels.
     warnings : list of str
         Things worth telling the user (e.g. an image that is zero everywhere).
-    data : ndarray or numpy.memmap of float32, shape (n_obs, n_in_mask)
+    data : ndarray or numpy.memmap of float32 (float64 for float64 images), shape (n_obs, n_in_mask)
     spilled : bool
         True when ``data`` lives in a memmap on disk.
     """
@@ -982,12 +982,16 @@ def load_masked(
     del f_index
     n_cand = n_grid if cand_f is None else int(cand_f.size)
 
+    # float32 holds float32 and 16-bit integer images exactly; float64 images keep float64, so
+    # that data stored with more digits (e.g. NIST StRD values) reach the engine unrounded.
+    dtype = storage_dtype(grid)
+    itemsize = np.dtype(dtype).itemsize
     spill_dir: Path | None = None
     buf: np.ndarray
-    if n * n_cand * 4 <= memory_bytes:
-        buf = np.empty(n * n_cand, dtype=np.float32)
+    if n * n_cand * itemsize <= memory_bytes:
+        buf = np.empty(n * n_cand, dtype=dtype)
     else:
-        spill_dir, buf = _new_spill(workdir, n * n_cand)
+        spill_dir, buf = _new_spill(workdir, n * n_cand, dtype)
 
     finite_all = np.ones(n_cand, dtype=bool)
     finite_any = np.zeros(n_cand, dtype=bool)
@@ -1087,9 +1091,19 @@ def load_masked(
 _SPILL_NAME = "data.f32"
 
 
-def _new_spill(workdir: Path | str | None, n_values: int) -> tuple[Path, np.memmap]:
-    """A temporary folder with a preallocated float32 memmap of ``n_values`` values."""
-    nbytes = n_values * 4
+def storage_dtype(grid: Grid) -> type:
+    """float64 for images stored as float64 (unscaled), float32 otherwise."""
+    header = getattr(grid, "header", None)
+    if header is not None:
+        slope, inter = header.get_slope_inter()
+        if header.get_data_dtype() == np.float64 and slope in (None, 1.0) and inter in (None, 0.0):
+            return np.float64
+    return np.float32
+
+
+def _new_spill(workdir: Path | str | None, n_values: int, dtype: type = np.float32) -> tuple[Path, np.memmap]:
+    """A temporary folder with a preallocated memmap of ``n_values`` values of ``dtype``."""
+    nbytes = n_values * np.dtype(dtype).itemsize
     try:
         d = Path(tempfile.mkdtemp(prefix="groupmodel-spill-", dir=None if workdir is None else str(workdir)))
     except OSError as exc:
@@ -1105,7 +1119,7 @@ def _new_spill(workdir: Path | str | None, n_values: int) -> tuple[Path, np.memm
                 os.posix_fallocate(fh.fileno(), 0, nbytes)
             else:  # pragma: no cover - not Linux
                 fh.truncate(nbytes)
-        mm = np.memmap(path, dtype=np.float32, mode="r+", shape=(n_values,))
+        mm = np.memmap(path, dtype=dtype, mode="r+", shape=(n_values,))
     except OSError as exc:
         shutil.rmtree(d, ignore_errors=True)
         raise InputError(
@@ -1133,9 +1147,10 @@ def _compact(
         return buf.reshape(n, n_keep), None
 
     path = spill_dir / _SPILL_NAME
-    if n * n_keep * 4 <= memory_bytes:
+    itemsize = buf.dtype.itemsize
+    if n * n_keep * itemsize <= memory_bytes:
         # the compacted matrix fits the budget: bring it into RAM row by row and remove the spill
-        out = np.empty((n, n_keep), dtype=np.float32)
+        out = np.empty((n, n_keep), dtype=buf.dtype)
         for i in range(n):
             src = buf[i * n_cand : (i + 1) * n_cand]
             out[i] = src if keep_idx is None else src[keep_idx]
@@ -1145,10 +1160,11 @@ def _compact(
     if keep_idx is not None:
         _compact_rows(buf, n, n_cand, keep_idx)
     assert isinstance(buf, np.memmap)
+    dtype = buf.dtype
     buf.flush()
     del buf
-    os.truncate(path, n * n_keep * 4)
-    data = np.memmap(path, dtype=np.float32, mode="r", shape=(n, n_keep))
+    os.truncate(path, n * n_keep * itemsize)
+    data = np.memmap(path, dtype=dtype, mode="r", shape=(n, n_keep))
     return data, spill_dir
 
 

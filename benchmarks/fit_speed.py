@@ -1,0 +1,474 @@
+"""Speed and peak memory of ``groupmodel fit`` on images, against a minimal numpy reference.
+
+What it does (all data invented and seeded):
+
+1. Makes a synthetic study in a temporary folder: 100 float32 ``.nii.gz`` images of 91x109x91 voxels
+   (an ellipsoid "brain" of about 230,000 voxels, zero outside), a participants table with a 3-level
+   and a 2-level factor and an age covariate, and a spec with 6 hypotheses (2 F tests, 4 t tests).
+2. Times, each in its own subprocess so that peak memories are separate:
+
+   * ``groupmodel``: ``fit_images`` + ``write_voxel_fit`` (the API behind ``groupmodel fit``, including
+     every map, sidecar, design file and picture);
+   * ``reference``: the minimal job by hand -- nibabel loads every image into one array, numpy QR OLS
+     gives effects, SEs, t, F, p, z and -log10 p, and nibabel writes the same number of float32 NIfTI
+     maps (no sidecars, no checks);
+
+   and prints both times, their ratio (goal <= 1.2) and both peak RSS values.
+3. Times a per-voxel statsmodels loop (``OLS(...).fit()`` plus ``t_test``/``f_test`` for every
+   hypothesis) on a sample of voxels, scales it to all voxels and prints the speed-up of groupmodel
+   (goal >= 500x).
+4. Fits 1,000 participants under ``--memory 512MB`` (same grid; the data matrix is about 0.9 GB, so
+   it must go to disk) and prints the peak RSS, with the fixed overhead measured separately.
+
+Nothing is asserted about time; the figures are printed.  ``--quick`` runs a small version (40 images on
+a 30x36x30 grid, 200 participants under a 16 MB budget) in well under a minute.
+
+Usage::
+
+    python benchmarks/fit_speed.py            # full run (several minutes; ~5 GB of temporary files)
+    python benchmarks/fit_speed.py --quick
+    python benchmarks/fit_speed.py --keep /tmp/bench   # keep the study folders
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+SEED = 20240605
+FULL = {"shape": (91, 109, 91), "semi_axes": (36.0, 45.0, 34.0), "n": 100, "n_large": 1000,
+        "large_memory": "512MB", "sm_sample": 2000, "memory": "2GB"}
+QUICK = {"shape": (30, 36, 30), "semi_axes": (12.0, 15.0, 11.5), "n": 40, "n_large": 200,
+         "large_memory": "16MB", "sm_sample": 200, "memory": "2GB"}
+AFFINE = np.array([[-2.0, 0, 0, 90], [0, 2.0, 0, -126], [0, 0, 2.0, -72], [0, 0, 0, 1]])
+
+SPEC = {
+    "participants": "participants.tsv",
+    "factors": {
+        "group": {"levels": ["a", "b", "c"], "coding": "effect"},
+        "sex": {"levels": ["f", "m"], "coding": "effect"},
+    },
+    "covariates": {"age": {"center": "mean"}},
+    "intercept": True,
+    "terms": ["group*sex", "age"],
+    "hypotheses": {
+        "group": {"main": "group"},
+        "group_by_sex": {"interaction": ["group", "sex"]},
+        "b_vs_a": {"compare": {"group": ["b", "a"]}},
+        "c_vs_a": {"compare": {"group": ["c", "a"]}, "tail": "greater"},
+        "age": {"slope": "age"},
+        "c_m_mean": {"mean": {"group": "c", "sex": "m"}},
+    },
+    "images": "maps/{participant_id}_effect.nii.gz",
+}
+
+
+# --------------------------------------------------------------------------------------------------
+# The synthetic study
+# --------------------------------------------------------------------------------------------------
+
+
+def brain_mask(shape: tuple[int, int, int], semi_axes: tuple[float, float, float]) -> np.ndarray:
+    """Boolean ellipsoid centred in the grid, shape ``shape``."""
+    idx = np.indices(shape, dtype=np.float32)
+    r2 = sum(((idx[d] - (shape[d] - 1) / 2) / semi_axes[d]) ** 2 for d in range(3))
+    return r2 <= 1.0
+
+
+def make_study(root: Path, n: int, shape: tuple[int, int, int],
+               semi_axes: tuple[float, float, float]) -> Path:
+    """Write participants.tsv, model.json and ``n`` float32 .nii.gz images; returns the spec path."""
+    import nibabel as nib
+
+    root.mkdir(parents=True, exist_ok=True)
+    (root / "maps").mkdir(exist_ok=True)
+    rng = np.random.default_rng([SEED, n])
+    group = np.array(["a", "b", "c"])[rng.permutation(np.arange(n) % 3)]
+    sex = np.array(["f", "m"])[rng.integers(0, 2, n)]
+    age = np.round(rng.uniform(20, 70, n), 1)
+    ids = [f"sub-{i + 1:04d}" for i in range(n)]
+    lines = ["participant_id\tgroup\tsex\tage"] + [
+        f"{p}\t{g}\t{s}\t{a:.1f}" for p, g, s, a in zip(ids, group, sex, age, strict=True)
+    ]
+    (root / "participants.tsv").write_text("\n".join(lines) + "\n")
+    (root / "model.json").write_text(json.dumps(SPEC, indent=2))
+
+    mask = brain_mask(shape, semi_axes)
+    nv = int(mask.sum())
+    # per-voxel effects: a group effect in one half of the brain, an age effect everywhere (weak)
+    g_eff = np.where(np.arange(nv) < nv // 2, 0.8, 0.0).astype(np.float32)
+    a_eff = np.float32(0.02)
+    gnum = (group == "b") * 1.0 + (group == "c") * 2.0
+    vol = np.zeros(shape, dtype=np.float32)
+    for i in range(n):
+        values = rng.standard_normal(nv, dtype=np.float32)
+        values += np.float32(10.0) + g_eff * np.float32(gnum[i]) + a_eff * np.float32(age[i] - 45)
+        vol[mask] = values
+        img = nib.Nifti1Image(vol, AFFINE)
+        img.header.set_xyzt_units("mm")
+        nib.save(img, root / "maps" / f"{ids[i]}_effect.nii.gz")
+    return root / "model.json"
+
+
+# --------------------------------------------------------------------------------------------------
+# Children (each run in its own process; prints one JSON line)
+# --------------------------------------------------------------------------------------------------
+
+
+def _maxrss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: kB
+
+
+class _AnonSampler:
+    """Samples RssAnon (anonymous memory, i.e. excluding file pages such as a memmap's) every 10 ms."""
+
+    def __init__(self) -> None:
+        self.peak_kb = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _read(self) -> int:
+        try:
+            with open("/proc/self/status") as fh:
+                for line in fh:
+                    if line.startswith("RssAnon:"):
+                        return int(line.split()[1])
+        except OSError:
+            pass
+        return 0
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            self.peak_kb = max(self.peak_kb, self._read())
+            self._stop.wait(0.01)
+
+    def __enter__(self) -> _AnonSampler:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.peak_kb = max(self.peak_kb, self._read())
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU time of this process (all threads): less sensitive to other load than wall time."""
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
+
+
+class _StageTimer:
+    """Adds up the wall time spent in named module functions (patched in place for one run)."""
+
+    def __init__(self, targets: dict[str, tuple[Any, str]]) -> None:
+        self.seconds = dict.fromkeys(targets, 0.0)
+        self._targets = targets
+        self._saved: list[tuple[Any, str, Any]] = []
+
+    def __enter__(self) -> _StageTimer:
+        for label, (module, name) in self._targets.items():
+            func = getattr(module, name)
+            self._saved.append((module, name, func))
+            setattr(module, name, self._wrap(label, func))
+        return self
+
+    def _wrap(self, label: str, func: Any) -> Any:
+        def timed(*args: Any, **kwargs: Any) -> Any:
+            t0 = time.perf_counter()
+            try:
+                return func(*args, **kwargs)
+            finally:
+                self.seconds[label] += time.perf_counter() - t0
+
+        return timed
+
+    def __exit__(self, *exc: object) -> None:
+        for module, name, func in self._saved:
+            setattr(module, name, func)
+
+
+def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
+    import groupmodel.figures
+    import groupmodel.fit
+    import groupmodel.images
+    import groupmodel.tails
+    from groupmodel.cli import _memory
+    from groupmodel.fit import fit_images, write_voxel_fit
+
+    stages = {
+        "check images": (groupmodel.images, "check_images"),
+        "read images (load_masked)": (groupmodel.images, "load_masked"),
+        "engine (fit_chunk, all chunks)": (groupmodel.fit, "fit_chunk"),
+        "  of which t p/z (tails.t_tests)": (groupmodel.tails, "t_tests"),
+        "  of which F p/z (tails.f_tests)": (groupmodel.tails, "f_tests"),
+        "write NIfTI maps (write_map)": (groupmodel.images, "write_map"),
+        "design picture": (groupmodel.figures, "plot_design"),
+        "contrast picture": (groupmodel.figures, "plot_contrasts"),
+    }
+    base = _maxrss_mb()
+    with _AnonSampler() as anon, _StageTimer(stages) as timer:
+        c0 = _cpu_seconds()
+        t0 = time.perf_counter()
+        fit = fit_images(spec, memory_bytes=_memory(memory), progress=False)
+        t1 = time.perf_counter()
+        written = write_voxel_fit(fit, out, force=True)
+        t2 = time.perf_counter()
+        c1 = _cpu_seconds()
+    n_maps = sum(1 for w in written if w.endswith((".nii.gz", ".nii")))
+    return {"seconds": t2 - t0, "cpu_seconds": c1 - c0, "fit_seconds": t1 - t0, "write_seconds": t2 - t1,
+            "stages": timer.seconds, "n_maps": n_maps,
+            "n_voxels": fit.mask_report["voxels_in_mask"], "n_obs": fit.model.design.n_observations,
+            "maxrss_mb": _maxrss_mb(), "baseline_rss_mb": base, "peak_anon_mb": anon.peak_kb / 1024.0}
+
+
+def child_reference(spec: Path, out: Path) -> dict[str, Any]:
+    """The minimal job by hand: load, QR OLS with t and F, write the same number of float32 maps."""
+    import nibabel as nib
+    from scipy import special, stats
+
+    from groupmodel.model import build
+
+    # The design and contrast rows come from groupmodel (not timed): the reference times the voxel work.
+    model = build(spec)
+    x = model.design.matrix
+    hyps = list(model.hypotheses.values())
+    paths = [spec.parent / "maps" / f"{pid}_effect.nii.gz" for pid in model.design.participant_ids]
+    base = _maxrss_mb()
+    out.mkdir(parents=True, exist_ok=True)
+
+    c0 = _cpu_seconds()
+    t0 = time.perf_counter()
+    first = nib.load(paths[0])
+    shape, affine = first.shape, first.affine
+    data = np.empty((len(paths), int(np.prod(shape))), dtype=np.float32)
+    for i, p in enumerate(paths):
+        data[i] = np.asanyarray(nib.load(p).dataobj).ravel()
+    mask = np.all(np.isfinite(data), axis=0) & np.any(data != 0, axis=0)
+    y = data[:, mask].astype(np.float64)
+    del data
+    t_loaded = time.perf_counter()
+    n, k = x.shape
+    q, r = np.linalg.qr(x)
+    yc = y - y.mean(axis=0)  # the design has an intercept: centring changes no effect but the mean term
+    qty = q.T @ yc
+    resid = yc - q @ qty
+    df = n - k
+    sigma2 = np.einsum("ij,ij->j", resid, resid) / df
+    del resid, yc
+    beta = np.linalg.solve(r, qty)
+    beta[0] += y.mean(axis=0)  # intercept column first: X^+ 1 = e_0
+    rinv = np.linalg.inv(r)
+    maps: dict[str, np.ndarray] = {}
+    for h in hyps:
+        w = h.weights
+        eff = w @ beta
+        cov = (w @ rinv) @ (w @ rinv).T
+        if h.test == "t":
+            se = np.sqrt(sigma2 * cov[0, 0])
+            t = eff[0] / se
+            if h.tail == "two-sided":
+                p = 2 * stats.t.sf(np.abs(t), df)
+            elif h.tail == "greater":
+                p = stats.t.sf(t, df)
+            else:
+                p = stats.t.cdf(t, df)
+            maps |= {f"{h.name}_effect": eff[0], f"{h.name}_se": se, f"{h.name}_t": t,
+                     f"{h.name}_z": special.ndtri(stats.t.cdf(t, df)), f"{h.name}_p": p,
+                     f"{h.name}_mlog10p": -np.log10(p)}
+        else:
+            ci = np.linalg.inv(cov)
+            f = np.einsum("iv,ij,jv->v", eff, ci, eff) / (w.shape[0] * sigma2)
+            p = stats.f.sf(f, w.shape[0], df)
+            maps |= {f"{h.name}_F": f, f"{h.name}_z": stats.norm.isf(p),
+                     f"{h.name}_p": p, f"{h.name}_mlog10p": -np.log10(p)}
+    maps["residual_variance"] = sigma2
+    t_fitted = time.perf_counter()
+    vol = np.zeros(shape, dtype=np.float32)
+    mask = mask.reshape(shape)
+    for name, values in maps.items():
+        vol[mask] = values
+        nib.save(nib.Nifti1Image(vol, affine), out / f"{name}.nii.gz")
+    nib.save(nib.Nifti1Image(mask.astype(np.uint8), affine), out / "mask.nii.gz")
+    t1 = time.perf_counter()
+    stages = {"read images + mask": t_loaded - t0, "OLS, t, F, p, z": t_fitted - t_loaded,
+              "write NIfTI maps": t1 - t_fitted}
+    return {"seconds": t1 - t0, "cpu_seconds": _cpu_seconds() - c0, "stages": stages, "n_maps": len(maps) + 1,
+            "n_voxels": int(mask.sum()), "n_obs": n, "maxrss_mb": _maxrss_mb(), "baseline_rss_mb": base}
+
+
+def child_statsmodels(spec: Path, sample: int) -> dict[str, Any]:
+    """Seconds per voxel of a per-voxel statsmodels loop (fit + every t_test/f_test)."""
+    import warnings
+
+    import nibabel as nib
+    import statsmodels.api as sm
+
+    from groupmodel.model import build
+
+    model = build(spec)
+    x = model.design.matrix
+    hyps = list(model.hypotheses.values())
+    paths = [spec.parent / "maps" / f"{pid}_effect.nii.gz" for pid in model.design.participant_ids]
+    first = np.asanyarray(nib.load(paths[0]).dataobj)
+    inside = np.flatnonzero(first.ravel() != 0)
+    rng = np.random.default_rng(SEED)
+    pick = np.sort(rng.choice(inside, size=min(sample, inside.size), replace=False))
+    y = np.stack([np.asanyarray(nib.load(p).dataobj).ravel()[pick] for p in paths]).astype(np.float64)
+    warnings.simplefilter("ignore")
+    c0 = _cpu_seconds()
+    t0 = time.perf_counter()
+    for j in range(y.shape[1]):
+        res = sm.OLS(y[:, j], x).fit()
+        for h in hyps:
+            if h.test == "t":
+                res.t_test(h.weights)
+            else:
+                res.f_test(h.weights)
+    t1 = time.perf_counter()
+    n_vox = y.shape[1]
+    return {"seconds_per_voxel": (t1 - t0) / n_vox, "cpu_seconds_per_voxel": (_cpu_seconds() - c0) / n_vox,
+            "sample": int(n_vox)}
+
+
+def child_overhead() -> dict[str, Any]:
+    """RSS of an interpreter that has imported groupmodel and its dependencies (the fixed overhead)."""
+    import groupmodel.fit  # noqa: F401
+    import groupmodel.images  # noqa: F401
+
+    return {"maxrss_mb": _maxrss_mb()}
+
+
+def run_child(*args: str, env: dict[str, str] | None = None) -> dict[str, Any]:
+    cmd = [sys.executable, os.path.abspath(__file__), "--child", *args]
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    if proc.returncode != 0:
+        sys.stderr.write(proc.stdout + proc.stderr)
+        raise SystemExit(f"child {args[0]} failed with exit code {proc.returncode}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+# --------------------------------------------------------------------------------------------------
+# Main
+# --------------------------------------------------------------------------------------------------
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--quick", action="store_true", help="small version (seconds)")
+    ap.add_argument("--keep", type=Path, help="make the studies in this folder and keep them")
+    ap.add_argument("--repeats", type=int, default=2, help="timed runs of each side (the minimum is shown)")
+    ap.add_argument("--skip-large", action="store_true", help="skip the 1,000-participant fit")
+    ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+
+    if args.child:
+        kind, *rest = args.child
+        if kind == "groupmodel":
+            out = child_groupmodel(Path(rest[0]), Path(rest[1]), rest[2])
+        elif kind == "reference":
+            out = child_reference(Path(rest[0]), Path(rest[1]))
+        elif kind == "statsmodels":
+            out = child_statsmodels(Path(rest[0]), int(rest[1]))
+        elif kind == "overhead":
+            out = child_overhead()
+        else:
+            raise SystemExit(f"unknown child {kind}")
+        print(json.dumps(out))
+        return 0
+
+    cfg = QUICK if args.quick else FULL
+    root = args.keep if args.keep else Path(tempfile.mkdtemp(prefix="groupmodel-bench-"))
+    root.mkdir(parents=True, exist_ok=True)
+    import numpy  # noqa: F401  (report versions)
+
+    print(f"groupmodel fit benchmark ({'quick' if args.quick else 'full'}); {os.cpu_count()} CPUs; "
+          f"numpy {np.__version__}; study folders in {root}")
+    try:
+        t0 = time.perf_counter()
+        spec = make_study(root / "study", cfg["n"], cfg["shape"], cfg["semi_axes"])
+        print(f"made {cfg['n']} images of {'x'.join(map(str, cfg['shape']))} float32 .nii.gz in "
+              f"{time.perf_counter() - t0:.1f} s")
+
+        gm_runs, ref_runs = [], []
+        for i in range(max(1, args.repeats)):
+            # alternate the order so that neither side always runs on a colder page cache
+            order = ("groupmodel", "reference") if i % 2 == 0 else ("reference", "groupmodel")
+            for side in order:
+                out = root / f"out_{side}"
+                if side == "groupmodel":
+                    gm_runs.append(run_child("groupmodel", str(spec), str(out), cfg["memory"]))
+                else:
+                    ref_runs.append(run_child("reference", str(spec), str(out)))
+        gm = min(gm_runs, key=lambda r: r["seconds"])
+        ref = min(ref_runs, key=lambda r: r["seconds"])
+        gm_cpu = min(r["cpu_seconds"] for r in gm_runs)
+        ref_cpu = min(r["cpu_seconds"] for r in ref_runs)
+        overhead = run_child("overhead")
+        print()
+        print(f"{gm['n_obs']} observations, {gm['n_voxels']} voxels in the mask, 6 hypotheses, "
+              f"{gm['n_maps']} NIfTI maps written by groupmodel, {ref['n_maps']} by the reference")
+        print(f"  groupmodel  fit+write: {gm['seconds']:.2f} s wall, {gm_cpu:.2f} s CPU (fit "
+              f"{gm['fit_seconds']:.2f} s, write {gm['write_seconds']:.2f} s); all runs "
+              f"{[round(r['seconds'], 2) for r in gm_runs]} s; peak RSS {gm['maxrss_mb']:.0f} MB "
+              f"(before fitting {gm['baseline_rss_mb']:.0f} MB)")
+        for label, sec in gm["stages"].items():
+            print(f"      {label:34s} {sec:6.2f} s")
+        print(f"  reference   load+OLS+write: {ref['seconds']:.2f} s wall, {ref_cpu:.2f} s CPU; all runs "
+              f"{[round(r['seconds'], 2) for r in ref_runs]} s; peak RSS {ref['maxrss_mb']:.0f} MB "
+              f"(before fitting {ref['baseline_rss_mb']:.0f} MB)")
+        for label, sec in ref["stages"].items():
+            print(f"      {label:34s} {sec:6.2f} s")
+        print(f"  ratio groupmodel / reference: {gm['seconds'] / ref['seconds']:.2f} wall (best runs), "
+              f"{gm_cpu / ref_cpu:.2f} CPU (goal <= 1.2)")
+        print(f"  fixed overhead (interpreter + imports): {overhead['maxrss_mb']:.0f} MB")
+
+        sm = run_child("statsmodels", str(spec), str(cfg["sm_sample"]))
+        sm_total = sm["seconds_per_voxel"] * gm["n_voxels"]
+        engine = gm["stages"]["engine (fit_chunk, all chunks)"]
+        print(f"  statsmodels per-voxel loop (OLS fit + 6 t_test/f_test; data already in memory): "
+              f"{sm['seconds_per_voxel'] * 1e3:.2f} ms/voxel on {sm['sample']} voxels, scaled to "
+              f"{gm['n_voxels']} voxels: {sm_total:.0f} s")
+        print(f"      groupmodel engine on all voxels (same work, data in memory): {engine:.2f} s -> "
+              f"{sm_total / engine:.0f}x faster (goal >= 500x)")
+        print(f"      groupmodel whole fit+write (also reads the images and writes the maps): "
+              f"{sm_total / gm['seconds']:.0f}x faster")
+
+        if not args.skip_large:
+            shutil.rmtree(root / "out_groupmodel", ignore_errors=True)
+            shutil.rmtree(root / "out_reference", ignore_errors=True)
+            t0 = time.perf_counter()
+            big = make_study(root / "study_large", cfg["n_large"], cfg["shape"], cfg["semi_axes"])
+            print()
+            print(f"made {cfg['n_large']} images in {time.perf_counter() - t0:.0f} s")
+            large = run_child("groupmodel", str(big), str(root / "out_large"), cfg["large_memory"])
+            data_mb = large["n_obs"] * large["n_voxels"] * 4 / 2**20
+            print(f"  {large['n_obs']} observations x {large['n_voxels']} voxels (float32 data matrix "
+                  f"{data_mb:.0f} MB) under --memory {cfg['large_memory']}: {large['seconds']:.1f} s wall, "
+                  f"{large['cpu_seconds']:.1f} s CPU (fit {large['fit_seconds']:.1f} s, write "
+                  f"{large['write_seconds']:.1f} s)")
+            for label, sec in large["stages"].items():
+                print(f"      {label:34s} {sec:6.2f} s")
+            print(f"  peak RSS {large['maxrss_mb']:.0f} MB (includes the memmap's file pages); peak "
+                  f"anonymous RSS (sampled every 10 ms) {large['peak_anon_mb']:.0f} MB; fixed overhead "
+                  f"(interpreter + imports) {overhead['maxrss_mb']:.0f} MB")
+    finally:
+        if not args.keep:
+            shutil.rmtree(root, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

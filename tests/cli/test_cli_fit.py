@@ -1,0 +1,180 @@
+"""``groupmodel fit`` on images from the command line: files written, --force, exit codes, progress bar.
+
+References: the issue's list of outputs (per t hypothesis effect, se, t, z, p, -log10 p maps; per F
+hypothesis F, z, p, -log10 p; the residual variance, the mask, the design files of ``build``, a summary),
+each map with a JSON sidecar; exit codes 0 / 1 / 2 as documented in ``groupmodel --help``.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import json
+import os
+import pty
+import select
+import struct
+import subprocess
+import sys
+import termios
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+from groupmodel.cli import main
+
+AFFINE = np.diag([2.5, 2.5, 2.5, 1.0])
+SHAPE = (6, 5, 4)
+HYPOTHESES = {
+    "dose": {"main": "dose"},
+    "high_vs_low": {"compare": {"dose": ["high", "low"]}, "tail": "greater"},
+    "score": {"slope": "score"},
+}
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p")
+F_MAPS = ("F", "z", "p", "mlog10p")
+
+
+def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
+    """A one-factor (3 levels) + covariate study of n float32 images, one F and two t hypotheses."""
+    rng = np.random.default_rng(seed)
+    (root / "maps").mkdir(parents=True)
+    dose = np.array(["low", "mid", "high"])[np.arange(n) % 3]
+    score = np.round(rng.normal(100, 15, n), 1)
+    ids = [f"sub-{i + 1:02d}" for i in range(n)]
+    pd.DataFrame({"participant_id": ids, "dose": dose, "score": score}).to_csv(
+        root / "participants.tsv", sep="\t", index=False)
+    for i, pid in enumerate(ids):
+        vol = rng.normal(2.0, 1.0, SHAPE) + (dose[i] == "high") * 1.5
+        nib.save(nib.Nifti1Image(vol.astype(np.float32), AFFINE), root / "maps" / f"{pid}_con.nii.gz")
+    spec = {"participants": "participants.tsv",
+            "factors": {"dose": {"levels": ["low", "mid", "high"], "coding": "effect"}},
+            "covariates": {"score": {"center": "mean"}},
+            "terms": ["dose", "score"],
+            "hypotheses": HYPOTHESES,
+            "images": "maps/{participant_id}_con.nii.gz"}
+    (root / "model.json").write_text(json.dumps(spec))
+    return root / "model.json"
+
+
+def expected_files() -> set[str]:
+    names = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
+             "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
+             "mask.nii.gz", "mask.json"}
+    for name, h in HYPOTHESES.items():
+        for stat in (F_MAPS if "main" in h else T_MAPS):
+            names |= {f"{name}_{stat}.nii.gz", f"{name}_{stat}.json"}
+    return names
+
+
+def run_cli(*args: str) -> subprocess.CompletedProcess:
+    """The real command in a subprocess, with stdout and stderr as pipes (not a terminal)."""
+    return subprocess.run([sys.executable, "-m", "groupmodel.cli", *args], capture_output=True, text=True,
+                          timeout=300)
+
+
+@pytest.fixture(scope="module")
+def spec(tmp_path_factory) -> Path:
+    return make_study(tmp_path_factory.mktemp("clifit") / "study")
+
+
+def test_fit_writes_every_map_and_nothing_on_stderr(spec: Path, tmp_path: Path) -> None:
+    # Reference: the issue's output list; nothing on stderr when it is not a terminal (no progress bar).
+    out = tmp_path / "results"
+    proc = run_cli("fit", str(spec), "--out", str(out))
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stderr == ""
+    assert "\r" not in proc.stdout  # no progress bar leaked into stdout either
+    assert set(p.name for p in out.iterdir()) == expected_files()
+    assert "18 observations" in proc.stdout and "wrote" in proc.stdout
+    for name in HYPOTHESES:
+        assert name in proc.stdout
+    for path in out.glob("*.nii.gz"):
+        img = nib.load(path)
+        assert np.allclose(img.affine, AFFINE)
+        if path.name != "mask.nii.gz":
+            assert img.get_data_dtype() == np.float32
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["n_observations"] == 18 and summary["df_resid"] == 18 - 4
+    side = json.loads((out / "dose_F.json").read_text())
+    assert side["hypothesis"] == "dose" and side["statistic"] == "F" and side["df1"] == 2
+
+
+def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
+    # Reference: exit codes of `groupmodel --help` (2: usage or unreadable input); --force as in build.
+    out = tmp_path / "results"
+    out.mkdir()
+    (out / "old.txt").write_text("keep me")
+    proc = run_cli("fit", str(spec), "--out", str(out))
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("groupmodel: error:") and "--force" in lines[0]
+    assert "Traceback" not in proc.stderr
+    assert [p.name for p in out.iterdir()] == ["old.txt"]
+    proc = run_cli("fit", str(spec), "--out", str(out), "--force")
+    assert proc.returncode == 0, proc.stderr
+    assert set(p.name for p in out.iterdir()) == expected_files()
+
+
+def test_exit_codes_in_process(spec: Path, tmp_path: Path, capsys) -> None:
+    # Reference: exit codes of `groupmodel --help`: 0 ok, 1 model problems, 2 usage/unreadable input.
+    assert main(["fit", str(spec), "--out", str(tmp_path / "ok"), "--memory", "64MB"]) == 0
+    capsys.readouterr()
+    # 2: a --memory that is not a size (argparse), and a spec that does not exist
+    with pytest.raises(SystemExit) as info:
+        main(["fit", str(spec), "--out", str(tmp_path / "x"), "--memory", "lots"])
+    assert info.value.code == 2
+    assert main(["fit", str(tmp_path / "nope.json"), "--out", str(tmp_path / "y")]) == 2
+    err = capsys.readouterr().err
+    assert err.strip().splitlines()[-1].startswith("groupmodel: error:")
+    # 1: a hypothesis the design cannot estimate (a level nobody has)
+    raw = json.loads(spec.read_text())
+    raw["factors"]["dose"]["levels"] = ["low", "mid", "high", "max"]
+    raw["hypotheses"]["max_vs_low"] = {"compare": {"dose": ["max", "low"]}}
+    bad = spec.parent / "bad_model.json"
+    bad.write_text(json.dumps(raw))
+    assert main(["fit", str(bad), "--out", str(tmp_path / "z")]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("groupmodel: error:")
+    assert not (tmp_path / "x").exists() and not (tmp_path / "y").exists() and not (tmp_path / "z").exists()
+
+
+def test_memory_option_gives_the_same_maps(spec: Path, tmp_path: Path, capsys) -> None:
+    # Reference: the run with the default budget (results must not depend on --memory).
+    assert main(["fit", str(spec), "--out", str(tmp_path / "a")]) == 0
+    assert main(["fit", str(spec), "--out", str(tmp_path / "b"), "--memory", "20KB"]) == 0
+    capsys.readouterr()
+    for name in ("dose_F", "high_vs_low_t", "score_effect", "residual_variance"):
+        a = np.asanyarray(nib.load(tmp_path / "a" / f"{name}.nii.gz").dataobj)
+        b = np.asanyarray(nib.load(tmp_path / "b" / f"{name}.nii.gz").dataobj)
+        np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pseudo-terminal test written for Linux")
+def test_progress_bar_on_a_terminal(spec: Path, tmp_path: Path) -> None:
+    # Reference: the issue (a progress bar on a terminal).  stderr is a pseudo-terminal here.
+    master, slave = pty.openpty()
+    # a new pseudo-terminal is 0 x 0 characters, where tqdm draws an empty bar: give it 24 x 100
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))
+    out = tmp_path / "results"
+    env = dict(os.environ)
+    proc = subprocess.Popen([sys.executable, "-m", "groupmodel.cli", "fit", str(spec), "--out", str(out)],
+                            stdout=subprocess.PIPE, stderr=slave, env=env)
+    os.close(slave)
+    chunks = []
+    while True:
+        ready, _, _ = select.select([master], [], [], 60)
+        if not ready:
+            break
+        try:
+            data = os.read(master, 4096)
+        except OSError:  # the child closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    proc.communicate(timeout=120)
+    os.close(master)
+    assert proc.returncode == 0
+    assert "fitting" in b"".join(chunks).decode(errors="replace")

@@ -113,6 +113,8 @@ def make_parser() -> argparse.ArgumentParser:
     f.add_argument("--tfce", action="store_true", help="threshold-free cluster enhancement (E=0.5, H=2)")
     f.add_argument("--cluster-threshold", type=float, metavar="Z",
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
+    f.add_argument("--jobs", type=int, default=None, metavar="N",
+                   help="worker processes for TFCE and cluster permutations (results do not depend on it)")
     f.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
 
     c = sub.add_parser(

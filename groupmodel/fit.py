@@ -6,7 +6,7 @@ feeds it and collects what it returns.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
+from .corrections import InferenceOptions, parametric_corrections, permutation_inference
 from .errors import InputError, ModelError
 from .model import DISCLAIMER, Model, build
 from .ols import ChunkResult, fit_chunk, prepare
@@ -129,9 +130,20 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
 # --------------------------------------------------------------------------------------------------
 #: Share of --memory given to the image data matrix; the rest is for one chunk's work and the result maps.
 DATA_SHARE = 0.6
+#: Maps that come from permutations (their sidecars record method, J, exhaustive and seed).
+PERMUTATION_STATS = ("p_perm", "p_fwe", "tfce", "p_tfce_fwe", "p_cluster_fwe")
+CORRECTION_NOTES = {
+    "p_fdr": "Benjamini-Hochberg (1995) adjusted p over the voxels of the mask",
+    "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
+    "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
+    "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
+    "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
+    "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
+    "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
 #: Maps written for each kind of test (statistic names as in the sidecars).
-T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p")
-F_MAPS = ("F", "z", "p", "mlog10p")
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
             "mlog10p": "none", "residual_variance": "estimate"}
 
@@ -154,6 +166,12 @@ class VoxelFit:
         Voxel counts of the mask (in mask, left out for NaN/inf, left out for zero everywhere).
     dropped : list of (participant_id, reason)
         Participants left out for missing images (with --drop-missing-images).
+    inference : dict or None
+        The corrected-inference settings used.
+    records : dict
+        Hypothesis -> what its permutation maps were made with (method, J, exhaustive, seed, TFCE, ...).
+    tables : dict
+        Hypothesis -> kind (``voxel_fwe``, ``tfce_fwe``, ``cluster_extent_fwe``) -> cluster table.
     """
 
     model: Model
@@ -166,6 +184,8 @@ class VoxelFit:
     dropped: list[tuple[str, str]]
     warnings: list[str]
     inference: dict[str, Any] | None = None
+    records: dict[str, dict[str, Any]] = field(default_factory=dict)
+    tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
 
     def summary(self) -> pd.DataFrame:
         """Per hypothesis: test, df, peak |statistic|, peak z, voxels with p < 0.001 and p < 0.05 (uncorrected)."""
@@ -185,6 +205,8 @@ class VoxelFit:
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 "voxels_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
                 "voxels_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
+                **{f"voxels_{k}_lt_0.05": int(np.count_nonzero(m[k] < 0.05))
+                   for k in ("p_fdr", "p_fwe", "p_tfce_fwe", "p_cluster_fwe") if k in m},
             })
         return pd.DataFrame(rows)
 
@@ -244,8 +266,12 @@ def fit_images(
     drop_missing: bool = False,
     chunk_voxels: int | None = None,
     progress: bool = True,
+    inference: InferenceOptions | None = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
+
+    Every hypothesis also gets Benjamini-Hochberg and Bonferroni adjusted p maps over the mask; with
+    ``inference`` (``permutations > 0``) permutation inference runs on the same data while they are loaded.
 
     Parameters
     ----------
@@ -261,11 +287,15 @@ def fit_images(
         Voxels per chunk (default: from the budget).  Results do not depend on it.
     progress : bool
         Show a progress bar when stderr is a terminal.
+    inference : InferenceOptions, optional
+        Permutation inference settings (default: the spec's ``inference`` object).
     """
     from .images import chunk_size_for, load_masked
 
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
+    if inference is None:
+        inference = InferenceOptions.resolve(spec.inference, spec.base_dir)
     model = build(spec)
     _require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
@@ -322,6 +352,34 @@ def fit_images(
                     f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
                     "value in every image: their t, F, z and p are NaN (not tested)"
                 )
+        for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
+            maps[name].update(extra)
+        records: dict[str, dict[str, Any]] = {}
+        tables: dict[str, dict[str, pd.DataFrame]] = {}
+        if inference.active:
+            if bar is not None:
+                bar.close()
+            perm_bar = _progress(inference.permutations * len(maps), "permutations", unit="perm") \
+                if progress else None
+            done_before: dict[str, int] = {}
+
+            def perm_progress(name: str, done: int, total: int) -> None:
+                if perm_bar is not None:
+                    perm_bar.update(done - done_before.get(name, 0))
+                    done_before[name] = done
+
+            try:
+                results = permutation_inference(
+                    model, data, inference, cache_bytes=int(memory_bytes * (1 - DATA_SHARE) * 0.5),
+                    chunk_voxels=chunk_voxels, progress=perm_progress,
+                )
+            finally:
+                if perm_bar is not None:
+                    perm_bar.close()
+            for name, res in results.items():
+                maps[name].update(res.maps)
+                records[name] = res.record
+                tables[name] = res.tables
         report = {
             "voxels_in_mask": int(n_vox),
             "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
@@ -329,7 +387,7 @@ def fit_images(
             "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
         }
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
-                        warnings)
+                        warnings, inference=inference.as_dict(), records=records, tables=tables)
     finally:
         if bar is not None:
             bar.close()
@@ -382,8 +440,15 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                 write_map(o.file(fname), values, fit.mask, fit.grid, intent=intent,
                           description=f"groupmodel {h.name} {stat}"[:79])
                 # the sidecar is named after the map's stem: hypothesis names may contain dots
-                o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat))
+                extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
+                if stat in CORRECTION_NOTES:
+                    extra["correction"] = CORRECTION_NOTES[stat]
+                o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
                 written.append(fname)
+            for kind, table in fit.tables.get(h.name, {}).items():
+                tname = f"{h.name}_clusters_{kind}.tsv"
+                o.write_tsv(tname, table)
+                written.append(tname)
         fname = _map_name(fit.grid, "residual_variance")
         write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")
         o.write_json("residual_variance.json", map_sidecar(fit, None, "residual_variance"))
@@ -407,7 +472,10 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
 
 def run_voxelwise_cli(args: Any) -> int:
     """``groupmodel fit`` without --outcome: fit, print a summary, write the maps."""
-    fit = fit_images(args.spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images)
+    spec = load_spec(args.spec)
+    options = InferenceOptions.resolve(spec.inference, spec.base_dir, args)
+    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                     inference=options)
     m = fit.model
     print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
           f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
@@ -420,6 +488,12 @@ def run_voxelwise_cli(args: Any) -> int:
         print(f"  warning: {w}")
     for h in m.hypotheses.values():
         print(f"  {h.name} [{h.test}]: {h.statement}")
+    if options.active:
+        rec = next(iter(fit.records.values()), {})
+        print(f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
+              f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "
+              f"Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; cluster threshold "
+              f"{options.cluster_threshold if options.cluster_threshold is not None else 'none'}")
     print(fit.summary().to_string(index=False))
     write_voxel_fit(fit, args.out, force=args.force)
     print(f"wrote {args.out}")

@@ -32,8 +32,8 @@ HYPOTHESES = {
     "high_vs_low": {"compare": {"dose": ["high", "low"]}, "tail": "greater"},
     "score": {"slope": "score"},
 }
-T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p")
-F_MAPS = ("F", "z", "p", "mlog10p")
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 
 
 def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:

@@ -225,6 +225,15 @@ def test_written_maps_read_back(study) -> None:
             for col, ref in refs.items():
                 value = float(data[tuple(coords[col])])
                 floor = 1e-4 if stat in ("z", "mlog10p") else 1e-30
+                if stat in ("p_fdr", "p_bonferroni"):
+                    # Reference: scipy.stats.false_discovery_control (Benjamini-Hochberg) over the mask, and
+                    # Bonferroni min(1, m p), on the engine's p map.
+                    p_all = fit.maps[h.name]["p"]
+                    adjusted = (stats.false_discovery_control(p_all, method="bh") if stat == "p_fdr"
+                                else np.minimum(1.0, p_all * p_all.size))
+                    where = np.searchsorted(np.flatnonzero(fit.mask), np.ravel_multi_index(coords[col], SHAPE))
+                    assert _rel(value, float(adjusted[where]), floor) <= RTOL_F32, (h.name, stat, col)
+                    continue
                 assert _rel(value, ref[h.name][stat], floor) <= RTOL_F32, (h.name, stat, col)
             side = json.loads((out / f"{h.name}_{stat}.json").read_text())
             for key in SIDECAR_KEYS:

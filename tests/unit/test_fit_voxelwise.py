@@ -321,6 +321,8 @@ def test_user_mask_and_spec_mask(tmp_path: Path, base_fit: VoxelFit) -> None:
         assert np.array_equal(fit.mask, mask != 0)
         for name, maps in fit.maps.items():
             for stat, values in maps.items():
+                if stat in ("p_fdr", "p_bonferroni"):
+                    continue  # adjusted over the mask: a smaller mask is a smaller family (tested elsewhere)
                 np.testing.assert_allclose(values, base_fit.maps[name][stat][keep], rtol=INVARIANCE_RTOL)
 
 

@@ -1,0 +1,273 @@
+"""Corrected inference for a voxelwise fit: FDR and Bonferroni, and permutation inference.
+
+This module connects the array-level methods (:mod:`groupmodel.multiple`, :mod:`groupmodel.inference`,
+:mod:`groupmodel.tfce`, :mod:`groupmodel.clusters`) to a model and its images: which settings apply, which
+maps come out, what their sidecars record, and the cluster tables.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .multiple import bonferroni, fdr_bh
+
+#: Method names as users write them -> the inference engine's names.
+METHODS = {"auto": "auto", "permutation": "permute", "sign_flip": "flip", "both": "both"}
+_METHOD_NAMES = {"permute": "permutation", "flip": "sign_flip", "both": "both"}
+#: Level at which corrected maps are summarised in cluster tables.
+TABLE_ALPHA = 0.05
+
+
+@dataclass(frozen=True)
+class InferenceOptions:
+    """Settings of corrected inference (spec ``inference`` object, overridden by the command line).
+
+    Attributes
+    ----------
+    permutations : int
+        J, the rearrangements including the identity (0: parametric corrections only).  When fewer distinct
+        rearrangements exist, all of them are used and the result is exact.
+    seed : int
+        Seed of the random rearrangements (default 0, always recorded).
+    method : {"auto", "permutation", "sign_flip", "both"}
+        ``auto``: sign flips when a hypothesis's effect of interest is constant over rows (one-sample),
+        row permutation otherwise.
+    blocks : str or None
+        Table column of exchangeability blocks.
+    whole_blocks : bool
+        Permute blocks as wholes instead of rows within blocks.
+    tfce : bool
+        Threshold-free cluster enhancement (E = 0.5, H = 2) and its FWE p.
+    tfce_step : float or None
+        TFCE step dh in statistic units (default: the largest observed value / 100), recorded.
+    cluster_threshold : float or None
+        Cluster-forming threshold as a z value, for cluster-extent FWE.
+    connectivity : {6, 18, 26}
+        Voxel neighbourhood for TFCE and clusters (26: faces, edges and corners).
+    mesh : Path or None
+        Surface (GIFTI with a triangle array) giving vertex neighbours for surface data.
+    jobs : int
+        Worker processes for TFCE and cluster nulls; results do not depend on it.
+    """
+
+    permutations: int = 0
+    seed: int = 0
+    method: str = "auto"
+    blocks: str | None = None
+    whole_blocks: bool = False
+    tfce: bool = False
+    tfce_step: float | None = None
+    cluster_threshold: float | None = None
+    connectivity: int = 26
+    mesh: Path | None = None
+    jobs: int = 1
+
+    @property
+    def active(self) -> bool:
+        return self.permutations > 0
+
+    def as_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d["mesh"] = str(self.mesh) if self.mesh else None
+        return d
+
+    @classmethod
+    def resolve(cls, spec_inference: dict[str, Any], base_dir: Path, cli: Any | None = None) -> InferenceOptions:
+        """Spec settings, then command-line settings that were given."""
+        opts = cls(**{k: v for k, v in spec_inference.items() if k != "mesh"},
+                     mesh=(base_dir / spec_inference["mesh"]) if spec_inference.get("mesh") else None)
+        if cli is not None:
+            given: dict[str, Any] = {}
+            if getattr(cli, "permutations", None):
+                given["permutations"] = cli.permutations
+            if getattr(cli, "seed", None) is not None:
+                given["seed"] = cli.seed
+            if getattr(cli, "method", "auto") != "auto":
+                given["method"] = cli.method
+            if getattr(cli, "blocks", None):
+                given["blocks"] = cli.blocks
+            if getattr(cli, "whole_blocks", False):
+                given["whole_blocks"] = True
+            if getattr(cli, "tfce", False):
+                given["tfce"] = True
+            if getattr(cli, "cluster_threshold", None) is not None:
+                given["cluster_threshold"] = cli.cluster_threshold
+            if getattr(cli, "jobs", None):
+                given["jobs"] = cli.jobs
+            opts = replace(opts, **given)
+        if (opts.tfce or opts.cluster_threshold is not None or opts.blocks or opts.whole_blocks) and not opts.active:
+            raise InputError(
+                "TFCE, cluster-extent and exchangeability blocks need permutations; found --permutations 0; "
+                "add --permutations J (e.g. 5000) or inference.permutations to the spec"
+            )
+        if opts.whole_blocks and not opts.blocks:
+            raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
+        return opts
+
+
+def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str, np.ndarray]]:
+    """Benjamini-Hochberg (1995) adjusted p and Bonferroni p over the mask, per hypothesis.
+
+    Parameters
+    ----------
+    p_maps : dict
+        Hypothesis -> p values (n_in_mask,) for its tail.
+    """
+    return {name: {"p_fdr": fdr_bh(p), "p_bonferroni": bonferroni(p)} for name, p in p_maps.items()}
+
+
+def block_labels(model: Any, column: str) -> np.ndarray:
+    """Integer exchangeability-block label of every design row, from a table column."""
+    from .table import MISSING, read_table
+
+    table = read_table(model.spec.participants)
+    if column not in table.columns:
+        raise InputError(
+            f"{model.spec.participants.name}: blocks column {column!r} is not in the table "
+            f"(columns {list(table.columns)}); fix --blocks / inference.blocks"
+        )
+    rows = model.sample.data["row"].tolist()
+    values = table[column].iloc[[r - 1 for r in rows]].tolist()
+    for r, v in zip(rows, values, strict=True):
+        if v in MISSING:
+            raise InputError(
+                f"{model.spec.participants.name} row {r}, column {column!r}: expected a block label, found n/a; "
+                "fill it in or exclude the participant"
+            )
+    _, labels = np.unique(np.asarray(values, dtype=object).astype(str), return_inverse=True)
+    return labels.astype(int)
+
+
+def adjacency_for(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:
+    """The neighbourhood graph over in-mask elements, for TFCE and clusters (None when not needed)."""
+    from .tfce import grid_adjacency, mesh_adjacency
+
+    if not (options.tfce or options.cluster_threshold is not None):
+        return None
+    if grid.kind == "gifti":
+        if options.mesh is None:
+            raise InputError(
+                "TFCE and clusters on surface data need the mesh; found no inference.mesh in the spec; "
+                'add "inference": {"mesh": "path/to/surface.gii"} with the triangles of the surface'
+            )
+        import nibabel as nib
+
+        img = nib.load(str(options.mesh))
+        faces = [d.data for d in img.darrays if d.intent == nib.nifti1.intent_codes["NIFTI_INTENT_TRIANGLE"]]
+        if not faces:
+            raise InputError(f"mesh {options.mesh}: expected a GIFTI triangle array; found none; give a surface file")
+        return mesh_adjacency(np.asarray(faces[0]), n_vertices=grid.shape[0], mask=mask)
+    return grid_adjacency(mask, connectivity=options.connectivity)
+
+
+@dataclass
+class HypothesisInference:
+    """Corrected maps, their records and cluster tables for one hypothesis."""
+
+    maps: dict[str, np.ndarray]
+    record: dict[str, Any]
+    tables: dict[str, pd.DataFrame]
+
+
+def permutation_inference(
+    model: Any,
+    data: Any,
+    options: InferenceOptions,
+    cache_bytes: int,
+    chunk_voxels: int | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
+) -> dict[str, HypothesisInference]:
+    """Run Freedman-Lane permutation inference for every hypothesis.
+
+    Parameters
+    ----------
+    model : Model
+    data : groupmodel.images.MaskedData
+        Open, with ``data.data`` of shape (n_obs, n_in_mask).
+    options : InferenceOptions
+    cache_bytes : int
+        Memory the engine may keep residualised data in.
+    chunk_voxels : int, optional
+        Voxels per chunk; results do not depend on it.
+    progress : callable(name, done, total), optional
+    """
+    from .inference import run_permutations
+    from .tfce import TfceParams
+
+    adjacency = adjacency_for(data.grid, data.mask, options)
+    blocks = block_labels(model, options.blocks) if options.blocks else None
+    ijk = data.voxel_coords() if data.grid.kind == "nifti" else None
+    out: dict[str, HypothesisInference] = {}
+    for h in model.hypotheses.values():
+        def report(done: int, total: int, _name: str = h.name) -> None:
+            if progress is not None:
+                progress(_name, done, total)
+
+        res = run_permutations(
+            model.design.matrix, h.weights, data.data, kind=h.test, tail=h.tail, name=h.name,
+            n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
+            whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
+            adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
+            cluster_z=options.cluster_threshold, n_jobs=options.jobs, cache_bytes=cache_bytes, progress=report,
+        )
+        record = {
+            "method": _METHOD_NAMES.get(res.method, res.method),
+            "permutations": int(res.n_perm),
+            "possible_rearrangements": int(res.n_possible) if res.n_possible < 2**62 else float(res.n_possible),
+            "exhaustive": bool(res.exhaustive),
+            "seed": options.seed,
+            "blocks": options.blocks,
+            "whole_blocks": options.whole_blocks,
+            "nuisance_method": "Freedman-Lane",
+        }
+        maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
+        tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, data.grid)}
+        if res.tfce is not None:
+            maps["tfce"] = res.tfce
+            maps["p_tfce_fwe"] = res.p_tfce_fwe
+            assert res.tfce_params is not None
+            record["tfce"] = {"E": res.tfce_params.E, "H": res.tfce_params.H, "dh": res.tfce_params.dh,
+                              "rule": res.tfce_params.rule, "connectivity": options.connectivity}
+            tables["tfce_fwe"] = _significant_table(res.stat, res.p_tfce_fwe, h, adjacency, ijk, data.grid)
+        if res.p_cluster_fwe is not None:
+            maps["p_cluster_fwe"] = res.p_cluster_fwe
+            record["cluster"] = {"z_threshold": res.cluster_z, "statistic_threshold": res.cluster_threshold,
+                                 "connectivity": options.connectivity}
+            if res.clusters is not None:
+                tables["cluster_extent_fwe"] = _table(res.stat, res.clusters, res.cluster_p_fwe, ijk, data.grid)
+        out[h.name] = HypothesisInference(maps, record, tables)
+    return out
+
+
+def _table(stat: np.ndarray, clusters: Any, p: Any, ijk: np.ndarray | None, grid: Any) -> pd.DataFrame:
+    from .clusters import cluster_table
+
+    if ijk is not None:
+        return cluster_table(stat, clusters, p, ijk=ijk, affine=grid.affine)
+    return cluster_table(stat, clusters, p)
+
+
+def _significant_table(stat: np.ndarray, p: np.ndarray, h: Any, adjacency: Any, ijk: np.ndarray | None,
+                       grid: Any) -> pd.DataFrame:
+    """Clusters of elements with corrected p < TABLE_ALPHA; each cluster's p is its smallest p."""
+    from .clusters import label_clusters
+    from .tfce import grid_adjacency
+
+    if adjacency is None:
+        if grid.kind != "nifti":
+            return pd.DataFrame()
+        # Clusters of significant voxels need neighbours even without TFCE or cluster-extent inference.
+        mask = np.zeros(grid.shape, dtype=bool)
+        mask[tuple(ijk.T)] = True
+        adjacency = grid_adjacency(mask, 26)
+    signed = np.where(p < TABLE_ALPHA, np.sign(stat) if h.test == "t" else 1.0, 0.0)
+    clusters = label_clusters(signed, 0.5, adjacency, two_sided=(h.test == "t"))
+    p_cluster = np.array([p[clusters.labels == c].min() for c in range(1, clusters.count + 1)])
+    return _table(stat, clusters, p_cluster, ijk, grid)

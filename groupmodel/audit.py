@@ -456,7 +456,7 @@ class _Auditor(RowsMixin, ContrastsMixin, SpecMixin):
             # VIF regresses each column on the others plus a constant; without a constant column (a cell-means
             # design) the indicators sum to that constant and the figure means nothing, so it is skipped.
             constant = any(np.ptp(x[:, j]) == 0 and np.any(x[:, j]) for j in range(p))
-            for col, v in (_vif(x, names) if constant else {}).items():
+            for col, v in (variance_inflation(x, names) if constant else {}).items():
                 if v > VIF_WARN:
                     rep.add("rank", "warning", "high_vif",
                             f"{col} has variance inflation factor {v:.3g} (above {VIF_WARN:g}): it is nearly a "
@@ -514,27 +514,6 @@ class _Auditor(RowsMixin, ContrastsMixin, SpecMixin):
 # --------------------------------------------------------------------------------------------------
 # Command line
 # --------------------------------------------------------------------------------------------------
-def _vif(x: np.ndarray, names: list[str]) -> dict[str, float]:
-    """Variance inflation factors of the non-constant columns of a full-rank design with a constant column.
-
-    The same numbers as :func:`groupmodel.checks.variance_inflation` (regress each column on the others and a
-    constant), from one matrix inverse: VIF_j = [(Z'Z)^-1]_jj (Z'Z)_jj with Z the centred non-constant
-    columns -- a standard identity (from memory; checked against the regression form in the tests).  One
-    solve instead of one least-squares fit per column keeps large designs fast.
-    """
-    keep = [j for j in range(x.shape[1]) if np.ptp(x[:, j]) > 0]
-    if not keep:
-        return {}
-    z = x[:, keep] - x[:, keep].mean(axis=0)
-    gram = z.T @ z
-    try:
-        inv = np.linalg.inv(gram)
-    except np.linalg.LinAlgError:
-        return variance_inflation(x, names)
-    vif = np.diag(inv) * np.diag(gram)
-    return {names[j]: float(v) for j, v in zip(keep, vif, strict=True)}
-
-
 def _split_names(text: str | None) -> list[str] | None:
     if text is None:
         return None

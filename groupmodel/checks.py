@@ -100,11 +100,26 @@ def condition_number(matrix: np.ndarray) -> float:
 
 
 def variance_inflation(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
-    """VIF of every non-constant column: 1 / (1 - R^2) from regressing it on the other columns.
+    """VIF of every non-constant column: 1 / (1 - R^2) from regressing it on the other columns and a constant.
 
-    The other columns always include a constant (the usual definition); with a rank-deficient design the
-    affected columns get ``inf``.
+    Computed from one inverse: VIF_j = [(Z'Z)^-1]_jj (Z'Z)_jj with Z the centred non-constant columns, the
+    standard identity (from memory; checked against statsmodels' variance_inflation_factor in the tests).
+    When Z'Z is singular (a rank-deficient design, or indicators of every level), each column is regressed
+    on the others instead and the affected columns get ``inf``.
     """
+    keep = [j for j in range(matrix.shape[1]) if np.ptp(matrix[:, j]) > 0]
+    if not keep:
+        return {}
+    z = matrix[:, keep] - matrix[:, keep].mean(axis=0)
+    gram = z.T @ z
+    if np.linalg.cond(gram) < 1e12:
+        vif = np.diag(np.linalg.inv(gram)) * np.diag(gram)
+        return {names[j]: float(v) for j, v in zip(keep, vif, strict=True)}
+    return variance_inflation_by_regression(matrix, names)
+
+
+def variance_inflation_by_regression(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
+    """VIF by one least-squares regression per column (the definition; slower, robust to singularity)."""
     n, p = matrix.shape
     out: dict[str, float] = {}
     for j in range(p):

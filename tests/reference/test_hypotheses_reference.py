@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import json
 import math
-from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
@@ -28,13 +27,13 @@ import patsy
 import pytest
 import scipy.stats
 import statsmodels.formula.api as smf
+from nist_strd import EASY, HARD, exact_oneway, lre, read_nist
 from statsmodels.stats.anova import anova_lm
 
 from groupmodel import build
 from groupmodel.fit import fit_table
 
 RTOL = 1e-8
-NIST_DIR = Path(scipy.stats.__file__).parent / "tests" / "data" / "nist_anova"
 
 
 # ------------------------------------------------------------------------------------------ helpers
@@ -58,50 +57,10 @@ def rel(a: float, b: float) -> float:
     return abs(a - b) / max(abs(b), 1e-300)
 
 
-def lre(est: float, cert: float) -> float:
-    """Log relative error (NIST StRD's measure of agreement), capped at 15 digits."""
-    if est == cert:
-        return 15.0
-    return min(15.0, -math.log10(abs(est - cert) / abs(cert)))
-
-
 # ------------------------------------------------------------------------------------------ NIST StRD
-def read_nist_anova(name: str) -> tuple[list[str], list[str], float, float]:
-    """Group labels and responses (as the text in the file), certified F and residual SD."""
-    lines = (NIST_DIR / f"{name}.dat").read_text().splitlines()
-    cert_f = cert_sd = None
-    for i, line in enumerate(lines[:60]):
-        if line.strip().startswith("Between"):
-            cert_f = float(line.split()[-1])
-        if "Certified Residual" in line:
-            cert_sd = float(lines[i + 1].split()[-1])
-    assert cert_f is not None and cert_sd is not None, name
-    groups, values = [], []
-    for line in lines[60:]:
-        parts = line.split()
-        if len(parts) == 2:
-            groups.append(parts[0])
-            values.append(parts[1])
-    return groups, values, cert_f, cert_sd
-
-
-def exact_oneway(groups: list[str], values: list[str]) -> tuple[float, float]:
-    """F and residual SD by exact rational arithmetic on the float64 inputs (the attainable ceiling)."""
-    ys = [Fraction(float(v)) for v in values]
-    by: dict[str, list[Fraction]] = {}
-    for g, y in zip(groups, ys, strict=True):
-        by.setdefault(g, []).append(y)
-    grand = sum(ys) / len(ys)
-    means = {g: sum(v) / len(v) for g, v in by.items()}
-    ssb = sum(len(v) * (means[g] - grand) ** 2 for g, v in by.items())
-    ssw = sum((y - means[g]) ** 2 for g, v in by.items() for y in v)
-    dfb, dfw = len(by) - 1, len(ys) - len(by)
-    f = (ssb / dfb) / (ssw / dfw)
-    return float(f), math.sqrt(float(ssw / dfw))
-
-
 def nist_fit(tmp_path: Path, name: str) -> tuple[float, float, list[str], list[str], float, float]:
-    groups, values, cert_f, cert_sd = read_nist_anova(name)
+    data = read_nist(name)
+    groups, values, cert_f, cert_sd = data.group_text, data.value_text, data.f_certified, data.sd_certified
     # Text levels (g1, g2, ...), values written exactly as the certified file has them.
     frame = pd.DataFrame({"group": [f"g{g}" for g in groups], "response": values})
     spec = write_study(tmp_path / name, frame, {
@@ -115,9 +74,7 @@ def nist_fit(tmp_path: Path, name: str) -> tuple[float, float, list[str], list[s
     return f, sd, groups, values, cert_f, cert_sd
 
 
-@pytest.mark.parametrize(
-    "name", ["AtmWtAg", "SiRstv", "SmLs01", "SmLs02", "SmLs03", "SmLs04", "SmLs05", "SmLs06"]
-)
+@pytest.mark.parametrize("name", EASY)
 def test_nist_anova_lower_and_average_difficulty(tmp_path: Path, name: str) -> None:
     # Reference: NIST StRD certified F and residual SD (read from the .dat file); LRE >= 9 (issue's bar).
     f, sd, _, _, cert_f, cert_sd = nist_fit(tmp_path, name)
@@ -125,12 +82,12 @@ def test_nist_anova_lower_and_average_difficulty(tmp_path: Path, name: str) -> N
     assert lre(sd, cert_sd) >= 9, (name, sd, cert_sd, lre(sd, cert_sd))
 
 
-@pytest.mark.parametrize("name", ["SmLs07", "SmLs08", "SmLs09"])
+@pytest.mark.parametrize("name", HARD)
 def test_nist_anova_higher_difficulty_reaches_exact_ceiling(tmp_path: Path, name: str) -> None:
     # Reference: NIST StRD certified values; ceiling = exact rational arithmetic (fractions.Fraction) on the
     # same float64 inputs, which have already lost digits (13 constant leading digits).
     f, sd, groups, values, cert_f, cert_sd = nist_fit(tmp_path, name)
-    exact_f, exact_sd = exact_oneway(groups, values)
+    exact_f, exact_sd = exact_oneway(np.array(groups), np.array(values, dtype=float))
     ceiling_f, ceiling_sd = lre(exact_f, cert_f), lre(exact_sd, cert_sd)
     assert ceiling_f < 6  # the inputs really have lost digits: the test is about reaching the ceiling
     assert abs(lre(f, cert_f) - ceiling_f) <= 0.3, (name, lre(f, cert_f), ceiling_f)

@@ -9,14 +9,11 @@ arithmetic (fractions.Fraction) for the attainable accuracy on SmLs07-09.
 from __future__ import annotations
 
 import math
-import re
-from fractions import Fraction
-from pathlib import Path
 
 import numpy as np
 import pytest
-import scipy.stats
 import statsmodels.api as sm
+from nist_strd import EASY, HARD, NIST_DIR, SKIP_REASON, exact_oneway, lre, read_nist
 from scipy import stats
 
 from groupmodel.errors import EstimabilityError
@@ -225,43 +222,7 @@ def test_one_way_f_equals_f_oneway() -> None:
 
 # ----------------------------------------------------------------------------- NIST StRD
 
-NIST_DIR = Path(scipy.stats.__file__).parent / "tests" / "data" / "nist_anova"
-NIST_SETS = ["AtmWtAg", "SiRstv"] + [f"SmLs0{i}" for i in range(1, 10)]
-HARD = {"SmLs07", "SmLs08", "SmLs09"}
-
-
-def _lre(value: float, certified: float) -> float:
-    """Log relative error (number of correct digits), capped at 15 as in NIST practice."""
-    if value == certified:
-        return 15.0
-    return min(15.0, -math.log10(abs(value - certified) / abs(certified)))
-
-
-def _read_nist(name: str) -> tuple[float, float, np.ndarray, np.ndarray]:
-    """Certified F and residual SD (from the file header, lines 41-48) and the data (line 61 on)."""
-    path = NIST_DIR / f"{name}.dat"
-    lines = path.read_text().splitlines()
-    header = "\n".join(lines[40:48])
-    f_cert = float(re.search(r"^Between \w+\s+\d+\s+\S+\s+\S+\s+(\S+)\s*$", header, re.M).group(1))
-    sd_cert = float(re.search(r"Standard Deviation\s+(\S+)", header).group(1))
-    data = np.loadtxt(path, skiprows=60)
-    return f_cert, sd_cert, data[:, 0].astype(int), data[:, 1]
-
-
-def _exact_anova(groups: np.ndarray, y: np.ndarray) -> tuple[float, float]:
-    """F and residual SD in exact rational arithmetic on the float64 inputs (fractions.Fraction)."""
-    yf = [Fraction(v) for v in y.tolist()]
-    n = len(yf)
-    levels = np.unique(groups)
-    grand = sum(yf, Fraction(0)) / n
-    ssb = ssw = Fraction(0)
-    for lv in levels:
-        cell = [yf[i] for i in np.flatnonzero(groups == lv)]
-        m = sum(cell, Fraction(0)) / len(cell)
-        ssb += len(cell) * (m - grand) ** 2
-        ssw += sum(((v - m) ** 2 for v in cell), Fraction(0))
-    k = len(levels)
-    return float((ssb / (k - 1)) / (ssw / (n - k))), math.sqrt(float(ssw / (n - k)))
+NIST_SETS = EASY + HARD
 
 
 def _nist_designs(groups: np.ndarray) -> list[tuple[str, np.ndarray, np.ndarray]]:
@@ -276,16 +237,17 @@ def _nist_designs(groups: np.ndarray) -> list[tuple[str, np.ndarray, np.ndarray]
     return [("cells", cells, diffs), ("intercept+sum-to-zero", x2, l2)]
 
 
-@pytest.mark.skipif(not NIST_DIR.is_dir(), reason=f"scipy's NIST StRD test data not installed ({NIST_DIR})")
+@pytest.mark.skipif(not NIST_DIR.is_dir(), reason=SKIP_REASON)
 @pytest.mark.parametrize("name", NIST_SETS)
 def test_nist_one_way_anova(name: str) -> None:
     # Reference: NIST StRD certified F and residual SD (read from the .dat file); on SmLs07-09 the
     # float64 inputs themselves have lost digits, so the bar is the LRE exact rational arithmetic
     # on those inputs attains (fractions.Fraction), minus 0.3.
-    f_cert, sd_cert, groups, y = _read_nist(name)
+    data = read_nist(name)
+    f_cert, sd_cert, groups, y = data.f_certified, data.sd_certified, data.groups, data.y
     if name in HARD:
-        f_exact, sd_exact = _exact_anova(groups, y)
-        need_f, need_sd = _lre(f_exact, f_cert) - 0.3, _lre(sd_exact, sd_cert) - 0.3
+        f_exact, sd_exact = exact_oneway(groups, y)
+        need_f, need_sd = lre(f_exact, f_cert) - 0.3, lre(sd_exact, sd_cert) - 0.3
         assert need_f > 3.5  # sanity: the exact ceiling is about 4.2-4.4 (REFERENCES.md)
     else:
         need_f = need_sd = 9.0
@@ -293,8 +255,8 @@ def test_nist_one_way_anova(name: str) -> None:
         res = fit_chunk(prepare(x, [Test("groups", rows, "F")]), y)
         f = float(res["groups"].statistic[0])
         sd = math.sqrt(float(res.residual_variance[0]))
-        assert _lre(f, f_cert) >= need_f, (label, f, f_cert)
-        assert _lre(sd, sd_cert) >= need_sd, (label, sd, sd_cert)
+        assert lre(f, f_cert) >= need_f, (label, f, f_cert)
+        assert lre(sd, sd_cert) >= need_sd, (label, sd, sd_cert)
 
 
 def test_nist_longley() -> None:
@@ -312,7 +274,7 @@ def test_nist_longley() -> None:
     tests = [Test(f"coef{j}", np.eye(7)[j], "t") for j in range(7)]
     res = fit_chunk(prepare(x, tests), y, beta=True)
     for j in range(7):
-        assert _lre(res.beta[j, 0], cert.params[j]) >= 11.0, j
-        assert _lre(res[f"coef{j}"].effect[0], cert.params[j]) >= 11.0, j
-        assert _lre(res[f"coef{j}"].se[0], cert.bse[j]) >= 11.0, j
-    assert _lre(res.residual_variance[0], cert.scale) >= 11.0
+        assert lre(res.beta[j, 0], cert.params[j]) >= 11.0, j
+        assert lre(res[f"coef{j}"].effect[0], cert.params[j]) >= 11.0, j
+        assert lre(res[f"coef{j}"].se[0], cert.bse[j]) >= 11.0, j
+    assert lre(res.residual_variance[0], cert.scale) >= 11.0

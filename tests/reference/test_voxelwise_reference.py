@@ -17,15 +17,14 @@ from __future__ import annotations
 
 import json
 import math
-import re
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
-import scipy.stats
 import statsmodels.api as sm
+from nist_strd import EASY, HARD, NIST_DIR, SKIP_REASON, lre, read_nist
 from scipy import special, stats
 
 from groupmodel import __version__
@@ -260,28 +259,7 @@ def test_written_maps_read_back(study) -> None:
 
 # ----------------------------------------------------------------------------- NIST StRD
 
-NIST_DIR = Path(scipy.stats.__file__).parent / "tests" / "data" / "nist_anova"
-NIST_SETS = ["AtmWtAg", "SiRstv"] + [f"SmLs0{i}" for i in range(1, 10)]
-HARD = {"SmLs07", "SmLs08", "SmLs09"}
-
-
-def _lre(value: float, certified: float) -> float:
-    """Log relative error (correct digits), capped at 15 as in NIST practice; 0 for NaN."""
-    if not math.isfinite(value):
-        return 0.0
-    if value == certified:
-        return 15.0
-    return max(0.0, min(15.0, -math.log10(abs(value - certified) / abs(certified))))
-
-
-def _read_nist(name: str) -> tuple[float, float, np.ndarray, np.ndarray]:
-    """Certified F and residual SD (file header, lines 41-48) and the data (line 61 on)."""
-    path = NIST_DIR / f"{name}.dat"
-    header = "\n".join(path.read_text().splitlines()[40:48])
-    f_cert = float(re.search(r"^Between \w+\s+\d+\s+\S+\s+\S+\s+(\S+)\s*$", header, re.M).group(1))
-    sd_cert = float(re.search(r"Standard Deviation\s+(\S+)", header).group(1))
-    data = np.loadtxt(path, skiprows=60)
-    return f_cert, sd_cert, data[:, 0].astype(int), data[:, 1]
+NIST_SETS = EASY + HARD
 
 
 #: Sets with the same group column share one image study, one voxel per set (the SmLs sets come in three
@@ -297,17 +275,17 @@ def _nist_study(root: Path, sets: list[str]) -> Path:
     table-level fit.  Values are written with 17 significant digits, so both routes see the same float64
     numbers.
     """
-    data = {name: _read_nist(name) for name in sets}
-    groups = data[sets[0]][2]
+    data = {name: read_nist(name) for name in sets}
+    groups = data[sets[0]].groups
     for name in sets:
-        assert np.array_equal(data[name][2], groups)  # same layout
+        assert np.array_equal(data[name].groups, groups)  # same layout
     root.mkdir(parents=True)
     table = pd.DataFrame({"participant_id": [f"obs{i:05d}" for i in range(groups.size)],
                           "group": [f"g{g}" for g in groups]})
     for name in sets:
-        table[f"y_{name}"] = [repr(float(v)) for v in data[name][3]]
+        table[f"y_{name}"] = [repr(float(v)) for v in data[name].y]
     table.to_csv(root / "participants.tsv", sep="\t", index=False)
-    vol = np.stack([data[name][3] for name in sets]).reshape(len(sets), 1, 1, groups.size)
+    vol = np.stack([data[name].y for name in sets]).reshape(len(sets), 1, 1, groups.size)
     nib.save(nib.Nifti1Image(vol.astype(np.float64), np.eye(4)), root / "nist.nii")
     spec = {"participants": "participants.tsv", "factors": {"group": {"coding": "effect"}},
             "terms": ["group"], "hypotheses": {"main": {"main": "group"}}, "images": "nist.nii"}
@@ -330,7 +308,7 @@ def nist_fits(tmp_path_factory):
     return get
 
 
-@pytest.mark.skipif(not NIST_DIR.is_dir(), reason=f"scipy's NIST StRD test data not installed ({NIST_DIR})")
+@pytest.mark.skipif(not NIST_DIR.is_dir(), reason=SKIP_REASON)
 @pytest.mark.parametrize("name", NIST_SETS)
 def test_nist_voxel_maps_equal_table_fit(nist_fits, name: str) -> None:
     # Reference: NIST StRD certified F and residual SD (scipy's test data). The voxel maps must reach the
@@ -338,7 +316,8 @@ def test_nist_voxel_maps_equal_table_fit(nist_fits, name: str) -> None:
     # SmLs07-09 (where the float64 inputs themselves have lost digits) the same LRE as the table fit.
     key = next(k for k, sets in NIST_STUDIES.items() if name in sets)
     vox, tables = nist_fits(key)
-    f_cert, sd_cert, _, _ = _read_nist(name)
+    nist = read_nist(name)
+    f_cert, sd_cert = nist.f_certified, nist.sd_certified
     assert vox.mask_report["voxels_in_mask"] == len(NIST_STUDIES[key])
     v = NIST_STUDIES[key].index(name)  # voxel (v, 0, 0); the mask is every voxel, in C order
     table = tables[name]
@@ -348,12 +327,12 @@ def test_nist_voxel_maps_equal_table_fit(nist_fits, name: str) -> None:
     sd_vox = math.sqrt(float(vox.residual_variance[v]))
     if name not in HARD:
         # the table fit's bar (tests/reference/test_ols_reference.py), and the same bar for the maps
-        assert _lre(f_table, f_cert) >= 9.0 and _lre(sd_table, sd_cert) >= 9.0
-        assert _lre(f_vox, f_cert) >= 9.0, (f_vox, f_cert)
-        assert _lre(sd_vox, sd_cert) >= 9.0, (sd_vox, sd_cert)
+        assert lre(f_table, f_cert) >= 9.0 and lre(sd_table, sd_cert) >= 9.0
+        assert lre(f_vox, f_cert) >= 9.0, (f_vox, f_cert)
+        assert lre(sd_vox, sd_cert) >= 9.0, (sd_vox, sd_cert)
     else:
         # about 4.2-4.4 digits, the ceiling exact arithmetic on the float64 inputs reaches (REFERENCES.md):
         # the maps must keep every digit the table fit keeps
-        assert _lre(f_table, f_cert) > 3.5
-        assert abs(_lre(f_vox, f_cert) - _lre(f_table, f_cert)) <= 0.1, (f_vox, f_table)
-        assert abs(_lre(sd_vox, sd_cert) - _lre(sd_table, sd_cert)) <= 0.1, (sd_vox, sd_table)
+        assert lre(f_table, f_cert) > 3.5
+        assert abs(lre(f_vox, f_cert) - lre(f_table, f_cert)) <= 0.1, (f_vox, f_table)
+        assert abs(lre(sd_vox, sd_cert) - lre(sd_table, sd_cert)) <= 0.1, (sd_vox, sd_table)

@@ -1,0 +1,199 @@
+"""Speed of permutation inference (Freedman-Lane, max statistic, TFCE) on brain-sized data.
+
+What it does (all data invented and seeded):
+
+1. Makes 100 participants x about 230,000 voxels (an ellipsoid "brain" in a 91x109x91 grid; each
+   participant's map is Gaussian noise smoothed with a Gaussian kernel, sigma 1.5 voxels), and a
+   design of 6 columns: intercept, two groups of 50, and 4 covariates.  The contrast is the group
+   difference (t, two-sided), so the nuisance has 5 columns; 4 of them move under permutation and
+   the engine stacks m = 5 rows per rearrangement.
+2. Times, in one run:
+
+   * the naive refit: residualise, permute, ``numpy.linalg.lstsq`` on all voxels (a few
+     permutations, per permutation);
+   * the matrix-product floor: the engine's stacked product (B m, n) @ (n, V) for a batch of
+     B = 100 rearrangements, over the same voxel tiles as the engine, into a preallocated output
+     (best of 3),
+     measured before and after the engine run; per permutation.  The floor of the full-design
+     product (B p rows, as in REFERENCES.md) is printed for comparison;
+   * the engine (``run_permutations``) for max-statistic voxel FWE with J permutations (default
+     5,000): wall time per permutation and its ratio to the floor (goal <= 1.5);
+   * TFCE: CPU time per map of the two-sided TFCE of null maps (one process), and the engine with
+     TFCE for a smaller number of permutations with worker processes, scaled to 5,000 (said so).
+
+Nothing is asserted; the figures are printed, with the load average (other processes on the
+machine slow everything down).  ``--quick`` runs a small version in well under a minute.
+
+Usage::
+
+    python benchmarks/permutation_speed.py                 # full run (several minutes)
+    python benchmarks/permutation_speed.py --quick
+    python benchmarks/permutation_speed.py --perms 1000 --tfce-perms 100 --jobs 2
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import time
+
+import numpy as np
+from scipy import ndimage
+
+from groupmodel.inference import (
+    plan_contrast,
+    residualise,
+    run_permutations,
+    stack_rows,
+    tile_width,
+)
+from groupmodel.permutation import permutation_set
+from groupmodel.tfce import TfceParams, grid_adjacency, tfce
+
+SEED = 20240606
+FULL = {"shape": (91, 109, 91), "semi_axes": (36.0, 45.0, 34.0), "n": 100}
+QUICK = {"shape": (30, 36, 30), "semi_axes": (12.0, 15.0, 11.5), "n": 40}
+
+
+def brain_mask(shape: tuple[int, int, int], semi_axes: tuple[float, float, float]) -> np.ndarray:
+    """Boolean ellipsoid centred in the grid."""
+    idx = np.indices(shape, dtype=np.float32)
+    r2 = sum(((idx[d] - (shape[d] - 1) / 2) / semi_axes[d]) ** 2 for d in range(3))
+    return r2 <= 1.0
+
+
+def make_data(cfg: dict, smooth: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Mask, design (n, 6) and data (n, V) float64."""
+    rng = np.random.default_rng(SEED)
+    mask = brain_mask(cfg["shape"], cfg["semi_axes"])
+    n = cfg["n"]
+    group = np.r_[np.zeros(n // 2), np.ones(n - n // 2)]
+    cov = rng.standard_normal((n, 4))
+    cov[:, 0] += 0.5 * group  # a nuisance correlated with the effect of interest
+    X = np.column_stack([np.ones(n), group, cov - cov.mean(axis=0)])
+    Y = np.empty((n, int(mask.sum())))
+    for i in range(n):
+        vol = rng.standard_normal(mask.shape)
+        if smooth > 0:
+            vol = ndimage.gaussian_filter(vol, smooth)
+        Y[i] = vol[mask] / vol[mask].std()
+    return mask, X, Y
+
+
+def product_floor(A: np.ndarray, W: np.ndarray, repeats: int = 3) -> tuple[float, float]:
+    """Best wall and CPU time of the tiled product A @ W into a preallocated output (seconds)."""
+    tile = tile_width(A.shape[0])
+    out = np.empty((A.shape[0], tile))
+    best, best_cpu = np.inf, np.inf
+    V = W.shape[1]
+    for _ in range(repeats):
+        t0, c0 = time.perf_counter(), time.process_time()
+        for s in range(0, V, tile):
+            e = min(V, s + tile)
+            np.matmul(A, W[:, s:e], out=out[:, : e - s])
+        best = min(best, time.perf_counter() - t0)
+        best_cpu = min(best_cpu, time.process_time() - c0)
+    return best, best_cpu
+
+
+def naive_refit(X: np.ndarray, L: np.ndarray, Y: np.ndarray, perms: np.ndarray) -> float:
+    """Seconds per permutation of residualise / permute / lstsq refit / t on all voxels."""
+    from scipy import linalg
+
+    Z = X @ linalg.null_space(L)
+    R = Y - Z @ np.linalg.lstsq(Z, Y, rcond=None)[0]
+    c = L @ np.linalg.pinv(X.T @ X) @ L.T
+    df = X.shape[0] - np.linalg.matrix_rank(X)
+    t0 = time.perf_counter()
+    for p in perms:
+        Ys = R[p]
+        beta = np.linalg.lstsq(X, Ys, rcond=None)[0]
+        s2 = ((Ys - X @ beta) ** 2).sum(axis=0) / df
+        _ = (L @ beta)[0] / np.sqrt(s2 * c[0, 0])
+    return (time.perf_counter() - t0) / len(perms)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--quick", action="store_true", help="small grid and few permutations")
+    ap.add_argument("--perms", type=int, default=None, help="permutations for the max-statistic run (5000)")
+    ap.add_argument("--tfce-perms", type=int, default=None, help="permutations for the TFCE run (200)")
+    ap.add_argument("--tfce-maps", type=int, default=None, help="maps for the per-map TFCE time (10)")
+    ap.add_argument("--jobs", type=int, default=2, help="worker processes for TFCE (2)")
+    ap.add_argument("--smooth", type=float, default=1.5, help="smoothing sigma in voxels (1.5)")
+    ap.add_argument("--skip-naive", action="store_true")
+    args = ap.parse_args()
+    cfg = QUICK if args.quick else FULL
+    J = args.perms or (300 if args.quick else 5000)
+    JT = args.tfce_perms or (60 if args.quick else 200)
+    n_maps = args.tfce_maps or (3 if args.quick else 10)
+
+    print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} (1 min)")
+    t0 = time.perf_counter()
+    mask, X, Y = make_data(cfg, args.smooth)
+    n, V = Y.shape
+    L = np.array([[0, 1, 0, 0, 0, 0.0]])
+    print(f"data: {n} observations x {V} voxels, design {X.shape[1]} columns "
+          f"(made in {time.perf_counter() - t0:.1f} s)")
+
+    plan = plan_contrast(X, L)
+    pset = permutation_set(n, 101, "permute", seed=1, classes=plan.classes)
+    W, _ = residualise(plan, Y)
+    A = stack_rows(plan, *pset.batch(0, 100))
+    full_rows = np.repeat(np.linalg.qr(X)[0].T[None], 100, axis=0).reshape(-1, n)
+    print(f"rows per rearrangement in the stacked product: m = {plan.m} (design p = {X.shape[1]})")
+
+    if not args.skip_naive:
+        naive = naive_refit(X, L, Y, pset.perm[1:4])
+        print(f"naive lstsq refit: {naive:.3f} s per permutation")
+
+    (fb, fb_cpu), (fp, _) = product_floor(A, W), product_floor(full_rows, W)
+    t0, c0 = time.perf_counter(), time.process_time()
+    res = run_permutations(X, L, Y, n_perm=J, seed=1)
+    engine, engine_cpu = (time.perf_counter() - t0) / J, (time.process_time() - c0) / J
+    fa, fa_cpu = product_floor(A, W)
+    floor, floor_cpu = (fb + fa) / 200, (fb_cpu + fa_cpu) / 200
+    print(f"product floor (B m = {A.shape[0]} rows, tiles of {tile_width(A.shape[0])} voxels): "
+          f"{10 * fb:.2f} ms before, {10 * fa:.2f} ms after, mean {1e3 * floor:.2f} ms per permutation "
+          f"(CPU {1e3 * floor_cpu:.2f} ms)")
+    print(f"full-design product floor (B p = {full_rows.shape[0]} rows): {10 * fp:.2f} ms per permutation")
+    print(f"engine, max-statistic voxel FWE, {J} permutations: {engine * J:.1f} s total, "
+          f"{1e3 * engine:.2f} ms per permutation (CPU {1e3 * engine_cpu:.2f} ms); ratio to floor "
+          f"{engine / floor:.2f} wall, {engine_cpu / floor_cpu:.2f} CPU (goal <= 1.5); ratio to the "
+          f"full-design floor {engine / (fp / 100):.2f}")
+    print(f"   smallest FWE p {np.nanmin(res.p_fwe):.4f}, 95th percentile of max |t| "
+          f"{np.quantile(res.max_null, 0.95):.3f}")
+
+    # TFCE: per-map CPU time on null maps, then the engine with workers.
+    adj = grid_adjacency(mask)
+    maps = np.stack([Y[i] * 1.0 for i in range(n_maps)])  # smooth null maps, unit SD
+    dh = np.abs(maps).max() / 100
+    cpu = []
+    for m in maps:
+        t0 = time.process_time()
+        tfce(m * 3.0, adj, dh * 3.0, two_sided=True)
+        cpu.append(time.process_time() - t0)
+    per_map = float(np.median(cpu))
+    print(f"TFCE (two-sided, E 0.5, H 2, dh = max/100, 26-connectivity) on {V} voxels: "
+          f"{1e3 * per_map:.0f} ms CPU per map (median of {n_maps}, one process); "
+          f"x 5000 = {5000 * per_map / 60:.1f} CPU-minutes")
+    # Fixed cost (worker start-up, observed map): a run with one batch of 2 rearrangements.
+    t0 = time.perf_counter()
+    run_permutations(X, L, Y, n_perm=2, seed=1, adjacency=adj, tfce_params=TfceParams(), n_jobs=args.jobs)
+    fixed = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    rt = run_permutations(X, L, Y, n_perm=JT, seed=1, adjacency=adj, tfce_params=TfceParams(), n_jobs=args.jobs)
+    wall = time.perf_counter() - t0
+    scaled = fixed + max(wall - fixed, 0.0) * 5000 / JT
+    print(f"engine with TFCE, {JT} permutations, {args.jobs} worker processes: {wall:.1f} s wall, of which "
+          f"about {fixed:.1f} s fixed (start-up, observed map; dh {rt.tfce_params.dh:.4f})")
+    if wall > 2 * fixed:
+        print(f"   scaled to 5000 permutations: {scaled / 60:.1f} minutes (goal < 10; measured on {JT} "
+              "permutations and scaled linearly beyond the fixed cost)")
+    else:
+        print("   run too short next to the fixed cost to scale; use more --tfce-perms")
+    print(f"load average at the end: {os.getloadavg()[0]:.2f}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,208 @@
+"""Properties of the permutation engine, TFCE and the FDR correction (hypothesis and fixed cases).
+
+Outside references: the definitions of exchangeability blocks (Winkler et al. 2014, NeuroImage
+92:381-397: within-block permutations keep rows in their blocks, whole-block permutations keep
+blocks intact), scipy.stats.false_discovery_control, and common practice for reproducibility
+(same seed, same rearrangements; results independent of chunking and of worker count).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import ndimage, stats
+
+from groupmodel.inference import run_permutations, run_tests
+from groupmodel.multiple import fdr_bh
+from groupmodel.permutation import count_rearrangements, permutation_set
+from groupmodel.tfce import TfceParams, grid_adjacency, tfce
+
+SETTINGS = settings(max_examples=40, deadline=None)
+
+
+@st.composite
+def block_layouts(draw, equal: bool = False):
+    n_blocks = draw(st.integers(1, 5))
+    if equal:
+        size = draw(st.integers(1, 4))
+        sizes = [size] * n_blocks
+    else:
+        sizes = draw(st.lists(st.integers(1, 5), min_size=n_blocks, max_size=n_blocks))
+    labels = np.repeat(np.arange(n_blocks) * 3 + 1, sizes)  # non-contiguous label values
+    order = draw(st.permutations(list(range(labels.size))))
+    return labels[np.array(order)]  # blocks interleaved in row order
+
+
+@SETTINGS
+@given(blocks=block_layouts(), J=st.integers(2, 60), seed=st.integers(0, 2**31 - 1),
+       method=st.sampled_from(["permute", "both"]))
+def test_within_block_permutations_stay_in_blocks(blocks, J, seed, method):
+    n = blocks.size
+    ps = permutation_set(n, J, method, blocks=blocks, seed=seed)
+    assert np.array_equal(ps.perm[0], np.arange(n))  # identity first
+    assert np.all(np.sort(ps.perm, axis=1) == np.arange(n))  # each row a permutation
+    assert np.all(blocks[ps.perm] == blocks[None, :])  # Winkler et al. 2014: never across blocks
+    if method == "both":
+        assert np.all(ps.flips[0] == 1) and set(np.unique(ps.flips)) <= {-1, 1}
+    again = permutation_set(n, J, method, blocks=blocks, seed=seed)
+    assert np.array_equal(again.perm, ps.perm)  # same seed, same set
+
+
+@SETTINGS
+@given(blocks=block_layouts(equal=True), J=st.integers(2, 60), seed=st.integers(0, 2**31 - 1),
+       method=st.sampled_from(["permute", "flip", "both"]))
+def test_whole_block_rearrangements_keep_blocks_intact(blocks, J, seed, method):
+    n = blocks.size
+    ps = permutation_set(n, J, method, blocks=blocks, whole_blocks=True, seed=seed)
+    labels = np.unique(blocks)
+    rows = {b: np.flatnonzero(blocks == b) for b in labels}
+    for j in range(ps.size):
+        for b in labels:
+            if ps.perm is not None:
+                taken = ps.perm[j, rows[b]]
+                # The rows of one whole block, in their order (Winkler et al. 2014).
+                assert any(np.array_equal(taken, rows[c]) for c in labels)
+            if ps.flips is not None:
+                assert np.unique(ps.flips[j, rows[b]]).size == 1  # one sign per block
+
+
+@SETTINGS
+@given(n=st.integers(2, 9), n_classes=st.integers(1, 3), method=st.sampled_from(["permute", "flip", "both"]),
+       seed=st.integers(0, 1000))
+def test_exhaustive_enumeration_is_complete_and_distinct(n, n_classes, method, seed):
+    rng = np.random.default_rng(seed)
+    classes = rng.integers(0, n_classes, n)
+    total = count_rearrangements(n, method, classes=classes)
+    if total > 3000:
+        return
+    ps = permutation_set(n, 3000, method, classes=classes, seed=seed)
+    assert ps.exhaustive and ps.size == total and ps.seed is None
+    # Distinct as arrangements: the class landing on each data row (and the signs).
+    keys = set()
+    for j in range(ps.size):
+        arr = np.empty(n, dtype=np.int64)
+        if ps.perm is not None:
+            arr[ps.perm[j]] = classes
+        else:
+            arr[:] = classes
+        sig = tuple(ps.flips[j]) if ps.flips is not None else ()
+        keys.add((tuple(arr), sig))
+    assert len(keys) == total
+
+
+def test_seed_changes_the_set():
+    a = permutation_set(30, 100, "permute", seed=1)
+    b = permutation_set(30, 100, "permute", seed=2)
+    assert not np.array_equal(a.perm, b.perm)
+    assert np.array_equal(a.perm[0], b.perm[0])  # both start with the identity
+    c = permutation_set(30, 100, "flip", seed=1)
+    d = permutation_set(30, 100, "flip", seed=2)
+    assert not np.array_equal(c.flips, d.flips)
+
+
+def _grid_study(seed=0, n=10):
+    rng = np.random.default_rng(seed)
+    shape = (6, 7, 5)
+    mask = np.ones(shape, bool)
+    mask[:2, :2, :] = False
+    V = int(mask.sum())
+    X = np.column_stack([np.ones(n), np.r_[np.zeros(n // 2), np.ones(n - n // 2)], rng.standard_normal(n)])
+    Y = np.stack([ndimage.gaussian_filter(rng.standard_normal(shape), 1)[mask] for _ in range(n)]) * 3
+    Y[:, :40] += 1.5 * X[:, [1]]
+    return X, Y, grid_adjacency(mask), V
+
+
+def test_results_do_not_depend_on_chunk_size_or_memmap(tmp_path):
+    X, Y, adj, V = _grid_study()
+    opts = dict(n_perm=120, seed=5, adjacency=adj, tfce_params=TfceParams(), cluster_z=2.0, batch_size=50)
+    results = [run_permutations(X, [0, 1, 0], Y, chunk_size=c, **opts) for c in (1, 37, None)]
+    path = tmp_path / "data.dat"
+    mm = np.memmap(path, dtype=np.float32, mode="w+", shape=Y.shape)
+    mm[:] = Y
+    mm.flush()
+    mm = np.memmap(path, dtype=np.float32, mode="r", shape=Y.shape)
+    results.append(run_permutations(X, [0, 1, 0], mm, chunk_size=50, **opts))
+    ref = results[0]
+    for i, r in enumerate(results[1:]):
+        data_ref = ref if i < 2 else run_permutations(X, [0, 1, 0], Y.astype(np.float32), **opts)
+        for name in ("p_perm", "p_fwe", "p_tfce_fwe", "p_cluster_fwe", "cluster_max_null"):
+            np.testing.assert_array_equal(getattr(r, name), getattr(data_ref, name), err_msg=name)
+        for name in ("stat", "max_null", "tfce", "tfce_max_null"):
+            np.testing.assert_allclose(getattr(r, name), getattr(data_ref, name), rtol=1e-12, err_msg=name)
+        assert r.tfce_params == data_ref.tfce_params
+
+
+@pytest.mark.slow  # starts two worker processes
+def test_results_do_not_depend_on_worker_count():
+    X, Y, adj, V = _grid_study(seed=1)
+    opts = dict(n_perm=80, seed=2, adjacency=adj, tfce_params=TfceParams(), cluster_z=2.3, batch_size=30)
+    one = run_permutations(X, [0, 1, 0], Y, n_jobs=1, **opts)
+    two = run_permutations(X, [0, 1, 0], Y, n_jobs=2, **opts)
+    np.testing.assert_array_equal(one.tfce_max_null, two.tfce_max_null)
+    np.testing.assert_array_equal(one.cluster_max_null, two.cluster_max_null)
+    np.testing.assert_array_equal(one.p_tfce_fwe, two.p_tfce_fwe)
+
+
+def test_different_seed_gives_different_null():
+    X, Y, _, _ = _grid_study(seed=2)
+    a = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=1)
+    b = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=2)
+    assert not np.array_equal(a.max_null, b.max_null)
+    assert a.max_null[0] == b.max_null[0]  # the identity is the same
+
+
+@SETTINGS
+@given(seed=st.integers(0, 10_000), scale=st.floats(0.5, 4.0), bump=st.floats(0.0, 2.0))
+def test_tfce_monotone_and_antisymmetric(seed, scale, bump):
+    rng = np.random.default_rng(seed)
+    shape = (5, 4, 4)
+    mask = rng.uniform(size=shape) > 0.2
+    adj = grid_adjacency(mask)
+    x = ndimage.gaussian_filter(rng.standard_normal(shape), 0.8)[mask] * scale
+    y = x + bump * rng.uniform(size=x.size)  # y >= x everywhere
+    tx, ty = tfce(x, adj, 0.1), tfce(y, adj, 0.1)
+    # Raising values can only grow clusters and heights (Smith and Nichols 2009 definition).
+    assert np.all(ty >= tx - 1e-12)
+    assert np.all(tx >= 0) and np.all(tx[x < 0.1 - 1e-9] == 0)
+    both = tfce(x, adj, 0.1, two_sided=True)
+    np.testing.assert_allclose(tfce(-x, adj, 0.1, two_sided=True), -both, rtol=1e-12, atol=1e-12)
+
+
+@SETTINGS
+@given(p=st.lists(st.floats(0, 1), min_size=1, max_size=60))
+def test_bh_properties(p):
+    p = np.array(p)
+    adj = fdr_bh(p)
+    np.testing.assert_array_equal(adj, stats.false_discovery_control(p, method="bh"))  # scipy
+    assert np.all(adj >= p) and np.all(adj <= 1)
+    order = np.argsort(p, kind="stable")
+    assert np.all(np.diff(adj[order]) >= 0)  # monotone in p
+
+
+def test_two_sided_tfce_p_uses_absolute_values():
+    X, Y, adj, V = _grid_study(seed=3)
+    Y = Y.copy()
+    Y[:, 40:80] -= 3.0 * X[:, [1]]  # a strong negative effect as well
+    r = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=1, adjacency=adj, tfce_params=TfceParams(dh=0.1))
+    assert r.tfce.min() < 0 < r.tfce.max()  # sign kept
+    assert np.all(r.tfce_max_null >= 0)
+    neg = r.tfce[40:80]
+    assert np.all(neg <= 0)
+    # FWE p of a negative element compares |TFCE| with the null of max |TFCE| (common practice).
+    expected = (r.tfce_max_null[:, None] >= np.abs(neg)[None, :] * (1 - 1e-12)).mean(axis=0)
+    np.testing.assert_array_equal(r.p_tfce_fwe[40:80], expected)
+    assert np.min(r.p_tfce_fwe[40:80]) <= 0.1
+
+
+def test_run_tests_accepts_ols_tests():
+    from groupmodel.ols import Test
+
+    X, Y, _, _ = _grid_study(seed=4)
+    tests = [Test("group", [0, 1, 0], "t", "greater"), Test("both", [[0, 1, 0], [0, 0, 1]], "F")]
+    results = run_tests(X, tests, Y, n_perm=40, seed=3)
+    assert [r.name for r in results] == ["group", "both"]
+    one = run_permutations(X, [0, 1, 0], Y, tail="greater", n_perm=40, seed=3)
+    np.testing.assert_array_equal(results[0].p_perm, one.p_perm)
+    assert results[1].kind == "F" and results[1].q == 2

@@ -27,6 +27,7 @@ This module knows nothing about statistics.
 from __future__ import annotations
 
 import math
+import mmap
 import os
 import shutil
 import string
@@ -890,9 +891,28 @@ class MaskedData:
         """
         if n_voxels < 1:
             raise ValueError("n_voxels must be >= 1")
+        if self.spill_dir is not None:
+            yield from self._spilled_chunks(n_voxels)
+            return
         for start in range(0, self.n_in_mask, n_voxels):
             cols = slice(start, min(start + n_voxels, self.n_in_mask))
             yield cols, np.array(self.data[:, cols], dtype=np.float64, order="C")
+
+    def _spilled_chunks(self, n_voxels: int) -> Iterator[tuple[slice, np.ndarray]]:
+        # Plain reads, not the memory map: reading a short run of every row through a map makes the kernel
+        # map most of the file (counted in RSS); reads go through the page cache, which is not ours.
+        assert self.spill_dir is not None
+        dtype = self.data.dtype
+        n, total = self.data.shape
+        with open(self.spill_dir / _SPILL_NAME, "rb", buffering=0) as fh:
+            for start in range(0, total, n_voxels):
+                cols = slice(start, min(start + n_voxels, total))
+                width = cols.stop - cols.start
+                raw = np.empty((n, width), dtype=dtype)
+                for i in range(n):
+                    fh.seek((i * total + start) * dtype.itemsize)
+                    fh.readinto(memoryview(raw[i]).cast("B"))
+                yield cols, raw.astype(np.float64)
 
     def voxel_coords(self) -> np.ndarray:
         """Grid indices of the mask columns, shape (n_in_mask, len(grid.shape)), int64."""
@@ -1032,6 +1052,8 @@ def load_masked(
             nonzero_any |= nonzero
             for other in rows[1:]:  # a 4-D volume used by several rows
                 buf[other * n_cand : (other + 1) * n_cand] = row
+            if spill_dir is not None:
+                release_pages(buf)
             done += len(rows)
             if progress is not None:
                 progress(done, n)
@@ -1154,11 +1176,13 @@ def _compact(
         for i in range(n):
             src = buf[i * n_cand : (i + 1) * n_cand]
             out[i] = src if keep_idx is None else src[keep_idx]
+            if i % 16 == 15:
+                release_pages(buf)
         del buf
         shutil.rmtree(spill_dir, ignore_errors=True)
         return out, None
     if keep_idx is not None:
-        _compact_rows(buf, n, n_cand, keep_idx)
+        _compact_rows(buf, n, n_cand, keep_idx, release=lambda b=buf: release_pages(b))
     assert isinstance(buf, np.memmap)
     dtype = buf.dtype
     buf.flush()
@@ -1168,7 +1192,21 @@ def _compact(
     return data, spill_dir
 
 
-def _compact_rows(flat: np.ndarray, n: int, n_cand: int, keep_idx: np.ndarray) -> None:
+def release_pages(array: np.ndarray) -> None:
+    """Write back and drop the resident pages of a file-backed memmap (no-op for arrays in RAM).
+
+    A spilled data matrix is read and written through a memory map; the kernel keeps every page touched
+    resident (counted in the process's RSS) until memory runs short.  Dropping them after each block keeps
+    the resident set within the budget; they are read back from disk when touched again.
+    """
+    base = getattr(array, "_mmap", None)
+    if isinstance(array, np.memmap) and base is not None and hasattr(base, "madvise"):
+        base.flush()
+        base.madvise(mmap.MADV_DONTNEED)
+
+
+def _compact_rows(flat: np.ndarray, n: int, n_cand: int, keep_idx: np.ndarray,
+                  release: Callable[[], None] | None = None) -> None:
     """In place: row i of the result (``keep_idx`` columns) goes to ``flat[i*n_keep:(i+1)*n_keep]``.
 
     ``keep_idx`` holds distinct positions in any order (a gather, not only a selection).  Row i's
@@ -1179,6 +1217,8 @@ def _compact_rows(flat: np.ndarray, n: int, n_cand: int, keep_idx: np.ndarray) -
     for i in range(n):
         row = flat[i * n_cand : (i + 1) * n_cand][keep_idx]
         flat[i * n_keep : (i + 1) * n_keep] = row
+        if release is not None and i % 16 == 15:
+            release()
 
 
 def chunk_size_for(n_obs: int, n_tests: int, memory_bytes: int) -> int:

@@ -211,7 +211,7 @@ def permutation_inference(
                 progress(_name, done, total)
 
         res = run_permutations(
-            model.design.matrix, h.weights, data.data, kind=h.test, tail=h.tail, name=h.name,
+            model.design.matrix, h.weights, data.columns(), kind=h.test, tail=h.tail, name=h.name,
             n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
             whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
             adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,

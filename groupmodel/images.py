@@ -898,21 +898,22 @@ class MaskedData:
             cols = slice(start, min(start + n_voxels, self.n_in_mask))
             yield cols, np.array(self.data[:, cols], dtype=np.float64, order="C")
 
+    def columns(self) -> np.ndarray | SpillReader:
+        """The data matrix for readers of column blocks (``x[:, a:b]``): the array itself, or for a spilled
+        matrix a reader that uses plain file reads (see :meth:`_spilled_chunks`)."""
+        if self.spill_dir is None:
+            return self.data
+        return SpillReader(self.spill_dir / _SPILL_NAME, self.data.dtype, self.data.shape)
+
     def _spilled_chunks(self, n_voxels: int) -> Iterator[tuple[slice, np.ndarray]]:
         # Plain reads, not the memory map: reading a short run of every row through a map makes the kernel
         # map most of the file (counted in RSS); reads go through the page cache, which is not ours.
-        assert self.spill_dir is not None
-        dtype = self.data.dtype
-        n, total = self.data.shape
-        with open(self.spill_dir / _SPILL_NAME, "rb", buffering=0) as fh:
-            for start in range(0, total, n_voxels):
-                cols = slice(start, min(start + n_voxels, total))
-                width = cols.stop - cols.start
-                raw = np.empty((n, width), dtype=dtype)
-                for i in range(n):
-                    fh.seek((i * total + start) * dtype.itemsize)
-                    fh.readinto(memoryview(raw[i]).cast("B"))
-                yield cols, raw.astype(np.float64)
+        reader = self.columns()
+        assert isinstance(reader, SpillReader)
+        total = self.data.shape[1]
+        for start in range(0, total, n_voxels):
+            cols = slice(start, min(start + n_voxels, total))
+            yield cols, reader[:, cols].astype(np.float64)
 
     def voxel_coords(self) -> np.ndarray:
         """Grid indices of the mask columns, shape (n_in_mask, len(grid.shape)), int64."""
@@ -1190,6 +1191,37 @@ def _compact(
     os.truncate(path, n * n_keep * itemsize)
     data = np.memmap(path, dtype=dtype, mode="r", shape=(n, n_keep))
     return data, spill_dir
+
+
+class SpillReader:
+    """Column blocks of a spilled ``(n, V)`` row-major matrix by plain file reads: ``reader[:, a:b]``.
+
+    Reading a short run of every row through a memory map makes the kernel map most of the file, which counts
+    in the process's resident memory; plain reads go through the page cache instead.  Picklable (a path and
+    a shape), so it can be shipped to workers.
+    """
+
+    def __init__(self, path: Path, dtype: np.dtype, shape: tuple[int, int]) -> None:
+        self.path = Path(path)
+        self.dtype = np.dtype(dtype)
+        self.shape = (int(shape[0]), int(shape[1]))
+
+    def __getitem__(self, key: tuple[slice, slice]) -> np.ndarray:
+        rows, cols = key
+        if rows != slice(None) or not isinstance(cols, slice) or cols.step not in (None, 1):
+            raise TypeError("SpillReader supports [:, a:b] only")
+        n, total = self.shape
+        start, stop, _ = cols.indices(total)
+        out = np.empty((n, max(stop - start, 0)), dtype=self.dtype)
+        if out.size:
+            with open(self.path, "rb", buffering=0) as fh:
+                for i in range(n):
+                    fh.seek((i * total + start) * self.dtype.itemsize)
+                    view = memoryview(out[i]).cast("B")
+                    got = fh.readinto(view)
+                    if got != view.nbytes:
+                        raise OSError(f"short read from the spill file {self.path} (row {i})")
+        return out
 
 
 def release_pages(array: np.ndarray) -> None:

@@ -103,8 +103,10 @@ def make_parser() -> argparse.ArgumentParser:
                    help="leave out participants whose image is missing (listed) instead of stopping")
     f.add_argument("--force", action="store_true", help="replace an existing non-empty --out folder")
     f.add_argument("--permutations", type=int, default=0, metavar="J",
-                   help="number of permutations for corrected inference (0: parametric only; e.g. 5000)")
-    f.add_argument("--seed", type=int, default=None, help="random seed for permutations (recorded)")
+                   help="rearrangements for permutation inference, the identity included (0: parametric "
+                   "corrections only; e.g. 5000); all of them, exactly, when fewer exist")
+    f.add_argument("--seed", type=int, default=None,
+                   help="random seed for permutations (default 0; recorded in every sidecar)")
     f.add_argument("--method", choices=["auto", "permutation", "sign_flip", "both"], default="auto",
                    help="how to rearrange the data: row permutation, sign flips, or both (default auto: "
                    "sign flips for one-sample hypotheses, permutation otherwise)")

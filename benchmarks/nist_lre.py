@@ -13,54 +13,20 @@ Run with ``python benchmarks/nist_lre.py``.  Prints
 from __future__ import annotations
 
 import math
-import re
 import sys
 import time
-from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
-import scipy.stats
 
 from groupmodel import tails
 from groupmodel.ols import Test, fit_chunk, prepare
 
-NIST_DIR = Path(scipy.stats.__file__).parent / "tests" / "data" / "nist_anova"
-NIST_SETS = ["AtmWtAg", "SiRstv"] + [f"SmLs0{i}" for i in range(1, 10)]
+# The NIST reader, LRE and exact-arithmetic ceiling are the reference tests' own (one copy of each).
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests" / "reference"))
+from nist_strd import EASY, HARD, NIST_DIR, exact_oneway, lre, read_nist  # noqa: E402
 
-
-def lre(value: float, certified: float) -> float:
-    """Log relative error, capped at 15 (NIST practice); -inf-safe for wildly wrong values."""
-    if value == certified:
-        return 15.0
-    if not math.isfinite(value):
-        return 0.0
-    return max(0.0, min(15.0, -math.log10(abs(value - certified) / abs(certified))))
-
-
-def read_nist(path: Path) -> tuple[float, float, np.ndarray, np.ndarray]:
-    """Certified F and residual SD (header lines 41-48) and (group, response) from line 61."""
-    lines = path.read_text().splitlines()
-    header = "\n".join(lines[40:48])
-    f_cert = float(re.search(r"^Between \w+\s+\d+\s+\S+\s+\S+\s+(\S+)\s*$", header, re.M).group(1))
-    sd_cert = float(re.search(r"Standard Deviation\s+(\S+)", header).group(1))
-    data = np.loadtxt(path, skiprows=60)
-    return f_cert, sd_cert, data[:, 0].astype(int), data[:, 1]
-
-
-def exact_anova(groups: np.ndarray, y: np.ndarray) -> tuple[float, float]:
-    """F and residual SD in exact rational arithmetic on the float64 inputs."""
-    yf = [Fraction(v) for v in y.tolist()]
-    n, levels = len(yf), np.unique(groups)
-    grand = sum(yf, Fraction(0)) / n
-    ssb = ssw = Fraction(0)
-    for lv in levels:
-        cell = [yf[i] for i in np.flatnonzero(groups == lv)]
-        m = sum(cell, Fraction(0)) / len(cell)
-        ssb += len(cell) * (m - grand) ** 2
-        ssw += sum(((v - m) ** 2 for v in cell), Fraction(0))
-    k = len(levels)
-    return float((ssb / (k - 1)) / (ssw / (n - k))), math.sqrt(float(ssw / (n - k)))
+NIST_SETS = EASY + HARD
 
 
 def designs(groups: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -96,12 +62,13 @@ def nist_table() -> None:
     print(head)
     print("-" * len(head))
     for name in NIST_SETS:
-        f_cert, sd_cert, groups, y = read_nist(NIST_DIR / f"{name}.dat")
+        data = read_nist(name)
+        f_cert, sd_cert, groups, y = data.f_certified, data.sd_certified, data.groups, data.y
         x, rows = designs(groups)
         res = fit_chunk(prepare(x, [Test("groups", rows, "F")]), y)
         f = float(res["groups"].statistic[0])
         sd = math.sqrt(float(res.residual_variance[0]))
-        f_ex, sd_ex = exact_anova(groups, y)
+        f_ex, sd_ex = exact_oneway(groups, y)
         f_ne, sd_ne = normal_equations(x, y, rows)
         exact = f"{lre(f_ex, f_cert):5.1f}/{lre(sd_ex, sd_cert):<5.1f}"
         normal = f"{lre(f_ne, f_cert):9.1f}/{lre(sd_ne, sd_cert):<5.1f}"

@@ -18,13 +18,14 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from itertools import product
 from typing import Any, Literal
 
 import numpy as np
 
 from .coding import degree_name, orthogonal_polynomials
-from .design import Cell, Design
-from .errors import EstimabilityError, ModelError, SpecError
+from .design import Design
+from .errors import ModelError, SpecError
 
 Tail = Literal["two-sided", "greater", "less"]
 
@@ -34,7 +35,6 @@ ESTIMABILITY_TOL = 1e-8
 #: Relative tolerance under which a row of weights counts as zero (the hypothesis vanishes in this model).
 VANISH_TOL = 1e-10
 
-_T_KINDS = ("compare", "mean", "trend", "slope", "cells")
 _KINDS = ("main", "interaction", "compare", "mean", "trend", "slope", "cells", "weights")
 
 
@@ -272,7 +272,7 @@ def _cell_weights_for(
             _require_factor(design, f, f"interaction[{i}]", hname)
         combos = np.array(
             [cells.marginal_mean(dict(zip(fs, combo, strict=True)))
-             for combo in _product([design.factors[f].levels for f in fs])]
+             for combo in product(*(design.factors[f].levels for f in fs))]
         )
         diff = np.ones((1, 1))
         for f in fs:
@@ -361,12 +361,6 @@ def _cell_weights_for(
         return kind, total[None, :], _join(f"{_combination(parts)} = 0", at_text), None
 
     raise AssertionError(kind)
-
-
-def _product(seqs: Sequence[Sequence[str]]) -> list[tuple[str, ...]]:
-    from itertools import product
-
-    return list(product(*seqs))
 
 
 def _raw_weights(design: Design, hname: str, body: Mapping[str, Any]) -> np.ndarray:
@@ -612,25 +606,3 @@ def build_hypotheses(design: Design, specs: Mapping[str, Mapping[str, Any]]) -> 
     """Build every hypothesis of a spec, in order (errors stop at the first bad definition)."""
     space = RowSpace.of(design.matrix)
     return {name: build_hypothesis(design, name, body, space) for name, body in specs.items()}
-
-
-def require_estimable(hypotheses: Mapping[str, Hypothesis]) -> None:
-    """Raise EstimabilityError listing every non-estimable hypothesis with its reason."""
-    bad = [h for h in hypotheses.values() if not h.estimable]
-    if bad:
-        raise EstimabilityError(
-            "; ".join(f"hypothesis {h.name} is not estimable: {h.problems[0]}" for h in bad)
-            + "; drop or change these hypotheses, or collect data for the empty cells"
-        )
-
-
-def hypothesis_kind_names() -> tuple[str, ...]:
-    return _KINDS
-
-
-def is_t_kind(kind: str) -> bool:
-    return kind in _T_KINDS
-
-
-def cells_of(design: Design) -> list[Cell]:
-    return list(design.cells)

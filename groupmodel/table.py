@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import csv
 import json
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -308,8 +308,3 @@ def select_sample(
             nums.append(x)
         out[c] = np.asarray(nums, dtype=float)
     return Sample(data=out, exclusions=tuple(exclusions), levels=levels, source=spec.participants, notes=notes)
-
-
-def format_exclusions(exclusions: Iterable[Exclusion]) -> list[str]:
-    """One readable line per left-out row."""
-    return [f"{e.participant_id} (row {e.row}): {e.reason}" for e in exclusions]

@@ -141,6 +141,22 @@ CORRECTION_NOTES = {
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
 }
+#: What the cluster tables hold.
+CLUSTER_KINDS = {
+    "voxel_fwe": "clusters of voxels with voxel-level FWE p < 0.05; p_fwe is the smallest in the cluster",
+    "tfce_fwe": "clusters of voxels with TFCE FWE p < 0.05; p_fwe is the smallest in the cluster",
+    "cluster_extent_fwe": "clusters at the cluster-forming threshold; p_fwe is the cluster-extent FWE p",
+}
+CLUSTER_COLUMNS = {
+    "cluster": "cluster number, largest first",
+    "sign": "+1 for high values, -1 for low values (two-sided t)",
+    "size": "voxels (or vertices)",
+    "peak_stat": "most extreme statistic in the cluster's direction",
+    "peak_index": "position of the peak in the mask's voxel order",
+    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
+    "com_x, com_y, com_z": "unweighted centre of mass in mm",
+    "p_fwe": "family-wise error p",
+}
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -448,6 +464,9 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
             for kind, table in fit.tables.get(h.name, {}).items():
                 tname = f"{h.name}_clusters_{kind}.tsv"
                 o.write_tsv(tname, table)
+                o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
+                    fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
+                    clusters=CLUSTER_KINDS[kind]))
                 written.append(tname)
         fname = _map_name(fit.grid, "residual_variance")
         write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")

@@ -106,6 +106,8 @@ def test_cli_writes_permutation_maps_sidecars_and_cluster_tables(study, tmp_path
     for kind in ("voxel_fwe", "tfce_fwe", "cluster_extent_fwe"):
         table = pd.read_csv(out / f"group_clusters_{kind}.tsv", sep="\t")
         assert list(table.columns[:4]) == ["cluster", "sign", "size", "peak_stat"]
+        meta = json.loads((out / f"group_clusters_{kind}.json").read_text())
+        assert meta["statistic"] == f"clusters_{kind}" and "clinical" in meta["note"] and "p_fwe" in meta["columns"]
     summary = json.loads((out / "summary.json").read_text())
     assert summary["inference"]["permutations"] == 30
 

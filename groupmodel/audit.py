@@ -53,7 +53,14 @@ from .audit_contrasts import (
 )
 from .audit_read import AuditFinding, listing, num_text, read_matrix
 from .audit_rows import RowsMixin
-from .checks import CONDITION_WARN, VIF_WARN, condition_number, matrix_rank, variance_inflation
+from .checks import (
+    CONDITION_WARN,
+    VIF_WARN,
+    condition_number,
+    has_constant_column,
+    matrix_rank,
+    variance_inflation,
+)
 from .coding import make_coding
 from .design import Column, CovariateCoding
 from .errors import InputError, OutputError, TableError
@@ -455,7 +462,7 @@ class _Auditor(RowsMixin, ContrastsMixin, SpecMixin):
                         "nearly redundant column")
             # VIF regresses each column on the others plus a constant; without a constant column (a cell-means
             # design) the indicators sum to that constant and the figure means nothing, so it is skipped.
-            constant = any(np.ptp(x[:, j]) == 0 and np.any(x[:, j]) for j in range(p))
+            constant = has_constant_column(x)
             for col, v in (variance_inflation(x, names) if constant else {}).items():
                 if v > VIF_WARN:
                     rep.add("rank", "warning", "high_vif",

@@ -99,6 +99,11 @@ def condition_number(matrix: np.ndarray) -> float:
     return float(s.max() / s.min()) if s.min() > 0 else float("inf")
 
 
+def has_constant_column(matrix: np.ndarray) -> bool:
+    """Whether some column is a nonzero constant (an intercept)."""
+    return bool(np.any((np.ptp(matrix, axis=0) == 0) & (matrix[0] != 0))) if matrix.size else False
+
+
 def variance_inflation(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
     """VIF of every non-constant column: 1 / (1 - R^2) from regressing it on the other columns and a constant.
 
@@ -188,7 +193,9 @@ def check_design(design: Design) -> list[Finding]:
             f"condition number {cond:.3g} (columns scaled to unit length) is above {CONDITION_WARN:g}: "
             "estimates are sensitive to small changes in the data; centre covariates or simplify the model",
         ))
-    if rank == p:
+    if rank == p and has_constant_column(x):
+        # Without a constant column (cell-means and other no-intercept designs) the usual VIF, which adds a
+        # constant to each regression, is infinite by construction and says nothing: skip it, as check does.
         for col, v in variance_inflation(x, names).items():
             if v > VIF_WARN:
                 findings.append(Finding(

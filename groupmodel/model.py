@@ -14,7 +14,15 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .checks import Finding, cell_counts_by_term, check_design, condition_number, matrix_rank, variance_inflation
+from .checks import (
+    Finding,
+    cell_counts_by_term,
+    check_design,
+    condition_number,
+    has_constant_column,
+    matrix_rank,
+    variance_inflation,
+)
 from .design import Design, build_design
 from .errors import ModelError, SpecError
 from .hypotheses import Hypothesis, build_hypotheses
@@ -106,7 +114,8 @@ class Model:
             "singular_values": s.tolist(),
             "condition_number": condition_number(d.matrix),
             "condition_number_scaling": "columns scaled to unit length",
-            "variance_inflation": variance_inflation(d.matrix, d.column_names),
+            "variance_inflation": (variance_inflation(d.matrix, d.column_names)
+                                   if has_constant_column(d.matrix) else None),
             "cell_counts": cell_counts_by_term(d),
             "cells": [
                 {"cell": dict(zip(d.factors, c, strict=True)), "count": int(k), "design_row": r.tolist()}

@@ -335,7 +335,8 @@ def _cell_weights_for(
         means = np.array([cells.marginal_mean({f: lv}) for lv in fc.levels])
         w = (coef @ means)[None, :]
         combo = _combination([(c, f"mean({f}={lv})") for c, lv in zip(coef, fc.levels, strict=True)])
-        stmt = f"{degree_name(degree)} trend over {f} scores {list(map(_num, fc.scores or ()))}: {combo} = 0"
+        scores = ", ".join(map(_num, fc.scores or ()))
+        stmt = f"{degree_name(degree)} trend over {f} scores [{scores}]: {combo} = 0"
         return kind, w, _join(stmt, cells.averaged_over([f]), at_text), None
 
     if kind == "slope":

@@ -83,6 +83,7 @@ import numpy as np
 
 from .clusters import Clusters, label_clusters, max_cluster_size, stat_threshold
 from .errors import EstimabilityError, InputError, ModelError
+from .ols import design_matrix
 from .permutation import Method, PermutationSet, default_method, permutation_set
 from .tfce import Adjacency, TfceParams, tfce
 
@@ -159,18 +160,6 @@ class Partition:
         return int(self.interest.shape[0])
 
 
-def _as_design(design: np.ndarray) -> np.ndarray:
-    X = np.asarray(design, dtype=np.float64)
-    if X.ndim != 2 or X.shape[0] < 1 or X.shape[1] < 1:
-        raise InputError(
-            f"the design must be a 2-D (n, p) array; got shape {np.shape(design)} "
-            "(in permutation inference); pass one row per observation"
-        )
-    if not np.all(np.isfinite(X)):
-        raise InputError("the design contains NaN or inf (in permutation inference); fix the design matrix")
-    return X
-
-
 def _as_weights(weights: np.ndarray, p: int) -> np.ndarray:
     L = np.asarray(weights, dtype=np.float64)
     if L.ndim == 1:
@@ -207,7 +196,7 @@ def partition(design: np.ndarray, weights: np.ndarray, kind: Kind = "t") -> Part
     ModelError
         If the contrast is zero, a t contrast has rank > 1, or no residual df remain.
     """
-    X = _as_design(design)
+    X = design_matrix(design, " (in permutation inference)")
     L = _as_weights(weights, X.shape[1])
     n, p = X.shape
     U, s, Vt = np.linalg.svd(X, full_matrices=False)
@@ -883,7 +872,7 @@ def run_permutations(
     -------
     PermutationResult
     """
-    X = _as_design(design)
+    X = design_matrix(design, " (in permutation inference)")
     n = X.shape[0]
     data_shape = getattr(data, "shape", None)
     if data_shape is None or len(data_shape) != 2 or data_shape[0] != n:

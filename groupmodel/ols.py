@@ -257,6 +257,26 @@ def _readonly(a: np.ndarray) -> np.ndarray:
     return a
 
 
+def design_matrix(design: np.ndarray, where: str = "") -> np.ndarray:
+    """The design as a finite float64 (n, p) array, or an InputError naming the first bad entry.
+
+    ``where`` (e.g. ``" (in permutation inference)"``) says which step refused it.
+    """
+    x = np.array(design, dtype=np.float64)
+    if x.ndim != 2 or x.shape[0] < 1 or x.shape[1] < 1:
+        raise InputError(
+            f"expected a design matrix of shape (n, p), got shape {np.shape(design)}{where}; "
+            "pass one row per observation"
+        )
+    if not np.all(np.isfinite(x)):
+        bad = np.argwhere(~np.isfinite(x))[0]
+        raise InputError(
+            f"expected a finite design matrix, got {x[bad[0], bad[1]]} at row {bad[0]}, column {bad[1]}{where}; "
+            "remove or fill the missing values before building the design"
+        )
+    return x
+
+
 def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = None) -> Prepared:
     """Factorise the design and check the tests, once per model.
 
@@ -283,18 +303,7 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
     EstimabilityError
         A test row outside the row space of the design (names the test and the row).
     """
-    x = np.array(design, dtype=np.float64)
-    if x.ndim != 2 or x.shape[0] < 1 or x.shape[1] < 1:
-        raise InputError(
-            f"expected a design matrix of shape (n, p), got shape {np.shape(design)}; "
-            "pass one row per observation"
-        )
-    if not np.all(np.isfinite(x)):
-        bad = np.argwhere(~np.isfinite(x))[0]
-        raise InputError(
-            f"expected a finite design matrix, got {x[bad[0], bad[1]]} at row {bad[0]}, column {bad[1]}; "
-            "remove or fill the missing values before building the design"
-        )
+    x = design_matrix(design)
     n, p = x.shape
     names = [t.name for t in tests]
     dupes = sorted({nm for nm in names if names.count(nm) > 1})

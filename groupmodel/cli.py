@@ -117,6 +117,9 @@ def make_parser() -> argparse.ArgumentParser:
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
     f.add_argument("--jobs", type=int, default=None, metavar="N",
                    help="worker processes for TFCE and cluster permutations (results do not depend on it)")
+    f.add_argument("--threads", type=int, default=None, metavar="N",
+                   help="threads for the permutation products (default: all cores this process may use; "
+                   "results do not depend on it)")
     f.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
 
     c = sub.add_parser(

@@ -55,6 +55,9 @@ class InferenceOptions:
         Surface (GIFTI with a triangle array) giving vertex neighbours for surface data.
     jobs : int
         Worker processes for TFCE and cluster nulls; results do not depend on it.
+    threads : int or None
+        Threads for the permutation products (default: the cores the process may use); results do
+        not depend on it.
     """
 
     permutations: int = 0
@@ -68,6 +71,7 @@ class InferenceOptions:
     connectivity: int = 26
     mesh: Path | None = None
     jobs: int = 1
+    threads: int | None = None
 
     @property
     def active(self) -> bool:
@@ -99,14 +103,19 @@ class InferenceOptions:
                 given["tfce"] = True
             if getattr(cli, "cluster_threshold", None) is not None:
                 given["cluster_threshold"] = cli.cluster_threshold
-            if getattr(cli, "jobs", None):
+            if getattr(cli, "jobs", None) is not None:
                 given["jobs"] = cli.jobs
+            if getattr(cli, "threads", None) is not None:
+                given["threads"] = cli.threads
             opts = replace(opts, **given)
         if (opts.tfce or opts.cluster_threshold is not None or opts.blocks or opts.whole_blocks) and not opts.active:
             raise InputError(
                 "TFCE, cluster-extent and exchangeability blocks need permutations; found --permutations 0; "
                 "add --permutations J (e.g. 5000) or inference.permutations to the spec"
             )
+        for option, value in (("--jobs", opts.jobs), ("--threads", opts.threads)):
+            if value is not None and value < 1:
+                raise InputError(f"{option} must be a whole number >= 1; got {value}; give e.g. {option} 2")
         if opts.whole_blocks and not opts.blocks:
             raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
         return opts
@@ -215,7 +224,8 @@ def permutation_inference(
             n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
             whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
             adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
-            cluster_z=options.cluster_threshold, n_jobs=options.jobs, cache_bytes=cache_bytes, progress=report,
+            cluster_z=options.cluster_threshold, n_jobs=options.jobs, threads=options.threads, cache_bytes=cache_bytes,
+            progress=report,
         )
         record = {
             "method": _METHOD_NAMES.get(res.method, res.method),

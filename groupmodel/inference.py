@@ -40,9 +40,12 @@ that change the nuisance fit are rightly counted as distinct.
 
 Speed: permuting the data rows is the same as permuting the design rows, so for a batch of B
 rearrangements the design side is stacked into one (B m, n) matrix and multiplied with the chunk
-``W`` (n, v) in one product, in tiles of voxels that keep the result in cache.  The data are scaled
-to ``||W|| = 1`` per voxel once (statistics do not change), and the loop compares and maximises a
-cheap increasing function of the statistic (see ``_tile``), converting only what it keeps.
+``W`` (n, v) in one product, in tiles of voxels that keep the result in a core's cache.  The data
+are scaled to ``||W|| = 1`` per voxel once (statistics do not change), and the loop compares and
+maximises a cheap increasing function of the statistic (see ``_tile``), converting only what it
+keeps.  Each chunk is split into one contiguous part per thread; every thread does its own products
+(with BLAS held to one thread) and the element-wise work after them, so that work, which BLAS's own
+threads would leave to a single core, runs on all of them.
 Voxels whose residuals are at rounding level (constant data) get NaN statistics and p values.
 
 Statistics used for inference ("oriented" statistics): ``|t|`` for two-sided t tests (so the
@@ -65,8 +68,8 @@ statistic with the same p
 
 Reproducibility: the rearrangements depend only on (n, blocks, method, J, seed); each chunk's
 statistics are a pure function of (design, contrast, rearrangements, chunk of data)
-(:func:`chunk_statistics`), so results do not depend on the chunk size, on ``n_jobs`` or on the
-order chunks are processed, apart from the last bits that a BLAS product may change with its shape
+(:func:`chunk_statistics`), so results do not depend on the chunk size, on ``threads``, on
+``n_jobs`` or on the order chunks are processed, apart from the last bits that a BLAS product may change with its shape
 (counts and p values are unaffected thanks to the tolerance above).
 """
 
@@ -74,8 +77,10 @@ from __future__ import annotations
 
 import math
 import multiprocessing
-from collections.abc import Callable, Sequence
-from concurrent.futures import Future, ProcessPoolExecutor
+import os
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -113,13 +118,35 @@ _CLASS_DECIMALS = 8
 #: Residual sums of squares at or below ``(this * n * eps * max|y|)^2`` count as zero (constant data).
 ZERO_SS_FACTOR = 16.0
 #: The permutation loop multiplies tiles of voxels whose (B m, tile) product holds about this
-#: many float64 values (4 MiB), so that the passes over it stay in cache.
-_TILE_VALUES = 2**19
+#: many float64 values (1 MiB, a core's L2 cache here), so that the passes over it stay in cache.
+_TILE_VALUES = 2**17
 
 
 def tile_width(rows: int) -> int:
-    """Voxels per product for a stacked design side of ``rows`` rows (256 to 4096)."""
-    return int(min(4096, max(256, _TILE_VALUES // max(rows, 1))))
+    """Voxels per product for a stacked design side of ``rows`` rows (128 to 4096)."""
+    return int(min(4096, max(128, _TILE_VALUES // max(rows, 1))))
+
+
+def available_cores() -> int:
+    """Cores this process may run on (its CPU affinity; the CPU count where that is unknown)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+@contextmanager
+def single_threaded_blas() -> Iterator[None]:
+    """Limit BLAS to one thread while the block runs (threads of our own share the cores instead).
+
+    The permutation loop runs one thread per core, each doing its own products and the element-wise
+    work after them; a multi-threaded BLAS inside each would oversubscribe the cores.  The limit is
+    process-wide (BLAS has no per-thread setting) and is restored on exit.
+    """
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 # --------------------------------------------------------------------------------------------
@@ -807,6 +834,13 @@ def _chunks(V: int, chunk_size: int | None) -> list[tuple[int, int]]:
     return [(s, min(V, s + size)) for s in range(0, V, size)]
 
 
+def _parts(start: int, stop: int, threads: int, tile: int) -> list[tuple[int, int]]:
+    """Split a chunk into at most ``threads`` contiguous parts of whole tiles, one per thread."""
+    n_tiles = -(-(stop - start) // tile)
+    per = max(1, -(-n_tiles // threads)) * tile
+    return [(s, min(stop, s + per)) for s in range(start, stop, per)]
+
+
 def run_permutations(
     design: np.ndarray,
     weights: np.ndarray,
@@ -826,6 +860,7 @@ def run_permutations(
     tfce_params: TfceParams | None = None,
     cluster_z: float | None = None,
     n_jobs: int = 1,
+    threads: int | None = None,
     cache_bytes: int = 1 << 30,
     progress: Callable[[int, int], None] | None = None,
 ) -> PermutationResult:
@@ -863,6 +898,10 @@ def run_permutations(
         Compute cluster-extent FWE p at this cluster-forming z.
     n_jobs : int
         Worker processes for the TFCE / cluster nulls (results do not depend on it).
+    threads : int, optional
+        Threads for the stacked products and the element-wise work after them (default: the cores
+        this process may use).  Each thread takes its own contiguous part of every chunk and BLAS is
+        limited to one thread meanwhile (:func:`single_threaded_blas`).  Results do not depend on it.
     cache_bytes : int
         Keep the residualised data in memory between batches when it fits in this many bytes.
     progress : callable(done, total), optional
@@ -918,90 +957,119 @@ def run_permutations(
     c_thr: float | None = None
     params: TfceParams | None = None
 
-    buffers: _Buffers | None = None
     maps_buffer: np.ndarray | None = None
     work_obs = np.full(V, np.nan)  # observed working statistic, oriented
     # Per-batch counts fit in a small integer type, which keeps the reduction free of casts.
     count_type = np.uint8 if batch_size < 256 else np.uint16 if batch_size < 65536 else np.int64
+    n_threads = available_cores() if threads is None else int(threads)
+    if n_threads < 1:
+        raise InputError(f"threads must be >= 1; got {threads} (in run_permutations)")
+    # The tile width and the parts each thread takes are fixed for the run (not per batch), so that
+    # the cached residualised parts are reused by every batch.
+    tile = tile_width(plan.m * min(batch_size, J))
+    parts = [_parts(s, e, n_threads, tile) for s, e in chunks]
+    n_slots = max((len(p) for p in parts), default=1)
+    slots: list[_Buffers | None] = [None] * n_slots
+
+    def scan(slot: int, s: int, e: int, A: np.ndarray, b0: int, maps: np.ndarray | None) -> np.ndarray:
+        """Working statistics of one batch on voxels [s, e): counts, observed map, maps; row maxima."""
+        if s in cache:
+            W, bad = cache[s]
+        else:
+            W, bad = _unit_columns(plan, data[:, s:e])
+            if cache_ok:
+                cache[s] = (W, bad)
+        B = A.shape[0] // plan.m
+        buffers = slots[slot]
+        if buffers is None or buffers.rows != A.shape[0]:
+            buffers = slots[slot] = _Buffers(A.shape[0], B, tile)
+        row_max = np.full(B, -np.inf)
+        for ts in range(0, e - s, tile):
+            te = min(e - s, ts + tile)
+            gs, ge = s + ts, s + te
+            tile_bad = bad[(bad >= ts) & (bad < te)] - ts if bad.size else bad
+            if maps is not None:
+                stats_out = maps[:, gs:ge]
+            elif b0 == 0:
+                stats_out = stat[None, gs:ge]
+            else:
+                stats_out = None
+            o = _tile(plan, A, W[:, ts:te], buffers, tile_bad, stats_out)
+            if b0 == 0:
+                if maps is not None:
+                    stat[gs:ge] = maps[0, gs:ge]
+                work_obs[gs:ge] = o[0]
+                work_obs[gs + tile_bad] = np.nan
+                threshold[gs:ge] = _at_least(work_obs[gs:ge])
+            hit = buffers.flags(te - ts)
+            with np.errstate(invalid="ignore"):
+                np.greater_equal(o, threshold[gs:ge], out=hit)
+            count[gs:ge] += np.add.reduce(hit.view(np.uint8), axis=0, dtype=count_type)
+            if o.shape[1]:
+                np.fmax(row_max, np.fmax.reduce(o, axis=1), out=row_max)
+        return row_max
 
     def sink(start: int, tm: np.ndarray, cm: np.ndarray) -> None:
         tfce_max[start : start + tm.size] = tm
         clus_max[start : start + cm.size] = cm
 
+    pool = ThreadPoolExecutor(n_threads, thread_name_prefix="groupmodel-perm") if n_threads > 1 else None
     try:
-        for b0 in range(0, J, batch_size):
-            b1 = min(J, b0 + batch_size)
-            B = b1 - b0
-            perm, flips = pset.batch(b0, b1)
-            A = stack_rows(plan, perm, flips)
-            if buffers is None or buffers.rows != A.shape[0]:
-                buffers = _Buffers(A.shape[0], B, tile_width(A.shape[0]))
-            if need_maps:
-                if maps_buffer is None:
-                    maps_buffer = np.empty((min(batch_size, J), V))
-                maps = maps_buffer[:B]  # reused: a fresh (B, V) array per batch costs page faults
-            else:
-                maps = None
-            for s, e in chunks:
-                if s in cache:
-                    W, bad = cache[s]
+        with single_threaded_blas():
+            for b0 in range(0, J, batch_size):
+                b1 = min(J, b0 + batch_size)
+                B = b1 - b0
+                perm, flips = pset.batch(b0, b1)
+                A = stack_rows(plan, perm, flips)
+                if need_maps:
+                    if maps_buffer is None:
+                        maps_buffer = np.empty((min(batch_size, J), V))
+                    maps = maps_buffer[:B]  # reused: a fresh (B, V) array per batch costs page faults
                 else:
-                    W, bad = _unit_columns(plan, data[:, s:e])
-                    if cache_ok:
-                        cache[s] = (W, bad)
-                for ts in range(0, e - s, buffers.tile):
-                    te = min(e - s, ts + buffers.tile)
-                    gs, ge = s + ts, s + te
-                    tile_bad = bad[(bad >= ts) & (bad < te)] - ts if bad.size else bad
-                    if maps is not None:
-                        stats_out = maps[:, gs:ge]
-                    elif b0 == 0:
-                        stats_out = stat[None, gs:ge]
+                    maps = None
+                for chunk_parts in parts:
+                    # Each thread writes only its own voxels; the row maxima are combined here (the
+                    # maximum does not depend on the order, so neither do the results).
+                    if pool is None:
+                        maxima = [scan(k, s, e, A, b0, maps) for k, (s, e) in enumerate(chunk_parts)]
                     else:
-                        stats_out = None
-                    o = _tile(plan, A, W[:, ts:te], buffers, tile_bad, stats_out)
-                    if b0 == 0:
-                        if maps is not None:
-                            stat[gs:ge] = maps[0, gs:ge]
-                        work_obs[gs:ge] = o[0]
-                        work_obs[gs + tile_bad] = np.nan
-                        threshold[gs:ge] = _at_least(work_obs[gs:ge])
-                    hit = buffers.flags(te - ts)
-                    with np.errstate(invalid="ignore"):
-                        np.greater_equal(o, threshold[gs:ge], out=hit)
-                    count[gs:ge] += np.add.reduce(hit.view(np.uint8), axis=0, dtype=count_type)
-                    if o.shape[1]:
-                        np.fmax(max_null[b0:b1], np.fmax.reduce(o, axis=1), out=max_null[b0:b1])
-            if maps is not None:
-                if runner is None:
-                    # The observed map fixes the TFCE step and the cluster threshold (in stat units).
-                    observed = _orient(maps[0].copy(), kind, tail)
-                    if tfce_params is not None:
-                        dh = tfce_params.dh
-                        if dh is None:
-                            top = np.nanmax(observed) if np.any(np.isfinite(observed)) else np.nan
-                            dh = top / 100 if np.isfinite(top) and top > 0 else 0.1
-                        params = tfce_params.with_dh(dh)
-                    if cluster_z is not None:
-                        c_thr = stat_threshold(cluster_z, kind, plan.df, plan.q)
-                    spec = _MapSpec(kind, tail, params, c_thr)
-                    x, two = _enhance_input(maps[0], spec)
-                    if params is not None:
-                        obs_tfce = tfce(x, adjacency, params.dh, params.E, params.H, params.rule, two_sided=two)
-                        if kind == "t" and tail == "less":
-                            obs_tfce = -obs_tfce
-                    if c_thr is not None:
-                        obs_clusters = label_clusters(x, c_thr, adjacency, two_sided=two)
-                    runner = _NullRunner(n_jobs, adjacency, spec)
-                runner.submit(b0, maps, sink)
-            if progress is not None:
-                progress(b1, J)
-        if runner is not None:
-            runner.finish(sink)
+                        futures = [pool.submit(scan, k, s, e, A, b0, maps) for k, (s, e) in enumerate(chunk_parts)]
+                        maxima = [f.result() for f in futures]
+                    for row_max in maxima:
+                        np.fmax(max_null[b0:b1], row_max, out=max_null[b0:b1])
+                if maps is not None:
+                    if runner is None:
+                        # The observed map fixes the TFCE step and the cluster threshold (in stat units).
+                        observed = _orient(maps[0].copy(), kind, tail)
+                        if tfce_params is not None:
+                            dh = tfce_params.dh
+                            if dh is None:
+                                top = np.nanmax(observed) if np.any(np.isfinite(observed)) else np.nan
+                                dh = top / 100 if np.isfinite(top) and top > 0 else 0.1
+                            params = tfce_params.with_dh(dh)
+                        if cluster_z is not None:
+                            c_thr = stat_threshold(cluster_z, kind, plan.df, plan.q)
+                        spec = _MapSpec(kind, tail, params, c_thr)
+                        x, two = _enhance_input(maps[0], spec)
+                        if params is not None:
+                            obs_tfce = tfce(x, adjacency, params.dh, params.E, params.H, params.rule, two_sided=two)
+                            if kind == "t" and tail == "less":
+                                obs_tfce = -obs_tfce
+                        if c_thr is not None:
+                            obs_clusters = label_clusters(x, c_thr, adjacency, two_sided=two)
+                        runner = _NullRunner(n_jobs, adjacency, spec)
+                    runner.submit(b0, maps, sink)
+                if progress is not None:
+                    progress(b1, J)
+            if runner is not None:
+                runner.finish(sink)
     except BaseException:
         if runner is not None:
             runner.abort()
         raise
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
 
     with np.errstate(invalid="ignore"):
         p_perm = np.where(np.isnan(stat), np.nan, count / J)

@@ -192,8 +192,10 @@ def _log_ibeta_pair(
         tiny = np.flatnonzero(small < _FAR_BELOW)
         if tiny.size:
             where = idx[tiny]
-            rr, log_rr = r[where], log_r_at(where)
-            with np.errstate(divide="ignore", over="ignore"):
+            # r = 0 (t = 0 or f = 0) has log r = -inf and the formula returns log 0 = -inf, as it
+            # should; the infinities on the way are not worth a warning.
+            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+                rr, log_rr = r[where], log_r_at(where)
                 inv = 1.0 / rr
                 log_x = np.where(rr <= 1.0, -np.log1p(rr), -(log_rr + np.log1p(inv)))
                 log_y = np.where(rr <= 1.0, log_rr - np.log1p(rr), -np.log1p(inv))

@@ -14,7 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import ndimage, stats
 
-from groupmodel.inference import run_permutations, run_tests
+from groupmodel.errors import InputError
+from groupmodel.inference import run_permutations, run_tests, tile_width
 from groupmodel.multiple import fdr_bh
 from groupmodel.permutation import count_rearrangements, permutation_set
 from groupmodel.tfce import TfceParams, grid_adjacency, tfce
@@ -132,6 +133,30 @@ def test_results_do_not_depend_on_chunk_size_or_memmap(tmp_path):
         for name in ("stat", "max_null", "tfce", "tfce_max_null"):
             np.testing.assert_allclose(getattr(r, name), getattr(data_ref, name), rtol=1e-12, err_msg=name)
         assert r.tfce_params == data_ref.tfce_params
+
+
+def test_results_do_not_depend_on_thread_count():
+    # Enough voxels that every thread gets several tiles of its own: tiles of tile_width(m B) voxels.
+    rng = np.random.default_rng(11)
+    n, V = 24, 6000
+    X = np.column_stack([np.ones(n), np.r_[np.zeros(12), np.ones(12)], rng.standard_normal((n, 2))])
+    Y = rng.standard_normal((n, V))
+    Y[:, :300] += 0.8 * X[:, [1]]
+    opts = dict(n_perm=90, seed=4, batch_size=40)
+    ref = run_permutations(X, [0, 1, 0, 0], Y, threads=1, **opts)
+    assert V > 4 * tile_width(3 * 40)  # m = 3 rows per rearrangement (interest + two covariates)
+    for threads, chunk in ((2, None), (3, None), (4, 1000), (2, 333)):
+        r = run_permutations(X, [0, 1, 0, 0], Y, threads=threads, chunk_size=chunk, **opts)
+        for name in ("p_perm", "p_fwe"):
+            np.testing.assert_array_equal(getattr(r, name), getattr(ref, name), err_msg=f"{name} {threads}")
+        for name in ("stat", "max_null"):
+            np.testing.assert_allclose(getattr(r, name), getattr(ref, name), rtol=1e-12, err_msg=f"{name} {threads}")
+
+
+def test_zero_threads_is_refused():
+    X, Y, _, _ = _grid_study(seed=3)
+    with pytest.raises(InputError, match="threads must be >= 1"):
+        run_permutations(X, [0, 1, 0], Y, n_perm=10, threads=0)
 
 
 @pytest.mark.slow  # starts two worker processes

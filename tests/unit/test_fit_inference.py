@@ -8,6 +8,7 @@ and tests/reference/test_tfce_reference.py; here the reference is the fit itself
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -55,6 +56,11 @@ def test_same_seed_same_maps_whatever_the_chunk_size(study, reference_fit) -> No
     for name, maps in reference_fit.maps.items():
         for stat in PERM_MAPS:
             _same(small.maps[name][stat], maps[stat], stat, f"{name} {stat} small budget")
+    for threads in (1, 3):
+        other = fit_images(study, progress=False, inference=replace(OPTS, threads=threads), chunk_voxels=150)
+        for name, maps in reference_fit.maps.items():
+            for stat in PERM_MAPS:
+                _same(other.maps[name][stat], maps[stat], stat, f"{name} {stat} threads {threads}")
 
 
 def test_another_seed_gives_another_permutation_set(study, reference_fit) -> None:
@@ -125,6 +131,15 @@ def test_blocks_column_recorded_and_missing_block_refused(study, tmp_path) -> No
             fit_images(study, progress=False, inference=InferenceOptions(permutations=20, blocks="family"))
     finally:
         table.drop(columns="family").to_csv(study.parent / "participants.tsv", sep="\t", index=False)
+
+
+@pytest.mark.parametrize("option", ["--threads", "--jobs"])
+def test_zero_threads_or_jobs_is_a_usage_error(study, tmp_path, capsys, option) -> None:
+    code = main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"{option} must be a whole number >= 1; got 0" in err
+    assert not (tmp_path / "x").exists()
 
 
 def test_tfce_without_permutations_is_a_usage_error(study, tmp_path, capsys) -> None:

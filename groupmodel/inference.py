@@ -69,8 +69,8 @@ statistic with the same p
 Reproducibility: the rearrangements depend only on (n, blocks, method, J, seed); each chunk's
 statistics are a pure function of (design, contrast, rearrangements, chunk of data)
 (:func:`chunk_statistics`), so results do not depend on the chunk size, on ``threads``, on
-``n_jobs`` or on the order chunks are processed, apart from the last bits that a BLAS product may change with its shape
-(counts and p values are unaffected thanks to the tolerance above).
+``n_jobs`` or on the order chunks are processed, apart from the last bits that a BLAS product may
+change with its shape (counts and p values are unaffected thanks to the tolerance above).
 """
 
 from __future__ import annotations
@@ -82,6 +82,7 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
@@ -127,12 +128,41 @@ def tile_width(rows: int) -> int:
     return int(min(4096, max(128, _TILE_VALUES // max(rows, 1))))
 
 
-def available_cores() -> int:
-    """Cores this process may run on (its CPU affinity; the CPU count where that is unknown)."""
+def cpu_quota(cgroup_root: str = "/sys/fs/cgroup") -> float | None:
+    """CPUs' worth of time the control group allows (a container's or batch job's quota), or None.
+
+    Reads cgroup v2 ``cpu.max`` ("max 100000" or "200000 100000") or cgroup v1
+    ``cpu/cpu.cfs_quota_us`` and ``cpu.cfs_period_us`` (quota -1: none).
+    """
+    root = Path(cgroup_root)
     try:
-        return max(1, len(os.sched_getaffinity(0)))
+        if (root / "cpu.max").exists():
+            quota, period = (root / "cpu.max").read_text().split()[:2]
+            return None if quota == "max" else int(quota) / int(period)
+        v1 = root / "cpu"
+        if (v1 / "cpu.cfs_quota_us").exists():
+            quota_us = int((v1 / "cpu.cfs_quota_us").read_text())
+            period_us = int((v1 / "cpu.cfs_period_us").read_text())
+            return None if quota_us <= 0 or period_us <= 0 else quota_us / period_us
+    except (OSError, ValueError):
+        return None
+    return None
+
+
+def available_cores() -> int:
+    """Cores this process may use: its CPU affinity, capped by a control-group CPU quota if any.
+
+    On a shared node a container or batch job often sees every core but may use only a few; running
+    more threads than that only adds contention.
+    """
+    try:
+        cores = len(os.sched_getaffinity(0))
     except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
+        cores = os.cpu_count() or 1
+    quota = cpu_quota()
+    if quota is not None:
+        cores = min(cores, math.ceil(quota))
+    return max(1, cores)
 
 
 @contextmanager
@@ -426,26 +456,26 @@ def residualise(plan: ContrastPlan, chunk: np.ndarray) -> tuple[np.ndarray, np.n
 
 
 def stack_rows(plan: ContrastPlan, perm: np.ndarray | None, flips: np.ndarray | None) -> np.ndarray:
-    """Design side of a batch of B rearrangements, shape (B * m, n).
+    """Design side of a batch of B rearrangements, shape (m * B, n).
 
     For rearrangement b, ``rows`` has column i moved to column ``perm[b, i]`` and multiplied by
     ``flips[b, i]``, so that (those rows) ``@ W`` equals ``rows @ (rearranged W)``.  The stacked
-    matrix holds first the q interest rows of every rearrangement (rearrangement-major), then the
-    m - q nuisance rows of every rearrangement, so that each part of the product is contiguous.
+    matrix is row-major over the m design-side rows: row k of every rearrangement (B rows), then row
+    k + 1 of every rearrangement, and so on, so that the product reshaped to (m, B, v) gives each
+    design-side row as one contiguous (B, v) block and sums over rows are additions of blocks.
     """
     m, n = plan.rows.shape
-    q = plan.q
     ref = perm if perm is not None else flips
     B = ref.shape[0]
-    values = np.broadcast_to(plan.rows[None], (B, m, n))
+    values = np.broadcast_to(plan.rows[:, None, :], (m, B, n))
     if flips is not None:
-        values = values * flips[:, None, :]
+        values = values * flips[None, :, :]
     if perm is None:
         out = np.ascontiguousarray(values)
     else:
-        out = np.empty((B, m, n))
-        np.put_along_axis(out, np.broadcast_to(perm[:, None, :].astype(np.intp), (B, m, n)), values, axis=2)
-    return np.concatenate([out[:, :q, :].reshape(B * q, n), out[:, q:, :].reshape(B * (m - q), n)])
+        out = np.empty((m, B, n))
+        np.put_along_axis(out, np.broadcast_to(perm[None, :, :].astype(np.intp), (m, B, n)), values, axis=2)
+    return out.reshape(m * B, n)
 
 
 class _Buffers:
@@ -458,20 +488,29 @@ class _Buffers:
         self._t = np.empty(B * tile)
         self._i = np.empty(B * tile)
         self._f = np.empty(B * tile, dtype=bool)
+        self._views: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def views(self, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Contiguous (rows, w), (B, w), (B, w), (B, w) float views for a tile of width w."""
-        B = self.B
-        return (
-            self._g[: self.rows * w].reshape(self.rows, w),
-            self._s[: B * w].reshape(B, w),
-            self._t[: B * w].reshape(B, w),
-            self._i[: B * w].reshape(B, w),
-        )
+        return self._all(w)[:4]
 
     def flags(self, w: int) -> np.ndarray:
         """A (B, w) boolean view."""
-        return self._f[: self.B * w].reshape(self.B, w)
+        return self._all(w)[4]
+
+    def _all(self, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        # Made once per width: almost every tile has the same width, and views cost Python time.
+        got = self._views.get(w)
+        if got is None:
+            B = self.B
+            got = self._views[w] = (
+                self._g[: self.rows * w].reshape(self.rows, w),
+                self._s[: B * w].reshape(B, w),
+                self._t[: B * w].reshape(B, w),
+                self._i[: B * w].reshape(B, w),
+                self._f[: B * w].reshape(B, w),
+            )
+        return got
 
 
 # The permutation loop compares and maximises an oriented "working statistic" o, an increasing
@@ -499,8 +538,8 @@ def _tile(
 
     Parameters
     ----------
-    A : ndarray, shape (B m, n)
-        Stacked design side of the batch.
+    A : ndarray, shape (m B, n)
+        Stacked design side of the batch (:func:`stack_rows`).
     W : ndarray, shape (n, w)
         Residualised data of the tile, scaled to unit sum of squares per voxel (:func:`_unit_columns`).
     bad : ndarray of int
@@ -533,26 +572,29 @@ def _tile(
                 np.negative(out, out=out)
         else:
             np.matmul(A, W, out=G)
-            gi = G[: B * q].reshape(B, q, w)  # interest products
-            gn = G[B * q :].reshape(B, m - q, w)  # nuisance products
-            if q == 1:
-                np.multiply(gi[:, 0, :], gi[:, 0, :], out=interest)
-            else:
-                np.einsum("bmv,bmv->bv", gi, gi, out=interest)
+            rows = G.reshape(m, B, w)  # rows[k]: design-side row k of every rearrangement
+            g0 = rows[0]  # first interest row, signed (the t numerator)
+            np.multiply(g0, g0, out=interest)
+            if q > 1:
+                np.square(rows[1:q], out=rows[1:q])
+                for k in range(1, q):
+                    np.add(interest, rows[k], out=interest)
             if m > q:
-                np.einsum("bmv,bmv->bv", gn, gn, out=tmp)
-                np.subtract(1.0, tmp, out=tmp)  # 1 - z = a + RSS
+                np.square(rows[q:], out=rows[q:])
+                np.subtract(1.0, rows[q], out=tmp)
+                for k in range(q + 1, m):
+                    np.subtract(tmp, rows[k], out=tmp)  # 1 - z = a + RSS
             else:
                 tmp.fill(1.0)
             if stats_out is not None:
                 k = stats_out.shape[0]
                 rss = np.maximum(tmp[:k] - interest[:k], 0.0)
                 if kind == "t":
-                    np.divide(gi[:k, 0, :], np.sqrt(rss * (1.0 / df)), out=stats_out)
+                    np.divide(g0[:k], np.sqrt(rss * (1.0 / df)), out=stats_out)
                 else:
                     np.divide(interest[:k] * (df / q), rss, out=stats_out)
             if kind == "t" and tail != "two-sided":
-                np.copysign(interest, gi[:, 0, :], out=interest)
+                np.copysign(interest, g0, out=interest)
                 if tail == "less":
                     np.negative(interest, out=interest)
             np.divide(interest, tmp, out=out)
@@ -983,7 +1025,7 @@ def run_permutations(
         buffers = slots[slot]
         if buffers is None or buffers.rows != A.shape[0]:
             buffers = slots[slot] = _Buffers(A.shape[0], B, tile)
-        row_max = np.full(B, -np.inf)
+        tile_maxima = []
         for ts in range(0, e - s, tile):
             te = min(e - s, ts + tile)
             gs, ge = s + ts, s + te
@@ -1002,12 +1044,14 @@ def run_permutations(
                 work_obs[gs + tile_bad] = np.nan
                 threshold[gs:ge] = _at_least(work_obs[gs:ge])
             hit = buffers.flags(te - ts)
-            with np.errstate(invalid="ignore"):
+            with np.errstate(invalid="ignore"):  # NaN thresholds (no data) compare False
                 np.greater_equal(o, threshold[gs:ge], out=hit)
             count[gs:ge] += np.add.reduce(hit.view(np.uint8), axis=0, dtype=count_type)
             if o.shape[1]:
-                np.fmax(row_max, np.fmax.reduce(o, axis=1), out=row_max)
-        return row_max
+                tile_maxima.append(np.fmax.reduce(o, axis=1))
+        if not tile_maxima:
+            return np.full(B, -np.inf)
+        return np.fmax.reduce(np.stack(tile_maxima), axis=0)
 
     def sink(start: int, tm: np.ndarray, cm: np.ndarray) -> None:
         tfce_max[start : start + tm.size] = tm

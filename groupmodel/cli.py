@@ -116,7 +116,8 @@ def make_parser() -> argparse.ArgumentParser:
     f.add_argument("--cluster-threshold", type=float, metavar="Z",
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
     f.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="worker processes for TFCE and cluster permutations (results do not depend on it)")
+                   help="worker processes for TFCE and cluster permutations (default: all cores this process "
+                   "may use; results do not depend on it)")
     f.add_argument("--threads", type=int, default=None, metavar="N",
                    help="threads for the permutation products (default: all cores this process may use; "
                    "results do not depend on it)")

@@ -8,6 +8,7 @@ maps come out, what their sidecars record, and the cluster tables.
 from __future__ import annotations
 
 from collections.abc import Callable
+from contextlib import nullcontext
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -53,8 +54,9 @@ class InferenceOptions:
         Voxel neighbourhood for TFCE and clusters (26: faces, edges and corners).
     mesh : Path or None
         Surface (GIFTI with a triangle array) giving vertex neighbours for surface data.
-    jobs : int
-        Worker processes for TFCE and cluster nulls; results do not depend on it.
+    jobs : int or None
+        Worker processes for TFCE and cluster nulls (default: the cores the process may use); results
+        do not depend on it.
     threads : int or None
         Threads for the permutation products (default: the cores the process may use); results do
         not depend on it.
@@ -70,7 +72,7 @@ class InferenceOptions:
     cluster_threshold: float | None = None
     connectivity: int = 26
     mesh: Path | None = None
-    jobs: int = 1
+    jobs: int | None = None
     threads: int | None = None
 
     @property
@@ -207,52 +209,57 @@ def permutation_inference(
         Voxels per chunk; results do not depend on it.
     progress : callable(name, done, total), optional
     """
-    from .inference import run_permutations
+    from .inference import MapWorkers, available_cores, run_permutations
     from .tfce import TfceParams
 
     adjacency = adjacency_for(data.grid, data.mask, options)
     blocks = block_labels(model, options.blocks) if options.blocks else None
     ijk = data.voxel_coords() if data.grid.kind == "nifti" else None
     out: dict[str, HypothesisInference] = {}
-    for h in model.hypotheses.values():
-        def report(done: int, total: int, _name: str = h.name) -> None:
-            if progress is not None:
-                progress(_name, done, total)
+    # One set of worker processes for every hypothesis: each costs about a second to start.
+    whole_maps = options.tfce or options.cluster_threshold is not None
+    jobs = options.jobs if options.jobs is not None else available_cores()
+    needs_workers = jobs > 1 and adjacency is not None and whole_maps
+    with MapWorkers(jobs, adjacency) if needs_workers else nullcontext() as workers:
+        for h in model.hypotheses.values():
+            def report(done: int, total: int, _name: str = h.name) -> None:
+                if progress is not None:
+                    progress(_name, done, total)
 
-        res = run_permutations(
-            model.design.matrix, h.weights, data.columns(), kind=h.test, tail=h.tail, name=h.name,
-            n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
-            whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
-            adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
-            cluster_z=options.cluster_threshold, n_jobs=options.jobs, threads=options.threads, cache_bytes=cache_bytes,
-            progress=report,
-        )
-        record = {
-            "method": _METHOD_NAMES.get(res.method, res.method),
-            "permutations": int(res.n_perm),
-            "possible_rearrangements": int(res.n_possible) if res.n_possible < 2**62 else float(res.n_possible),
-            "exhaustive": bool(res.exhaustive),
-            "seed": options.seed,
-            "blocks": options.blocks,
-            "whole_blocks": options.whole_blocks,
-            "nuisance_method": "Freedman-Lane",
-        }
-        maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
-        tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, data.grid)}
-        if res.tfce is not None:
-            maps["tfce"] = res.tfce
-            maps["p_tfce_fwe"] = res.p_tfce_fwe
-            assert res.tfce_params is not None
-            record["tfce"] = {"E": res.tfce_params.E, "H": res.tfce_params.H, "dh": res.tfce_params.dh,
-                              "rule": res.tfce_params.rule, "connectivity": options.connectivity}
-            tables["tfce_fwe"] = _significant_table(res.stat, res.p_tfce_fwe, h, adjacency, ijk, data.grid)
-        if res.p_cluster_fwe is not None:
-            maps["p_cluster_fwe"] = res.p_cluster_fwe
-            record["cluster"] = {"z_threshold": res.cluster_z, "statistic_threshold": res.cluster_threshold,
-                                 "connectivity": options.connectivity}
-            if res.clusters is not None:
-                tables["cluster_extent_fwe"] = _table(res.stat, res.clusters, res.cluster_p_fwe, ijk, data.grid)
-        out[h.name] = HypothesisInference(maps, record, tables)
+            res = run_permutations(
+                model.design.matrix, h.weights, data.columns(), kind=h.test, tail=h.tail, name=h.name,
+                n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
+                whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
+                adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
+                cluster_z=options.cluster_threshold, n_jobs=jobs, threads=options.threads, workers=workers,
+                cache_bytes=cache_bytes, progress=report,
+            )
+            record = {
+                "method": _METHOD_NAMES.get(res.method, res.method),
+                "permutations": int(res.n_perm),
+                "possible_rearrangements": int(res.n_possible) if res.n_possible < 2**62 else float(res.n_possible),
+                "exhaustive": bool(res.exhaustive),
+                "seed": options.seed,
+                "blocks": options.blocks,
+                "whole_blocks": options.whole_blocks,
+                "nuisance_method": "Freedman-Lane",
+            }
+            maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
+            tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, data.grid)}
+            if res.tfce is not None:
+                maps["tfce"] = res.tfce
+                maps["p_tfce_fwe"] = res.p_tfce_fwe
+                assert res.tfce_params is not None
+                record["tfce"] = {"E": res.tfce_params.E, "H": res.tfce_params.H, "dh": res.tfce_params.dh,
+                                  "rule": res.tfce_params.rule, "connectivity": options.connectivity}
+                tables["tfce_fwe"] = _significant_table(res.stat, res.p_tfce_fwe, h, adjacency, ijk, data.grid)
+            if res.p_cluster_fwe is not None:
+                maps["p_cluster_fwe"] = res.p_cluster_fwe
+                record["cluster"] = {"z_threshold": res.cluster_z, "statistic_threshold": res.cluster_threshold,
+                                     "connectivity": options.connectivity}
+                if res.clusters is not None:
+                    tables["cluster_extent_fwe"] = _table(res.stat, res.clusters, res.cluster_p_fwe, ijk, data.grid)
+            out[h.name] = HypothesisInference(maps, record, tables)
     return out
 
 

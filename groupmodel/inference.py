@@ -80,7 +80,7 @@ import multiprocessing
 import os
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -95,6 +95,7 @@ from .tfce import Adjacency, TfceParams, tfce
 
 __all__ = [
     "ContrastPlan",
+    "MapWorkers",
     "Partition",
     "PermutationResult",
     "chunk_statistics",
@@ -711,42 +712,74 @@ def _map_nulls(maps: np.ndarray, spec: _MapSpec, adjacency: Adjacency) -> tuple[
 _WORKER: dict[str, Any] = {}
 
 
-def _worker_init(adjacency: Adjacency, spec: _MapSpec) -> None:
+def _worker_init(adjacency: Adjacency) -> None:
     _WORKER["adjacency"] = adjacency
-    _WORKER["spec"] = spec
 
 
-def _worker_nulls(maps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    return _map_nulls(maps, _WORKER["spec"], _WORKER["adjacency"])
+def _worker_nulls(maps: np.ndarray, spec: _MapSpec) -> tuple[np.ndarray, np.ndarray]:
+    return _map_nulls(maps, spec, _WORKER["adjacency"])
+
+
+class MapWorkers:
+    """Worker processes that compute the TFCE and cluster nulls of whole maps on one adjacency.
+
+    Starting a worker costs about a second (a fresh interpreter importing numpy and scipy), so one
+    set of workers serves every contrast of a fit: pass it to :func:`run_permutations` as
+    ``workers``.  Use as a context manager, or call :meth:`close`.
+
+    Parameters
+    ----------
+    n_jobs : int
+        Worker processes (>= 2; with 1 the nulls are computed in the calling process instead).
+    adjacency : Adjacency
+        Neighbourhood of the elements, shipped to each worker once.
+    """
+
+    def __init__(self, n_jobs: int, adjacency: Adjacency) -> None:
+        if n_jobs < 2:
+            raise InputError(f"worker processes are for n_jobs >= 2; got {n_jobs} (in MapWorkers)")
+        self.n_jobs, self.adjacency = int(n_jobs), adjacency
+        if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
+            adjacency.neighbour_table()
+            adjacency.neighbour_chain()
+        self.pool = ProcessPoolExecutor(
+            max_workers=self.n_jobs,
+            mp_context=multiprocessing.get_context("spawn"),
+            initializer=_worker_init,
+            initargs=(adjacency,),
+        )
+
+    def submit(self, maps: np.ndarray, spec: _MapSpec) -> Future:
+        return self.pool.submit(_worker_nulls, maps, spec)
+
+    def close(self, cancel: bool = False) -> None:
+        self.pool.shutdown(wait=True, cancel_futures=cancel)
+
+    def __enter__(self) -> MapWorkers:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close(cancel=exc[0] is not None)
 
 
 class _NullRunner:
-    """Runs :func:`_map_nulls` inline or in worker processes; results come back in order."""
+    """Runs :func:`_map_nulls` inline or on worker processes; results come back in order."""
 
-    def __init__(self, n_jobs: int, adjacency: Adjacency, spec: _MapSpec) -> None:
+    def __init__(self, n_jobs: int, adjacency: Adjacency, spec: _MapSpec, workers: MapWorkers | None) -> None:
         self.adjacency, self.spec = adjacency, spec
-        self.pool: ProcessPoolExecutor | None = None
         self.pending: list[tuple[int, Future]] = []
-        self.n_jobs = n_jobs
-        if n_jobs > 1:
-            if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
-                adjacency.neighbour_table()
-                adjacency.neighbour_chain()
-            self.pool = ProcessPoolExecutor(
-                max_workers=n_jobs,
-                mp_context=multiprocessing.get_context("spawn"),
-                initializer=_worker_init,
-                initargs=(adjacency, spec),
-            )
+        self.owned = workers is None and n_jobs > 1
+        self.workers = MapWorkers(n_jobs, adjacency) if self.owned else workers
+        self.n_jobs = self.workers.n_jobs if self.workers is not None else 1
 
     def submit(self, start: int, maps: np.ndarray, sink: Callable[[int, np.ndarray, np.ndarray], None]) -> None:
-        if self.pool is None:
+        if self.workers is None:
             tmax, cmax = _map_nulls(maps, self.spec, self.adjacency)
             sink(start, tmax, cmax)
             return
         size = math.ceil(maps.shape[0] / self.n_jobs)
         for s in range(0, maps.shape[0], size):
-            self.pending.append((start + s, self.pool.submit(_worker_nulls, maps[s : s + size].copy())))
+            self.pending.append((start + s, self.workers.submit(maps[s : s + size].copy(), self.spec)))
         # Bound the memory held by maps in flight.
         while len(self.pending) > 3 * self.n_jobs:
             self._collect_one(sink)
@@ -759,12 +792,15 @@ class _NullRunner:
     def finish(self, sink: Callable[[int, np.ndarray, np.ndarray], None]) -> None:
         while self.pending:
             self._collect_one(sink)
-        if self.pool is not None:
-            self.pool.shutdown()
+        if self.owned and self.workers is not None:
+            self.workers.close()
 
     def abort(self) -> None:
-        if self.pool is not None:
-            self.pool.shutdown(cancel_futures=True)
+        for _, fut in self.pending:
+            fut.cancel()
+        self.pending.clear()
+        if self.owned and self.workers is not None:
+            self.workers.close(cancel=True)
 
 
 # --------------------------------------------------------------------------------------------
@@ -903,6 +939,7 @@ def run_permutations(
     cluster_z: float | None = None,
     n_jobs: int = 1,
     threads: int | None = None,
+    workers: MapWorkers | None = None,
     cache_bytes: int = 1 << 30,
     progress: Callable[[int, int], None] | None = None,
 ) -> PermutationResult:
@@ -944,6 +981,9 @@ def run_permutations(
         Threads for the stacked products and the element-wise work after them (default: the cores
         this process may use).  Each thread takes its own contiguous part of every chunk and BLAS is
         limited to one thread meanwhile (:func:`single_threaded_blas`).  Results do not depend on it.
+    workers : MapWorkers, optional
+        Worker processes to use for the TFCE / cluster nulls instead of starting ``n_jobs`` new
+        ones (share one set between contrasts); they must have been started on ``adjacency``.
     cache_bytes : int
         Keep the residualised data in memory between batches when it fits in this many bytes.
     progress : callable(done, total), optional
@@ -968,6 +1008,11 @@ def run_permutations(
         raise InputError(
             "TFCE and cluster inference need the neighbourhood of the elements; got no adjacency "
             f"(in {name or 'run_permutations'}); pass grid_adjacency(mask) or mesh_adjacency(faces)"
+        )
+    if workers is not None and workers.adjacency is not adjacency:
+        raise InputError(
+            f"the worker processes were started on another adjacency (in {name or 'run_permutations'}); "
+            "start MapWorkers with the adjacency passed here"
         )
     if adjacency is not None and adjacency.n != V:
         raise InputError(
@@ -1101,7 +1146,7 @@ def run_permutations(
                                 obs_tfce = -obs_tfce
                         if c_thr is not None:
                             obs_clusters = label_clusters(x, c_thr, adjacency, two_sided=two)
-                        runner = _NullRunner(n_jobs, adjacency, spec)
+                        runner = _NullRunner(n_jobs, adjacency, spec, workers)
                     runner.submit(b0, maps, sink)
                 if progress is not None:
                     progress(b1, J)
@@ -1165,13 +1210,23 @@ def run_tests(
     **options: Any,
 ) -> list[PermutationResult]:
     """:func:`run_permutations` for each test (objects with ``name``, ``weights``, ``kind``, ``tail``,
-    such as :class:`groupmodel.ols.Test`), with the same options and seed."""
-    return [
-        run_permutations(
-            design, t.weights, data, kind=t.kind, tail=getattr(t, "tail", "two-sided"), name=t.name, **options
-        )
-        for t in tests
-    ]
+    such as :class:`groupmodel.ols.Test`), with the same options and seed.  With ``n_jobs > 1`` and
+    TFCE or clusters, one set of worker processes serves every test."""
+    needs_workers = (
+        options.get("n_jobs", 1) > 1
+        and options.get("workers") is None
+        and options.get("adjacency") is not None
+        and (options.get("tfce_params") is not None or options.get("cluster_z") is not None)
+    )
+    with MapWorkers(options["n_jobs"], options["adjacency"]) if needs_workers else nullcontext() as workers:
+        if workers is not None:
+            options = {**options, "workers": workers}
+        return [
+            run_permutations(
+                design, t.weights, data, kind=t.kind, tail=getattr(t, "tail", "two-sided"), name=t.name, **options
+            )
+            for t in tests
+        ]
 
 
 # Re-exported for callers that build their own loops.

@@ -8,6 +8,8 @@ blocks intact), scipy.stats.false_discovery_control, and common practice for rep
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -15,7 +17,7 @@ from hypothesis import strategies as st
 from scipy import ndimage, stats
 
 from groupmodel.errors import InputError
-from groupmodel.inference import run_permutations, run_tests, tile_width
+from groupmodel.inference import MapWorkers, run_permutations, run_tests, tile_width
 from groupmodel.multiple import fdr_bh
 from groupmodel.permutation import count_rearrangements, permutation_set
 from groupmodel.tfce import TfceParams, grid_adjacency, tfce
@@ -159,7 +161,7 @@ def test_zero_threads_is_refused():
         run_permutations(X, [0, 1, 0], Y, n_perm=10, threads=0)
 
 
-@pytest.mark.slow  # starts two worker processes
+@pytest.mark.slow  # starts worker processes
 def test_results_do_not_depend_on_worker_count():
     X, Y, adj, V = _grid_study(seed=1)
     opts = dict(n_perm=80, seed=2, adjacency=adj, tfce_params=TfceParams(), cluster_z=2.3, batch_size=30)
@@ -168,6 +170,23 @@ def test_results_do_not_depend_on_worker_count():
     np.testing.assert_array_equal(one.tfce_max_null, two.tfce_max_null)
     np.testing.assert_array_equal(one.cluster_max_null, two.cluster_max_null)
     np.testing.assert_array_equal(one.p_tfce_fwe, two.p_tfce_fwe)
+    # One set of workers shared by several tests (t two-sided, t "less", F) gives the same as inline.
+    tests = [
+        SimpleNamespace(name="group", weights=np.array([0, 1, 0.0]), kind="t", tail="two-sided"),
+        SimpleNamespace(name="group_less", weights=np.array([0, 1, 0.0]), kind="t", tail="less"),
+        SimpleNamespace(name="both", weights=np.array([[0, 1, 0], [0, 0, 1.0]]), kind="F", tail="two-sided"),
+    ]
+    inline = run_tests(X, tests, Y, n_jobs=1, **opts)
+    shared = run_tests(X, tests, Y, n_jobs=2, **opts)
+    for a, b in zip(inline, shared, strict=True):
+        for name in ("tfce_max_null", "cluster_max_null", "p_tfce_fwe", "p_cluster_fwe"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=f"{a.name} {name}")
+    other = MapWorkers(2, grid_adjacency(np.ones((3, 3, 3), bool)))
+    try:
+        with pytest.raises(InputError, match="another adjacency"):
+            run_permutations(X, [0, 1, 0], Y, workers=other, **opts)
+    finally:
+        other.close()
 
 
 def test_different_seed_gives_different_null():

@@ -56,11 +56,14 @@ def test_same_seed_same_maps_whatever_the_chunk_size(study, reference_fit) -> No
     for name, maps in reference_fit.maps.items():
         for stat in PERM_MAPS:
             _same(small.maps[name][stat], maps[stat], stat, f"{name} {stat} small budget")
-    for threads in (1, 3):
-        other = fit_images(study, progress=False, inference=replace(OPTS, threads=threads), chunk_voxels=150)
+    # Threads for the products and worker processes for TFCE and clusters (the reference uses the defaults:
+    # as many of each as there are cores).
+    for threads, jobs in ((1, 1), (3, 2)):
+        opts = replace(OPTS, threads=threads, jobs=jobs)
+        other = fit_images(study, progress=False, inference=opts, chunk_voxels=150)
         for name, maps in reference_fit.maps.items():
             for stat in PERM_MAPS:
-                _same(other.maps[name][stat], maps[stat], stat, f"{name} {stat} threads {threads}")
+                _same(other.maps[name][stat], maps[stat], stat, f"{name} {stat} threads {threads} jobs {jobs}")
 
 
 def test_another_seed_gives_another_permutation_set(study, reference_fit) -> None:

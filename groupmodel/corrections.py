@@ -194,6 +194,7 @@ def permutation_inference(
     cache_bytes: int,
     chunk_voxels: int | None = None,
     progress: Callable[[str, int, int], None] | None = None,
+    maps_bytes: int | None = None,
 ) -> dict[str, HypothesisInference]:
     """Run Freedman-Lane permutation inference for every hypothesis.
 
@@ -208,8 +209,11 @@ def permutation_inference(
     chunk_voxels : int, optional
         Voxels per chunk; results do not depend on it.
     progress : callable(name, done, total), optional
+    maps_bytes : int, optional
+        Memory for the whole statistic maps that TFCE and cluster inference hold per batch of
+        rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
     """
-    from .inference import MapWorkers, available_cores, run_permutations
+    from .inference import MapWorkers, available_cores, run_permutations, whole_map_batch
     from .tfce import TfceParams
 
     adjacency = adjacency_for(data.grid, data.mask, options)
@@ -220,6 +224,8 @@ def permutation_inference(
     whole_maps = options.tfce or options.cluster_threshold is not None
     jobs = options.jobs if options.jobs is not None else available_cores()
     needs_workers = jobs > 1 and adjacency is not None and whole_maps
+    n_elements = int(data.data.shape[1])
+    batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else 100
     with MapWorkers(jobs, adjacency) if needs_workers else nullcontext() as workers:
         for h in model.hypotheses.values():
             def report(done: int, total: int, _name: str = h.name) -> None:
@@ -232,7 +238,7 @@ def permutation_inference(
                 whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
                 adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
                 cluster_z=options.cluster_threshold, n_jobs=jobs, threads=options.threads, workers=workers,
-                cache_bytes=cache_bytes, progress=report,
+                batch_size=batch, cache_bytes=cache_bytes, progress=report,
             )
             record = {
                 "method": _METHOD_NAMES.get(res.method, res.method),

@@ -387,6 +387,7 @@ def fit_images(
             try:
                 results = permutation_inference(
                     model, data, inference, cache_bytes=int(memory_bytes * (1 - DATA_SHARE) * 0.5),
+                    maps_bytes=int(memory_bytes * (1 - DATA_SHARE) * 0.5),
                     chunk_voxels=chunk_voxels, progress=perm_progress,
                 )
             finally:

@@ -96,6 +96,7 @@ from .tfce import Adjacency, TfceParams, tfce
 __all__ = [
     "ContrastPlan",
     "MapWorkers",
+    "whole_map_batch",
     "Partition",
     "PermutationResult",
     "chunk_statistics",
@@ -780,8 +781,8 @@ class _NullRunner:
         size = math.ceil(maps.shape[0] / self.n_jobs)
         for s in range(0, maps.shape[0], size):
             self.pending.append((start + s, self.workers.submit(maps[s : s + size].copy(), self.spec)))
-        # Bound the memory held by maps in flight.
-        while len(self.pending) > 3 * self.n_jobs:
+        # Bound the memory held by maps in flight (see whole_map_batch).
+        while len(self.pending) > 2 * self.n_jobs:
             self._collect_one(sink)
 
     def _collect_one(self, sink: Callable[[int, np.ndarray, np.ndarray], None]) -> None:
@@ -903,6 +904,35 @@ def _fwe_p(observed: np.ndarray, maxima: np.ndarray) -> np.ndarray:
     count = ordered.size - np.searchsorted(ordered, thr, side="left")
     p = count / J
     return np.where(np.isnan(observed), np.nan, p)
+
+
+#: Copies of a batch of whole statistic maps alive at once with worker processes: the batch being
+#: filled, two batches submitted and waiting, and about one more in pickled transit and in the workers.
+_MAP_COPIES_WITH_WORKERS = 5
+
+
+def whole_map_batch(n_elements: int, budget_bytes: int, n_jobs: int, largest: int = 100) -> int:
+    """Rearrangements per batch so that the whole maps TFCE and clusters need fit in a memory budget.
+
+    Parameters
+    ----------
+    n_elements : int
+        Voxels or vertices per map (V).
+    budget_bytes : int
+        Memory for the float64 maps of the batches alive at once (one copy inline, about five with
+        worker processes: :data:`_MAP_COPIES_WITH_WORKERS`).
+    n_jobs : int
+        Worker processes (1: inline).
+    largest : int
+        Upper limit (batches beyond about 100 rearrangements gain nothing).
+
+    Returns
+    -------
+    int
+        Between 8 and ``largest``; at 8 the budget may be exceeded for very large maps.
+    """
+    copies = 1 if n_jobs <= 1 else _MAP_COPIES_WITH_WORKERS
+    return int(max(8, min(largest, budget_bytes // max(copies * n_elements * 8, 1))))
 
 
 def _chunks(V: int, chunk_size: int | None) -> list[tuple[int, int]]:

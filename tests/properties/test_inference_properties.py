@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from scipy import ndimage, stats
 
 from groupmodel.errors import InputError
-from groupmodel.inference import MapWorkers, run_permutations, run_tests, tile_width
+from groupmodel.inference import MapWorkers, run_permutations, run_tests, tile_width, whole_map_batch
 from groupmodel.multiple import fdr_bh
 from groupmodel.permutation import count_rearrangements, permutation_set
 from groupmodel.tfce import TfceParams, grid_adjacency, tfce
@@ -153,6 +153,27 @@ def test_results_do_not_depend_on_thread_count():
             np.testing.assert_array_equal(getattr(r, name), getattr(ref, name), err_msg=f"{name} {threads}")
         for name in ("stat", "max_null"):
             np.testing.assert_allclose(getattr(r, name), getattr(ref, name), rtol=1e-12, err_msg=f"{name} {threads}")
+
+
+def test_results_do_not_depend_on_batch_size():
+    # The batch size follows the memory budget for whole maps (whole_map_batch); the rearrangements do not.
+    X, Y, adj, V = _grid_study(seed=4)
+    opts = dict(n_perm=75, seed=6, adjacency=adj, tfce_params=TfceParams(dh=0.05), cluster_z=2.0)
+    ref = run_permutations(X, [0, 1, 0], Y, batch_size=100, **opts)
+    for batch in (1, 8, 33):
+        r = run_permutations(X, [0, 1, 0], Y, batch_size=batch, **opts)
+        for name in ("p_perm", "p_fwe", "p_tfce_fwe", "p_cluster_fwe", "cluster_max_null"):
+            np.testing.assert_array_equal(getattr(r, name), getattr(ref, name), err_msg=f"{name} batch {batch}")
+        for name in ("max_null", "tfce_max_null"):
+            np.testing.assert_allclose(getattr(r, name), getattr(ref, name), rtol=1e-12, err_msg=f"{name} {batch}")
+
+
+def test_whole_map_batch_follows_the_budget():
+    V = 200_000
+    assert whole_map_batch(V, 2 * 1024**3, 1) == 100  # capped
+    assert whole_map_batch(V, 400 * 10**6, 2) == 400 * 10**6 // (5 * V * 8)  # five copies with workers
+    assert whole_map_batch(V, 400 * 10**6, 1) == 100
+    assert whole_map_batch(V, 10**6, 2) == 8  # floor
 
 
 def test_zero_threads_is_refused():

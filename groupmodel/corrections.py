@@ -8,7 +8,6 @@ maps come out, what their sidecars record, and the cluster tables.
 from __future__ import annotations
 
 from collections.abc import Callable
-from contextlib import nullcontext
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -213,7 +212,7 @@ def permutation_inference(
         Memory for the whole statistic maps that TFCE and cluster inference hold per batch of
         rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
     """
-    from .inference import MapWorkers, available_cores, run_permutations, whole_map_batch
+    from .inference import BATCH_SIZE, available_cores, run_permutations, shared_workers, whole_map_batch
     from .tfce import TfceParams
 
     adjacency = adjacency_for(data.grid, data.mask, options)
@@ -223,10 +222,9 @@ def permutation_inference(
     # One set of worker processes for every hypothesis: each costs about a second to start.
     whole_maps = options.tfce or options.cluster_threshold is not None
     jobs = options.jobs if options.jobs is not None else available_cores()
-    needs_workers = jobs > 1 and adjacency is not None and whole_maps
     n_elements = int(data.data.shape[1])
-    batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else 100
-    with MapWorkers(jobs, adjacency) if needs_workers else nullcontext() as workers:
+    batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
+    with shared_workers(jobs, adjacency, whole_maps) as workers:
         for h in model.hypotheses.values():
             def report(done: int, total: int, _name: str = h.name) -> None:
                 if progress is not None:

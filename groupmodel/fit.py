@@ -384,10 +384,11 @@ def fit_images(
                     perm_bar.update(done - done_before.get(name, 0))
                     done_before[name] = done
 
+            # Half of the working share each (a fifth of the budget) for residualised data and whole maps.
+            share = int(memory_bytes * (1 - DATA_SHARE) * 0.5)
             try:
                 results = permutation_inference(
-                    model, data, inference, cache_bytes=int(memory_bytes * (1 - DATA_SHARE) * 0.5),
-                    maps_bytes=int(memory_bytes * (1 - DATA_SHARE) * 0.5),
+                    model, data, inference, cache_bytes=share, maps_bytes=share,
                     chunk_voxels=chunk_voxels, progress=perm_progress,
                 )
             finally:

@@ -80,7 +80,7 @@ import multiprocessing
 import os
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
-from contextlib import contextmanager, nullcontext
+from contextlib import AbstractContextManager, contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -104,6 +104,7 @@ __all__ = [
     "plan_contrast",
     "run_permutations",
     "run_tests",
+    "shared_workers",
 ]
 
 Tail = Literal["two-sided", "greater", "less"]
@@ -763,6 +764,16 @@ class MapWorkers:
         self.close(cancel=exc[0] is not None)
 
 
+def shared_workers(
+    n_jobs: int, adjacency: Adjacency | None, whole_maps: bool
+) -> AbstractContextManager[MapWorkers | None]:
+    """Worker processes for several contrasts as a context manager, or ``None`` when none are needed
+    (one job, no adjacency, or neither TFCE nor clusters asked for)."""
+    if n_jobs > 1 and adjacency is not None and whole_maps:
+        return MapWorkers(n_jobs, adjacency)
+    return nullcontext()
+
+
 class _NullRunner:
     """Runs :func:`_map_nulls` inline or on worker processes; results come back in order."""
 
@@ -906,12 +917,14 @@ def _fwe_p(observed: np.ndarray, maxima: np.ndarray) -> np.ndarray:
     return np.where(np.isnan(observed), np.nan, p)
 
 
+#: Rearrangements stacked into one matrix product by default; larger batches gain nothing measurable.
+BATCH_SIZE = 100
 #: Copies of a batch of whole statistic maps alive at once with worker processes: the batch being
 #: filled, two batches submitted and waiting, and about one more in pickled transit and in the workers.
 _MAP_COPIES_WITH_WORKERS = 5
 
 
-def whole_map_batch(n_elements: int, budget_bytes: int, n_jobs: int, largest: int = 100) -> int:
+def whole_map_batch(n_elements: int, budget_bytes: int, n_jobs: int, largest: int = BATCH_SIZE) -> int:
     """Rearrangements per batch so that the whole maps TFCE and clusters need fit in a memory budget.
 
     Parameters
@@ -924,7 +937,7 @@ def whole_map_batch(n_elements: int, budget_bytes: int, n_jobs: int, largest: in
     n_jobs : int
         Worker processes (1: inline).
     largest : int
-        Upper limit (batches beyond about 100 rearrangements gain nothing).
+        Upper limit (default :data:`BATCH_SIZE`).
 
     Returns
     -------
@@ -963,7 +976,7 @@ def run_permutations(
     whole_blocks: bool = False,
     seed: int = 0,
     chunk_size: int | None = None,
-    batch_size: int = 100,
+    batch_size: int = BATCH_SIZE,
     adjacency: Adjacency | None = None,
     tfce_params: TfceParams | None = None,
     cluster_z: float | None = None,
@@ -1242,13 +1255,9 @@ def run_tests(
     """:func:`run_permutations` for each test (objects with ``name``, ``weights``, ``kind``, ``tail``,
     such as :class:`groupmodel.ols.Test`), with the same options and seed.  With ``n_jobs > 1`` and
     TFCE or clusters, one set of worker processes serves every test."""
-    needs_workers = (
-        options.get("n_jobs", 1) > 1
-        and options.get("workers") is None
-        and options.get("adjacency") is not None
-        and (options.get("tfce_params") is not None or options.get("cluster_z") is not None)
-    )
-    with MapWorkers(options["n_jobs"], options["adjacency"]) if needs_workers else nullcontext() as workers:
+    whole_maps = options.get("tfce_params") is not None or options.get("cluster_z") is not None
+    n_jobs = options.get("n_jobs", 1) if options.get("workers") is None else 1
+    with shared_workers(n_jobs, options.get("adjacency"), whole_maps) as workers:
         if workers is not None:
             options = {**options, "workers": workers}
         return [

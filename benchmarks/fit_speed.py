@@ -202,9 +202,10 @@ class _StageTimer:
 
 def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
     import groupmodel.figures
-    import groupmodel.fit
-    import groupmodel.images
     import groupmodel.tails
+
+    import groupmodel.fit
+    import groupmodel.images.core
     from groupmodel.cli import _memory
     from groupmodel.fit import fit_images, write_voxel_fit
 

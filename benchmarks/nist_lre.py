@@ -19,8 +19,8 @@ from pathlib import Path
 
 import numpy as np
 
-from groupmodel import tails
-from groupmodel.ols import Test, fit_chunk, prepare
+from groupmodel.engine import tails
+from groupmodel.engine.ols import Test, fit_chunk, prepare
 
 # The NIST reader, LRE and exact-arithmetic ceiling are the reference tests' own (one copy of each).
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests" / "reference"))

@@ -44,7 +44,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 from scipy import ndimage
 
-from groupmodel.inference import (
+from groupmodel.inference.driver import (
     available_cores,
     plan_contrast,
     residualise,
@@ -53,8 +53,8 @@ from groupmodel.inference import (
     stack_rows,
     tile_width,
 )
-from groupmodel.permutation import permutation_set
-from groupmodel.tfce import TfceParams, grid_adjacency, tfce
+from groupmodel.inference.rearrangements import permutation_set
+from groupmodel.inference.tfce import TfceParams, grid_adjacency, tfce
 
 SEED = 20240606
 FULL = {"shape": (91, 109, 91), "semi_axes": (36.0, 45.0, 34.0), "n": 100}

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from groupmodel.audit import audit
-from groupmodel.audit_read import participant_in_path, read_matrix
+from groupmodel.audit.read import participant_in_path, read_matrix
 from groupmodel.cli import main
 from groupmodel.errors import TableError
 
@@ -196,7 +196,7 @@ def test_json_report_and_images(tmp_path: Path, capsys: pytest.CaptureFixture[st
 
 def test_fast_vif_equals_regression_vif() -> None:
     """The one-inverse VIF equals the regression form of the definition (common practice)."""
-    from groupmodel.checks import variance_inflation, variance_inflation_by_regression
+    from groupmodel.model.checks import variance_inflation, variance_inflation_by_regression
 
     rng = np.random.default_rng(3)
     a = rng.normal(size=40)

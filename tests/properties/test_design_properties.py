@@ -19,10 +19,10 @@ import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from groupmodel.checks import cell_counts_by_term, check_design, matrix_rank
-from groupmodel.design import Design, build_design
-from groupmodel.spec import parse_term, spec_from_dict
-from groupmodel.table import select_sample
+from groupmodel.model.checks import cell_counts_by_term, check_design, matrix_rank
+from groupmodel.model.design import Design, build_design
+from groupmodel.model.spec import parse_term, spec_from_dict
+from groupmodel.model.table import select_sample
 
 FACTOR_NAMES = ("A", "B", "D", "E")
 

@@ -16,11 +16,11 @@ import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from groupmodel.design import Design, build_design
-from groupmodel.hypotheses import build_hypotheses
-from groupmodel.ols import Test, fit_chunk, prepare
-from groupmodel.spec import spec_from_dict
-from groupmodel.table import select_sample
+from groupmodel.engine.ols import Test, fit_chunk, prepare
+from groupmodel.model.design import Design, build_design
+from groupmodel.model.hypotheses import build_hypotheses
+from groupmodel.model.spec import spec_from_dict
+from groupmodel.model.table import select_sample
 
 NAMES = ("A", "B", "D")
 CODINGS = ("effect", "treatment", "polynomial", "indicator")

@@ -17,10 +17,10 @@ from hypothesis import strategies as st
 from scipy import ndimage, stats
 
 from groupmodel.errors import InputError
-from groupmodel.inference import MapWorkers, run_permutations, run_tests, tile_width, whole_map_batch
-from groupmodel.multiple import fdr_bh
-from groupmodel.permutation import count_rearrangements, permutation_set
-from groupmodel.tfce import TfceParams, grid_adjacency, tfce
+from groupmodel.inference.driver import MapWorkers, run_permutations, run_tests, tile_width, whole_map_batch
+from groupmodel.inference.multiple import fdr_bh
+from groupmodel.inference.rearrangements import count_rearrangements, permutation_set
+from groupmodel.inference.tfce import TfceParams, grid_adjacency, tfce
 
 SETTINGS = settings(max_examples=40, deadline=None)
 
@@ -262,7 +262,7 @@ def test_two_sided_tfce_p_uses_absolute_values():
 
 
 def test_run_tests_accepts_ols_tests():
-    from groupmodel.ols import Test
+    from groupmodel.engine.ols import Test
 
     X, Y, _, _ = _grid_study(seed=4)
     tests = [Test("group", [0, 1, 0], "t", "greater"), Test("both", [[0, 1, 0], [0, 0, 1]], "F")]

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from groupmodel.inference import run_permutations
+from groupmodel.inference.driver import run_permutations
 
 N_SIM = 1000
 N_PERM = 200  # p <= 0.05 means at most 10 of 200: a size of exactly 0.05 for continuous data

@@ -14,8 +14,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from groupmodel.engine.ols import Test, fit_chunk, prepare
 from groupmodel.errors import EstimabilityError, InputError, ModelError
-from groupmodel.ols import Test, fit_chunk, prepare
 
 SETTINGS = settings(max_examples=40, deadline=None)
 

@@ -22,7 +22,7 @@ import pytest
 from patsy.contrasts import Poly, Sum, Treatment
 
 from groupmodel import build
-from groupmodel.checks import (
+from groupmodel.model.checks import (
     CONDITION_WARN,
     cell_counts_by_term,
     check_design,
@@ -30,10 +30,10 @@ from groupmodel.checks import (
     matrix_rank,
     variance_inflation,
 )
-from groupmodel.coding import make_coding, orthogonal_polynomials
-from groupmodel.design import Design, build_design
-from groupmodel.spec import parse_term, spec_from_dict
-from groupmodel.table import select_sample
+from groupmodel.model.coding import make_coding, orthogonal_polynomials
+from groupmodel.model.design import Design, build_design
+from groupmodel.model.spec import parse_term, spec_from_dict
+from groupmodel.model.table import select_sample
 
 
 # ------------------------------------------------------------------------------------------ helpers

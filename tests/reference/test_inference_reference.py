@@ -17,9 +17,9 @@ import statsmodels.api as sm
 from scipy import linalg, stats
 
 from groupmodel.errors import EstimabilityError, InputError, ModelError
-from groupmodel.inference import chunk_statistics, plan_contrast, run_permutations
-from groupmodel.multiple import bonferroni, fdr_bh, reject
-from groupmodel.permutation import count_rearrangements, permutation_set
+from groupmodel.inference.driver import chunk_statistics, plan_contrast, run_permutations
+from groupmodel.inference.multiple import bonferroni, fdr_bh, reject
+from groupmodel.inference.rearrangements import count_rearrangements, permutation_set
 
 A = [12.1, 14.3, 13.8, 15.2, 16.0]
 B = [10.2, 11.5, 12.9, 11.1, 10.8, 12.0]

@@ -16,8 +16,8 @@ import statsmodels.api as sm
 from nist_strd import EASY, HARD, NIST_DIR, SKIP_REASON, exact_oneway, lre, read_nist
 from scipy import stats
 
+from groupmodel.engine.ols import Test, fit_chunk, prepare
 from groupmodel.errors import EstimabilityError
-from groupmodel.ols import Test, fit_chunk, prepare
 
 RTOL = 1e-8
 

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from groupmodel import tails
+from groupmodel.engine import tails
 
 DPS = 50
 Z_RTOL = 1e-12

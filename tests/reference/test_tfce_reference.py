@@ -14,10 +14,10 @@ import pytest
 from scipy import ndimage, sparse, stats
 from scipy.sparse import csgraph
 
-from groupmodel.clusters import cluster_table, label_clusters, stat_threshold
-from groupmodel.inference import chunk_statistics, plan_contrast, run_permutations
-from groupmodel.permutation import permutation_set
-from groupmodel.tfce import Adjacency, TfceParams, grid_adjacency, mesh_adjacency, tfce
+from groupmodel.inference.clusters import cluster_table, label_clusters, stat_threshold
+from groupmodel.inference.driver import chunk_statistics, plan_contrast, run_permutations
+from groupmodel.inference.rearrangements import permutation_set
+from groupmodel.inference.tfce import Adjacency, TfceParams, grid_adjacency, mesh_adjacency, tfce
 
 STRUCT = {c: ndimage.generate_binary_structure(3, r) for c, r in ((6, 1), (18, 2), (26, 3))}
 

@@ -17,8 +17,8 @@ import pytest
 from scipy import stats
 from test_fit_voxelwise import make_study
 
+from groupmodel.analysis.corrections import InferenceOptions
 from groupmodel.cli import main
-from groupmodel.corrections import InferenceOptions
 from groupmodel.errors import InputError
 from groupmodel.fit import fit_images
 

@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import groupmodel.images as images_module
+import groupmodel.images.core as images_module
 from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.fit import F_MAPS, T_MAPS, VoxelFit, fit_images, write_voxel_fit
 

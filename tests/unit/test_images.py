@@ -21,7 +21,6 @@ from nibabel.arrayproxy import ArrayProxy
 
 from groupmodel.images import (
     Grid,
-    _compact_rows,
     check_images,
     chunk_size_for,
     load_mask,
@@ -32,6 +31,7 @@ from groupmodel.images import (
     write_map,
     write_mask,
 )
+from groupmodel.images.core import _compact_rows
 
 # a realistic oblique-free affine: x stored right-to-left, origin away from the corner
 AFFINE = np.array([[-3.0, 0, 0, 30.5], [0, 3.0, 0, -42.0], [0, 0, 3.5, -20.25], [0, 0, 0, 1]])

@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from groupmodel import inference
-from groupmodel.inference import available_cores, cpu_quota
+from groupmodel.inference import driver as inference
+from groupmodel.inference.driver import available_cores, cpu_quota
 
 
 def _v2(root: Path, text: str) -> Path:

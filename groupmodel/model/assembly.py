@@ -13,7 +13,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import __version__
+from .. import __version__
+from ..errors import ModelError, SpecError
+from ..outputs.folder import OutputFolder
 from .checks import (
     Finding,
     cell_counts_by_term,
@@ -24,9 +26,7 @@ from .checks import (
     variance_inflation,
 )
 from .design import Design, build_design
-from .errors import ModelError, SpecError
 from .hypotheses import Hypothesis, build_hypotheses
-from .outputs import OutputFolder
 from .spec import ModelSpec, load_spec
 from .table import Sample, select_sample
 
@@ -137,7 +137,7 @@ class Model:
     # ----- engine view ---------------------------------------------------------------------------
     def tests(self) -> list[Any]:
         """The hypotheses as engine tests (:class:`groupmodel.ols.Test`)."""
-        from .ols import Test
+        from ..engine.ols import Test
 
         return [Test(h.name, h.weights, h.test, h.tail) for h in self.hypotheses.values()]
 
@@ -150,7 +150,7 @@ class Model:
         out.write_json("contrasts.json", self.contrasts_sidecar())
         names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
         if pictures:
-            from .figures import plot_contrasts, plot_design
+            from ..outputs.figures import plot_contrasts, plot_design
 
             plot_design(out.file("design.png"), self.design.matrix, self.design.column_names,
                         self.design.participant_ids)

@@ -43,7 +43,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from .errors import ImageError, InputError
+from ..errors import ImageError, InputError
 
 #: Largest absolute difference between two affines' entries (mm, or mm per voxel) still counted as equal.
 AFFINE_TOLERANCE_MM = 1e-4

@@ -36,7 +36,7 @@ from typing import Literal
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "Method",

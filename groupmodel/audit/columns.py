@@ -31,7 +31,7 @@ from itertools import combinations, product
 
 import numpy as np
 
-from .coding import degree_name, orthogonal_polynomials
+from ..model.coding import degree_name, orthogonal_polynomials
 
 #: A covariate counts as centred at its mean when the centre lies within this many SDs of the mean
 #: (hand-typed centres are rounded; a centre from another sample is further off).

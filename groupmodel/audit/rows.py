@@ -20,10 +20,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .audit_columns import ColumnRole, TableView
-from .audit_read import listing, num_text, participant_in_path, read_image_list
-from .errors import TableError
-from .table import MISSING, read_sidecar_levels
+from ..errors import TableError
+from ..model.table import MISSING, read_sidecar_levels
+from .columns import ColumnRole, TableView
+from .read import listing, num_text, participant_in_path, read_image_list
 
 #: Designs up to this many rows get a search for the one missing or extra row when the count is off by one.
 GUESS_MAX_ROWS = 400
@@ -333,7 +333,7 @@ class RowsMixin:
         x = self.x_file
         count = 0
         names = list(view.factors)
-        from .audit_columns import _covariate_fit, _factor_function
+        from .columns import _covariate_fit, _factor_function
 
         for j in range(x.n_columns):
             col, tol = x.values[:, j], x.tolerance(j)

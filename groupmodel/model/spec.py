@@ -18,7 +18,7 @@ from typing import Any, Literal
 
 import jsonschema
 
-from .errors import SpecError
+from ..errors import SpecError
 
 Coding = Literal["effect", "treatment", "polynomial", "indicator"]
 #: A model term: the names of its members, in the order written (``("training", "chronotype")``).

@@ -34,7 +34,19 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .audit_columns import (
+from ..errors import InputError, OutputError, TableError
+from ..model.checks import (
+    CONDITION_WARN,
+    VIF_WARN,
+    condition_number,
+    has_constant_column,
+    matrix_rank,
+    variance_inflation,
+)
+from ..model.coding import make_coding
+from ..model.design import Column, CovariateCoding
+from ..model.table import read_table
+from .columns import (
     ColumnRole,
     TableView,
     describe_roles,
@@ -42,7 +54,7 @@ from .audit_columns import (
     identify_column,
     summarise_factors,
 )
-from .audit_contrasts import (
+from .contrasts import (
     UNCENTRED_MEAN_SD,
     ContrastReport,
     ContrastsMixin,
@@ -51,20 +63,8 @@ from .audit_contrasts import (
     dependents_in_words,
     member_brief,
 )
-from .audit_read import AuditFinding, listing, num_text, read_matrix
-from .audit_rows import RowsMixin
-from .checks import (
-    CONDITION_WARN,
-    VIF_WARN,
-    condition_number,
-    has_constant_column,
-    matrix_rank,
-    variance_inflation,
-)
-from .coding import make_coding
-from .design import Column, CovariateCoding
-from .errors import InputError, OutputError, TableError
-from .table import read_table
+from .read import AuditFinding, listing, num_text, read_matrix
+from .rows import RowsMixin
 
 __all__ = ["AuditReport", "ContrastReport", "HandDesign", "SECTIONS", "SMD_WARN", "audit", "run_check_cli"]
 
@@ -151,7 +151,7 @@ class AuditReport:
         return "\n".join(lines)
 
     def as_dict(self) -> dict[str, Any]:
-        from . import __version__
+        from .. import __version__
 
         return {
             "software": "groupmodel",
@@ -238,7 +238,7 @@ class _Auditor(RowsMixin, ContrastsMixin, SpecMixin):
         self.model = None
         self.spec = None
         if spec is not None:
-            from .spec import load_spec
+            from ..model.spec import load_spec
 
             self.spec = load_spec(spec)
             if participants is None:
@@ -258,7 +258,7 @@ class _Auditor(RowsMixin, ContrastsMixin, SpecMixin):
         self.frame = frame
         self.sample = None
         if self.spec is not None:
-            from .table import select_sample
+            from ..model.table import select_sample
 
             self.sample = select_sample(self.spec, table=frame)
         self.x_file = read_matrix(self.design_path, "design")
@@ -541,7 +541,7 @@ def run_check_cli(args: argparse.Namespace) -> int:
     )
     print(report.format())
     if args.json is not None:
-        from .outputs import dumps_json
+        from ..outputs.folder import dumps_json
 
         try:
             args.json.parent.mkdir(parents=True, exist_ok=True)

@@ -23,9 +23,9 @@ from typing import Any, Literal
 
 import numpy as np
 
+from ..errors import ModelError, SpecError
 from .coding import degree_name, orthogonal_polynomials
 from .design import Design
-from .errors import ModelError, SpecError
 
 Tail = Literal["two-sided", "greater", "less"]
 

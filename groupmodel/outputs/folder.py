@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import OutputError
+from ..errors import OutputError
 
 #: Text written for a missing value in every TSV groupmodel writes (BIDS convention).
 NA = "n/a"

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = ["bonferroni", "fdr_bh", "reject"]
 

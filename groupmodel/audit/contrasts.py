@@ -16,11 +16,11 @@ from typing import Any
 
 import numpy as np
 
-from .audit_read import num_text, row_text
-from .checks import dependent_columns, matrix_rank
-from .design import Design
-from .errors import GroupModelError
-from .hypotheses import ESTIMABILITY_TOL, RowSpace, build_hypothesis, describe_cell_weights, independent_rows
+from ..errors import GroupModelError
+from ..model.checks import dependent_columns, matrix_rank
+from ..model.design import Design
+from ..model.hypotheses import ESTIMABILITY_TOL, RowSpace, build_hypothesis, describe_cell_weights, independent_rows
+from .read import num_text, row_text
 
 #: An uncentred covariate only matters (a warning; contrasts held at 0) when its mean is this many SDs from 0.
 UNCENTRED_MEAN_SD = 0.1
@@ -391,7 +391,7 @@ class SpecMixin:
     """The comparison with a spec of :class:`groupmodel.audit._Auditor`."""
 
     def _compare_spec(self) -> None:
-        from .model import build
+        from ..model.assembly import build
 
         rep = self.report
         assert self.spec is not None and self.align is not None

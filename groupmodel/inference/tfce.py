@@ -54,7 +54,7 @@ from typing import Literal
 import numpy as np
 from scipy import sparse
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "Adjacency",

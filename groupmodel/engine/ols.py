@@ -50,8 +50,8 @@ from typing import Literal
 
 import numpy as np
 
+from ..errors import EstimabilityError, InputError, ModelError
 from . import tails
-from .errors import EstimabilityError, InputError, ModelError
 
 __all__ = [
     "ChunkResult",

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import SpecError, TableError
+from ..errors import SpecError, TableError
 from .spec import ModelSpec
 
 #: Values read as missing.  ``n/a`` is the BIDS marker; an empty field is not valid BIDS but means the same.

@@ -15,8 +15,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .multiple import bonferroni, fdr_bh
+from ..errors import InputError
+from ..inference.multiple import bonferroni, fdr_bh
 
 #: Method names as users write them -> the inference engine's names.
 METHODS = {"auto": "auto", "permutation": "permute", "sign_flip": "flip", "both": "both"}
@@ -135,7 +135,7 @@ def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str,
 
 def block_labels(model: Any, column: str) -> np.ndarray:
     """Integer exchangeability-block label of every design row, from a table column."""
-    from .table import MISSING, read_table
+    from ..model.table import MISSING, read_table
 
     table = read_table(model.spec.participants)
     if column not in table.columns:
@@ -157,7 +157,7 @@ def block_labels(model: Any, column: str) -> np.ndarray:
 
 def adjacency_for(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:
     """The neighbourhood graph over in-mask elements, for TFCE and clusters (None when not needed)."""
-    from .tfce import grid_adjacency, mesh_adjacency
+    from ..inference.tfce import grid_adjacency, mesh_adjacency
 
     if not (options.tfce or options.cluster_threshold is not None):
         return None
@@ -212,8 +212,8 @@ def permutation_inference(
         Memory for the whole statistic maps that TFCE and cluster inference hold per batch of
         rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
     """
-    from .inference import BATCH_SIZE, available_cores, run_permutations, shared_workers, whole_map_batch
-    from .tfce import TfceParams
+    from ..inference.driver import BATCH_SIZE, available_cores, run_permutations, shared_workers, whole_map_batch
+    from ..inference.tfce import TfceParams
 
     adjacency = adjacency_for(data.grid, data.mask, options)
     blocks = block_labels(model, options.blocks) if options.blocks else None
@@ -268,7 +268,7 @@ def permutation_inference(
 
 
 def _table(stat: np.ndarray, clusters: Any, p: Any, ijk: np.ndarray | None, grid: Any) -> pd.DataFrame:
-    from .clusters import cluster_table
+    from ..inference.clusters import cluster_table
 
     if ijk is not None:
         return cluster_table(stat, clusters, p, ijk=ijk, affine=grid.affine)
@@ -278,8 +278,8 @@ def _table(stat: np.ndarray, clusters: Any, p: Any, ijk: np.ndarray | None, grid
 def _significant_table(stat: np.ndarray, p: np.ndarray, h: Any, adjacency: Any, ijk: np.ndarray | None,
                        grid: Any) -> pd.DataFrame:
     """Clusters of elements with corrected p < TABLE_ALPHA; each cluster's p is its smallest p."""
-    from .clusters import label_clusters
-    from .tfce import grid_adjacency
+    from ..inference.clusters import label_clusters
+    from ..inference.tfce import grid_adjacency
 
     if adjacency is None:
         if grid.kind != "nifti":

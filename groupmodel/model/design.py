@@ -21,8 +21,8 @@ from itertools import product
 import numpy as np
 import pandas as pd
 
+from ..errors import ModelError, SpecError
 from .coding import FactorCoding, make_coding
-from .errors import ModelError, SpecError
 from .spec import ModelSpec, Term, term_label
 from .table import Sample
 

@@ -87,10 +87,10 @@ from typing import Any, Literal
 
 import numpy as np
 
+from ..engine.ols import design_matrix
+from ..errors import EstimabilityError, InputError, ModelError
 from .clusters import Clusters, label_clusters, max_cluster_size, stat_threshold
-from .errors import EstimabilityError, InputError, ModelError
-from .ols import design_matrix
-from .permutation import Method, PermutationSet, default_method, permutation_set
+from .rearrangements import Method, PermutationSet, default_method, permutation_set
 from .tfce import Adjacency, TfceParams, tfce
 
 __all__ = [

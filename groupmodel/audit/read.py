@@ -20,8 +20,8 @@ from typing import Literal
 
 import numpy as np
 
-from .checks import Finding
-from .errors import TableError
+from ..errors import TableError
+from ..model.checks import Finding
 
 #: Header names of a design column that holds participant ids instead of numbers.
 ID_COLUMNS = ("participant_id",)

@@ -16,7 +16,7 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse import csgraph
 
-from .errors import InputError
+from ..errors import InputError
 from .tfce import Adjacency
 
 if TYPE_CHECKING:

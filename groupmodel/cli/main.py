@@ -14,8 +14,8 @@ import traceback
 from collections.abc import Sequence
 from pathlib import Path
 
-from . import __version__
-from .errors import GroupModelError
+from .. import __version__
+from ..errors import GroupModelError
 
 EPILOG_MAIN = """\
 examples:
@@ -166,8 +166,8 @@ def _print_findings(model) -> None:  # type: ignore[no-untyped-def]
 
 
 def _cmd_build(args: argparse.Namespace) -> int:
-    from .model import DISCLAIMER, build
-    from .outputs import OutputFolder
+    from ..model.assembly import DISCLAIMER, build
+    from ..outputs.folder import OutputFolder
 
     folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
     model = build(args.spec)
@@ -201,11 +201,11 @@ def _report_model(model) -> None:  # type: ignore[no-untyped-def]
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .outputs import OutputFolder
+    from ..outputs.folder import OutputFolder
 
     OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
     if args.outcome:
-        from .fit import fit_table, write_table_fit
+        from ..analysis.voxel_fit import fit_table, write_table_fit
 
         fit = fit_table(args.spec, args.outcome)
         _report_model(fit.model)
@@ -214,13 +214,13 @@ def _cmd_fit(args: argparse.Namespace) -> int:
         write_table_fit(fit, args.out, force=args.force)
         print(f"wrote {args.out}/results.tsv")
         return 0
-    from .fit import run_voxelwise_cli
+    from ..analysis.voxel_fit import run_voxelwise_cli
 
     return run_voxelwise_cli(args)
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .audit import run_check_cli
+    from ..audit.pipeline import run_check_cli
 
     return run_check_cli(args)
 

@@ -1,0 +1,526 @@
+"""Run the OLS engine over a table column (ROI analysis) or over all chunks of the images.
+
+The engine (:mod:`groupmodel.ols`) is a pure function of (design, tests, chunk of data); this module only
+feeds it and collects what it returns.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from ..engine.ols import ChunkResult, fit_chunk, prepare
+from ..errors import InputError, ModelError
+from ..model.assembly import DISCLAIMER, Model, build
+from ..model.spec import ModelSpec, load_spec
+from ..outputs.folder import OutputFolder
+from .corrections import InferenceOptions, parametric_corrections, permutation_inference
+
+
+@dataclass
+class TableFit:
+    """The table-level fit of every hypothesis to one outcome column."""
+
+    model: Model
+    outcome: str
+    result: ChunkResult
+    table: pd.DataFrame
+
+    def format(self) -> str:
+        """The results table for a terminal."""
+        lines = [
+            f"outcome {self.outcome}: {self.model.design.n_observations} observations, "
+            f"{self.result.df_resid} residual df, residual SD {float(np.sqrt(self.result.residual_variance[0])):.6g}",
+        ]
+        frame = self.table.copy()
+        for col in ("estimate", "se", "statistic", "z"):
+            frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
+        frame["p"] = frame["p"].map(lambda v: f"{v:.4g}")
+        lines.append(frame.to_string(index=False))
+        lines.append(DISCLAIMER)
+        return "\n".join(lines)
+
+
+def results_table(model: Model, result: ChunkResult, voxel: int = 0) -> pd.DataFrame:
+    """One row per hypothesis: test, estimate, se, statistic, df1, df2, p (for its tail), z of equal p."""
+    records = []
+    for h in model.hypotheses.values():
+        r = result[h.name]
+        t = h.test == "t"
+        records.append({
+            "hypothesis": h.name,
+            "test": h.test,
+            "tail": h.tail,
+            "estimate": float(r.effect[voxel]) if t else np.nan,
+            "se": float(r.se[voxel]) if t and r.se is not None else np.nan,
+            "statistic": float(r.statistic[voxel]),
+            "df1": r.df1,
+            "df2": r.df2,
+            "p": float(r.p[voxel]),
+            "z": float(r.z[voxel]),
+        })
+    return pd.DataFrame.from_records(
+        records, columns=["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
+    )
+
+
+def _require_fittable(model: Model) -> None:
+    model.raise_for_errors()
+    if not model.hypotheses:
+        raise ModelError(f"{model.spec.name}: the spec has no hypotheses to test; add a 'hypotheses' object")
+
+
+def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
+    """Fit every hypothesis of ``spec`` to the numeric table column ``outcome``.
+
+    Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.
+    """
+    if not isinstance(spec, ModelSpec):
+        spec = load_spec(spec)
+    model = build(spec, numeric_columns=[outcome])
+    _require_fittable(model)
+    y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
+    prepared = prepare(model.design.matrix, model.tests())
+    result = fit_chunk(prepared, y)
+    return TableFit(model, outcome, result, results_table(model, result))
+
+
+def write_table_fit(fit: TableFit, out: Path | str, force: bool = False) -> Path:
+    """Write results.tsv, results.json and the design files atomically."""
+    folder = OutputFolder(out, force=force)
+    with folder as o:
+        fit.model.write_into(o)
+        o.write_tsv("results.tsv", fit.table)
+        o.write_json("results.json", _results_sidecar(fit))
+    return Path(out)
+
+
+def _results_sidecar(fit: TableFit) -> dict[str, Any]:
+    return {
+        "software": "groupmodel",
+        "software_version": __version__,
+        "note": DISCLAIMER,
+        "outcome": fit.outcome,
+        "n_observations": fit.model.design.n_observations,
+        "df_resid": fit.result.df_resid,
+        "residual_variance": float(fit.result.residual_variance[0]),
+        "columns": {
+            "estimate": "contrast estimate L b (t tests; n/a for F)",
+            "se": "standard error of the estimate (t tests)",
+            "statistic": "t or F",
+            "df1": "numerator degrees of freedom (1 for t: t squared is F(1, df2))",
+            "df2": "residual degrees of freedom",
+            "p": "p value for the hypothesis's tail",
+            "z": "z of equal p (signed like t; upper tail for F)",
+        },
+        "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
+                       for n, h in fit.model.hypotheses.items()},
+        "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+    }
+
+
+
+# --------------------------------------------------------------------------------------------------
+# Voxelwise fit
+# --------------------------------------------------------------------------------------------------
+#: Share of --memory given to the image data matrix; the rest is for one chunk's work and the result maps.
+DATA_SHARE = 0.6
+#: Maps that come from permutations (their sidecars record method, J, exhaustive and seed).
+PERMUTATION_STATS = ("p_perm", "p_fwe", "tfce", "p_tfce_fwe", "p_cluster_fwe")
+CORRECTION_NOTES = {
+    "p_fdr": "Benjamini-Hochberg (1995) adjusted p over the voxels of the mask",
+    "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
+    "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
+    "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
+    "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
+    "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
+    "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
+#: What the cluster tables hold.
+CLUSTER_KINDS = {
+    "voxel_fwe": "clusters of voxels with voxel-level FWE p < 0.05; p_fwe is the smallest in the cluster",
+    "tfce_fwe": "clusters of voxels with TFCE FWE p < 0.05; p_fwe is the smallest in the cluster",
+    "cluster_extent_fwe": "clusters at the cluster-forming threshold; p_fwe is the cluster-extent FWE p",
+}
+CLUSTER_COLUMNS = {
+    "cluster": "cluster number, largest first",
+    "sign": "+1 for high values, -1 for low values (two-sided t)",
+    "size": "voxels (or vertices)",
+    "peak_stat": "most extreme statistic in the cluster's direction",
+    "peak_index": "position of the peak in the mask's voxel order",
+    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
+    "com_x, com_y, com_z": "unweighted centre of mass in mm",
+    "p_fwe": "family-wise error p",
+}
+#: Maps written for each kind of test (statistic names as in the sidecars).
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+_INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
+            "mlog10p": "none", "residual_variance": "estimate"}
+
+
+@dataclass
+class VoxelFit:
+    """Maps of a voxelwise fit, in mask order, plus what is needed to write them.
+
+    Attributes
+    ----------
+    model : Model
+    grid : groupmodel.images.Grid
+    mask : ndarray of bool, shape grid.shape
+    maps : dict
+        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``) ->
+        float64 array of shape (n_in_mask,).
+    residual_variance : ndarray, shape (n_in_mask,)
+    df_resid : int
+    mask_report : dict
+        Voxel counts of the mask (in mask, left out for NaN/inf, left out for zero everywhere).
+    dropped : list of (participant_id, reason)
+        Participants left out for missing images (with --drop-missing-images).
+    inference : dict or None
+        The corrected-inference settings used.
+    records : dict
+        Hypothesis -> what its permutation maps were made with (method, J, exhaustive, seed, TFCE, ...).
+    tables : dict
+        Hypothesis -> kind (``voxel_fwe``, ``tfce_fwe``, ``cluster_extent_fwe``) -> cluster table.
+    """
+
+    model: Model
+    grid: Any
+    mask: np.ndarray
+    maps: dict[str, dict[str, np.ndarray]]
+    residual_variance: np.ndarray
+    df_resid: int
+    mask_report: dict[str, int]
+    dropped: list[tuple[str, str]]
+    warnings: list[str]
+    inference: dict[str, Any] | None = None
+    records: dict[str, dict[str, Any]] = field(default_factory=dict)
+    tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+
+    def summary(self) -> pd.DataFrame:
+        """Per hypothesis: test, df, peak |statistic|, peak z, voxels with p < 0.001 and p < 0.05 (uncorrected)."""
+        rows = []
+        for h in self.model.hypotheses.values():
+            m = self.maps[h.name]
+            stat = m["t"] if h.test == "t" else m["F"]
+            # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
+            tested = ~np.isnan(stat)
+            rows.append({
+                "hypothesis": h.name,
+                "test": h.test,
+                "tail": h.tail,
+                "df1": h.n_rows,
+                "df2": self.df_resid,
+                "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
+                "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
+                "voxels_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
+                "voxels_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
+                **{f"voxels_{k}_lt_0.05": int(np.count_nonzero(m[k] < 0.05))
+                   for k in ("p_fdr", "p_fwe", "p_tfce_fwe", "p_cluster_fwe") if k in m},
+            })
+        return pd.DataFrame(rows)
+
+
+def _progress(total: int, desc: str, unit: str = "vox") -> Any:
+    """A tqdm bar on a terminal, nothing otherwise."""
+    import sys
+
+    if not sys.stderr.isatty():
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, desc=desc, unit=unit, leave=False)
+
+
+def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, list[tuple[str, str]]]:
+    """Resolve and check the images of a model's observations; rebuild the model if some are dropped.
+
+    Returns
+    -------
+    model : Model
+        With participants without images left out (listed among the exclusions) when ``drop_missing``.
+    source : groupmodel.images.ImageSource
+        Checked, in design-row order.
+    dropped : list of (participant_id, reason)
+    """
+    from ..images.core import check_images, resolve_images
+    from ..model.table import read_table
+
+    spec = model.spec
+    if not spec.images:
+        raise InputError(
+            f'{spec.name}: expected an "images" entry (a path pattern such as '
+            '"maps/{participant_id}_effect.nii.gz", a column of paths, or one 4-D file); found none; '
+            "add it, or fit one table column with --outcome"
+        )
+    table = read_table(spec.participants)
+    file_rows = [r - 1 for r in model.sample.data["row"]]
+    rows = table.iloc[file_rows].reset_index(drop=True)
+    source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
+                            source_label=f'{spec.name} "images"', file_rows=file_rows, n_file_rows=len(table))
+    source, dropped = check_images(source, drop_missing=drop_missing)
+    if dropped:
+        extra = {pid: reason for pid, reason in dropped}
+        model = build(spec, extra_exclusions=extra)
+        rows = table.iloc[[r - 1 for r in model.sample.data["row"]]].reset_index(drop=True)
+        source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
+                                source_label=f'{spec.name} "images"')
+        source, _ = check_images(source)
+    return model, source, dropped
+
+
+def fit_images(
+    spec: ModelSpec | Path | str,
+    mask: Path | str | None = None,
+    memory_bytes: int = 2 * 1024**3,
+    drop_missing: bool = False,
+    chunk_voxels: int | None = None,
+    progress: bool = True,
+    inference: InferenceOptions | None = None,
+) -> VoxelFit:
+    """Fit every hypothesis of ``spec`` at every voxel of its images.
+
+    Every hypothesis also gets Benjamini-Hochberg and Bonferroni adjusted p maps over the mask; with
+    ``inference`` (``permutations > 0``) permutation inference runs on the same data while they are loaded.
+
+    Parameters
+    ----------
+    spec : ModelSpec or path
+    mask : path, optional
+        Mask image on the grid of the images (default: the spec's ``mask``, else every voxel finite in all
+        images and nonzero in some).
+    memory_bytes : int
+        Budget for image data and working arrays (bytes).
+    drop_missing : bool
+        Leave out participants whose image is missing (listed) instead of stopping.
+    chunk_voxels : int, optional
+        Voxels per chunk (default: from the budget).  Results do not depend on it.
+    progress : bool
+        Show a progress bar when stderr is a terminal.
+    inference : InferenceOptions, optional
+        Permutation inference settings (default: the spec's ``inference`` object).
+    """
+    from ..images.core import chunk_size_for, load_masked
+
+    if not isinstance(spec, ModelSpec):
+        spec = load_spec(spec)
+    if inference is None:
+        inference = InferenceOptions.resolve(spec.inference, spec.base_dir)
+    model = build(spec)
+    _require_fittable(model)
+    model, source, dropped = open_images(model, drop_missing)
+    _require_fittable(model)
+    tests = model.tests()
+    prepared = prepare(model.design.matrix, tests)
+    mask_path = mask if mask is not None else spec.mask
+    # Reading (decompressing) the images is usually the longest step: it gets its own bar.
+    read_bar = _progress(len(source), "reading images", unit="image") if progress else None
+
+    def images_read(done: int, total: int) -> None:
+        read_bar.update(done - read_bar.n)
+
+    try:
+        data = load_masked(source, mask_path, int(memory_bytes * DATA_SHARE),
+                           progress=None if read_bar is None else images_read)
+    finally:
+        if read_bar is not None:
+            read_bar.close()
+    bar = None
+    try:
+        n_vox = data.n_in_mask
+        maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
+                for h in model.hypotheses.values()}
+        resid_var = np.empty(n_vox)
+        if chunk_voxels is None:
+            n_maps = sum(len(m) for m in maps.values()) + 1
+            work = max(memory_bytes * (1 - DATA_SHARE) - n_maps * n_vox * 8, memory_bytes * 0.1)
+            chunk_voxels = chunk_size_for(model.design.n_observations, len(tests), int(work))
+        bar = _progress(n_vox, "fitting") if progress else None
+        for cols, y in data.chunks(chunk_voxels):
+            res = fit_chunk(prepared, y)
+            resid_var[cols] = res.residual_variance
+            for h in model.hypotheses.values():
+                r = res[h.name]
+                m = maps[h.name]
+                if h.test == "t":
+                    m["effect"][cols] = r.effect
+                    m["se"][cols] = r.se
+                    m["t"][cols] = r.statistic
+                else:
+                    m["F"][cols] = r.statistic
+                m["z"][cols] = r.z
+                m["p"][cols] = r.p
+                m["mlog10p"][cols] = r.mlog10p
+            if bar is not None:
+                bar.update(cols.stop - cols.start)
+        warnings = list(data.warnings)
+        if maps:
+            first = next(iter(maps.values()))
+            n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+            if n_flat:
+                warnings.append(
+                    f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
+                    "value in every image: their t, F, z and p are NaN (not tested)"
+                )
+        for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
+            maps[name].update(extra)
+        records: dict[str, dict[str, Any]] = {}
+        tables: dict[str, dict[str, pd.DataFrame]] = {}
+        if inference.active:
+            if bar is not None:
+                bar.close()
+            perm_bar = _progress(inference.permutations * len(maps), "permutations", unit="perm") \
+                if progress else None
+            done_before: dict[str, int] = {}
+
+            def perm_progress(name: str, done: int, total: int) -> None:
+                if perm_bar is not None:
+                    perm_bar.update(done - done_before.get(name, 0))
+                    done_before[name] = done
+
+            # Half of the working share each (a fifth of the budget) for residualised data and whole maps.
+            share = int(memory_bytes * (1 - DATA_SHARE) * 0.5)
+            try:
+                results = permutation_inference(
+                    model, data, inference, cache_bytes=share, maps_bytes=share,
+                    chunk_voxels=chunk_voxels, progress=perm_progress,
+                )
+            finally:
+                if perm_bar is not None:
+                    perm_bar.close()
+            for name, res in results.items():
+                maps[name].update(res.maps)
+                records[name] = res.record
+                tables[name] = res.tables
+        report = {
+            "voxels_in_mask": int(n_vox),
+            "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
+            "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
+            "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
+        }
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
+                        warnings, inference=inference.as_dict(), records=records, tables=tables)
+    finally:
+        if bar is not None:
+            bar.close()
+        data.close()
+
+
+def _map_name(grid: Any, stem: str) -> str:
+    return stem + (".gii" if grid.kind == "gifti" else ".nii.gz")
+
+
+def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
+    """The JSON sidecar of one map."""
+    out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
+    if name is not None:
+        h = fit.model.hypotheses[name]
+        out.update({
+            "test": h.test,
+            "statement": h.statement,
+            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
+            "df1": h.n_rows,
+            "df2": fit.df_resid,
+            "tail": h.tail,
+        })
+    else:
+        out.update({"df2": fit.df_resid})
+    out.update(extra)
+    out.update({"software": "groupmodel", "software_version": __version__, "note": DISCLAIMER})
+    return out
+
+
+def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
+                    extra_writer: Any = None) -> list[str]:
+    """Write every map with its sidecar, the mask, the design files and a summary, atomically."""
+    from ..images.core import write_map, write_mask
+
+    folder = OutputFolder(out, force=force)
+    written: list[str] = []
+    with folder as o:
+        written += fit.model.write_into(o)
+        for h in fit.model.hypotheses.values():
+            for stat, values in fit.maps[h.name].items():
+                fname = _map_name(fit.grid, f"{h.name}_{stat}")
+                intent = None
+                if stat == "t":
+                    intent = ("t test", (fit.df_resid,))
+                elif stat == "F":
+                    intent = ("f test", (h.n_rows, fit.df_resid))
+                elif stat in ("z", "p"):
+                    intent = (_INTENTS[stat], ())
+                write_map(o.file(fname), values, fit.mask, fit.grid, intent=intent,
+                          description=f"groupmodel {h.name} {stat}"[:79])
+                # the sidecar is named after the map's stem: hypothesis names may contain dots
+                extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
+                if stat in CORRECTION_NOTES:
+                    extra["correction"] = CORRECTION_NOTES[stat]
+                o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
+                written.append(fname)
+            for kind, table in fit.tables.get(h.name, {}).items():
+                tname = f"{h.name}_clusters_{kind}.tsv"
+                o.write_tsv(tname, table)
+                o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
+                    fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
+                    clusters=CLUSTER_KINDS[kind]))
+                written.append(tname)
+        fname = _map_name(fit.grid, "residual_variance")
+        write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")
+        o.write_json("residual_variance.json", map_sidecar(fit, None, "residual_variance"))
+        mname = _map_name(fit.grid, "mask")
+        write_mask(o.file(mname), fit.mask, fit.grid)
+        o.write_json("mask.json", {"statistic": "mask", **fit.mask_report, "software_version": __version__})
+        written += [fname, mname]
+        o.write_tsv("summary.tsv", fit.summary())
+        o.write_json("summary.json", {
+            "software": "groupmodel", "software_version": __version__, "note": DISCLAIMER,
+            "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
+            "df_resid": fit.df_resid, "mask": fit.mask_report,
+            "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+            "warnings": fit.warnings, "inference": fit.inference,
+        })
+        written += ["summary.tsv", "summary.json"]
+        if extra_writer is not None:
+            written += extra_writer(o)
+    return written
+
+
+def run_voxelwise_cli(args: Any) -> int:
+    """``groupmodel fit`` without --outcome: fit, print a summary, write the maps."""
+    spec = load_spec(args.spec)
+    options = InferenceOptions.resolve(spec.inference, spec.base_dir, args)
+    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                     inference=options)
+    m = fit.model
+    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
+          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
+          f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
+    if m.sample.exclusions:
+        print(f"excluded {len(m.sample.exclusions)}:")
+        for e in m.sample.exclusions:
+            print(f"  {e.participant_id} (row {e.row}): {e.reason}")
+    for w in fit.warnings:
+        print(f"  warning: {w}")
+    for h in m.hypotheses.values():
+        print(f"  {h.name} [{h.test}]: {h.statement}")
+    if options.active:
+        rec = next(iter(fit.records.values()), {})
+        print(f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
+              f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "
+              f"Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; cluster threshold "
+              f"{options.cluster_threshold if options.cluster_threshold is not None else 'none'}")
+    print(fit.summary().to_string(index=False))
+    write_voxel_fit(fit, args.out, force=args.force)
+    print(f"wrote {args.out}")
+    print(DISCLAIMER)
+    return 0
+
+
+__all__ = ["TableFit", "VoxelFit", "fit_table", "fit_images", "write_table_fit", "write_voxel_fit",
+           "results_table", "InputError"]

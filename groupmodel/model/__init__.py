@@ -1,0 +1,8 @@
+"""From a JSON spec and the participants table to a :class:`Model`: sample, design, hypotheses, findings.
+
+No image arrays and no files written here: :mod:`groupmodel.outputs` writes what a model holds.
+"""
+
+from .assembly import DISCLAIMER, Model, build
+
+__all__ = ["DISCLAIMER", "Model", "build"]

@@ -1,0 +1,1 @@
+"""Where work runs: cores and CPU quotas, thread and process pools."""

@@ -32,16 +32,14 @@ from itertools import combinations, product
 import numpy as np
 
 from ..model.coding import degree_name, orthogonal_polynomials
+from ..text import number_text
 
 #: A covariate counts as centred at its mean when the centre lies within this many SDs of the mean
 #: (hand-typed centres are rounded; a centre from another sample is further off).
 CENTRE_SLACK_SD = 0.01
 
 
-def _num(x: float) -> str:
-    if abs(x - round(x)) < 1e-9:
-        return str(int(round(x)))
-    return f"{x:.4g}"
+_num = number_text
 
 
 @dataclass

@@ -22,6 +22,7 @@ import numpy as np
 
 from ..errors import TableError
 from ..model.checks import Finding
+from ..text import number_text
 
 #: Header names of a design column that holds participant ids instead of numbers.
 ID_COLUMNS = ("participant_id",)
@@ -302,13 +303,7 @@ def participant_in_path(image_path: str) -> str | None:
 
 
 # Text helpers shared by the audit modules.
-def num_text(x: float) -> str:
-    """A number for a message: whole numbers without decimals, others to 4 significant digits."""
-    if not math.isfinite(x):
-        return str(x)
-    if abs(x - round(x)) < 1e-9:
-        return str(int(round(x)))
-    return f"{x:.4g}"
+num_text = number_text
 
 
 def listing(items: Sequence[str], sep: str = ", ") -> str:

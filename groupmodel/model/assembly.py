@@ -16,6 +16,7 @@ import pandas as pd
 from .. import __version__
 from ..errors import ModelError, SpecError
 from ..outputs.folder import OutputFolder
+from ..text import DISCLAIMER
 from .checks import (
     Finding,
     cell_counts_by_term,
@@ -29,8 +30,6 @@ from .design import Design, build_design
 from .hypotheses import Hypothesis, build_hypotheses
 from .spec import ModelSpec, load_spec
 from .table import Sample, select_sample
-
-DISCLAIMER = "groupmodel output supports research; it is not a clinical or diagnostic tool."
 
 
 @dataclass

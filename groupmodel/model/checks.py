@@ -12,6 +12,7 @@ from typing import Literal
 
 import numpy as np
 
+from ..text import number_text
 from .design import Design
 
 Severity = Literal["error", "warning", "note"]
@@ -51,9 +52,7 @@ def matrix_rank(matrix: np.ndarray) -> int:
 
 
 def _fmt_coef(c: float) -> str:
-    if abs(c - round(c)) < 1e-6:
-        return str(int(round(abs(c))))
-    return f"{abs(c):.4g}"
+    return number_text(abs(c), whole_tol=1e-6)
 
 
 def dependent_columns(matrix: np.ndarray, names: list[str]) -> list[str]:

@@ -24,6 +24,7 @@ from typing import Any, Literal
 import numpy as np
 
 from ..errors import ModelError, SpecError
+from ..text import number_text
 from .coding import degree_name, orthogonal_polynomials
 from .design import Design
 
@@ -111,10 +112,7 @@ class Hypothesis:
 # --------------------------------------------------------------------------------------------------
 # Formatting
 # --------------------------------------------------------------------------------------------------
-def _num(x: float) -> str:
-    if abs(x - round(x)) < 1e-9:
-        return str(int(round(x)))
-    return f"{x:.4g}"
+_num = number_text
 
 
 def _combination(terms: Sequence[tuple[float, str]]) -> str:

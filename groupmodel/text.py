@@ -1,0 +1,23 @@
+"""Wording shared by every layer: numbers in messages and the research-use note.
+
+Kept at the bottom of the package (like :mod:`groupmodel.errors`) so that any module may import it.
+"""
+
+from __future__ import annotations
+
+import math
+
+#: Printed under results and written into every sidecar.
+DISCLAIMER = "groupmodel output supports research; it is not a clinical or diagnostic tool."
+
+
+def number_text(x: float, whole_tol: float = 1e-9) -> str:
+    """A number for a message: whole numbers without decimals, others to 4 significant digits.
+
+    ``whole_tol`` is how far from a whole number a value may be and still be written as one.
+    """
+    if not math.isfinite(x):
+        return str(x)
+    if abs(x - round(x)) < whole_tol:
+        return str(int(round(x)))
+    return f"{x:.4g}"

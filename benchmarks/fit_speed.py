@@ -206,7 +206,7 @@ def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
 
     import groupmodel.fit
     import groupmodel.images.core
-    from groupmodel.cli import _memory
+    from groupmodel.cli.parser import parse_memory
     from groupmodel.fit import fit_images, write_voxel_fit
 
     stages = {
@@ -223,7 +223,7 @@ def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
     with _AnonSampler() as anon, _StageTimer(stages) as timer:
         c0 = _cpu_seconds()
         t0 = time.perf_counter()
-        fit = fit_images(spec, memory_bytes=_memory(memory), progress=False)
+        fit = fit_images(spec, memory_bytes=parse_memory(memory), progress=False)
         t1 = time.perf_counter()
         written = write_voxel_fit(fit, out, force=True)
         t2 = time.perf_counter()

@@ -1,6 +1,6 @@
 """Fits of a model: to one table column (:func:`fit_table`) or at every voxel of its images (:func:`fit_images`).
 
-The public face of :mod:`groupmodel.analysis`.
+The public face of :mod:`groupmodel.analysis` (and of the writers in :mod:`groupmodel.outputs.fit_files`).
 """
 
 from .analysis.voxel_fit import (
@@ -11,9 +11,8 @@ from .analysis.voxel_fit import (
     fit_images,
     fit_table,
     results_table,
-    write_table_fit,
-    write_voxel_fit,
 )
+from .outputs.fit_files import write_table_fit, write_voxel_fit
 
 __all__ = ["F_MAPS", "T_MAPS", "TableFit", "VoxelFit", "fit_images", "fit_table", "results_table",
            "write_table_fit", "write_voxel_fit"]

@@ -13,12 +13,11 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .. import __version__
 from ..engine.ols import ChunkResult, fit_chunk, prepare
 from ..errors import InputError, ModelError
-from ..model.assembly import DISCLAIMER, Model, build
+from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
-from ..outputs.folder import OutputFolder
+from ..text import DISCLAIMER
 from .corrections import InferenceOptions, parametric_corrections, permutation_inference
 
 
@@ -90,78 +89,14 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
     return TableFit(model, outcome, result, results_table(model, result))
 
 
-def write_table_fit(fit: TableFit, out: Path | str, force: bool = False) -> Path:
-    """Write results.tsv, results.json and the design files atomically."""
-    folder = OutputFolder(out, force=force)
-    with folder as o:
-        fit.model.write_into(o)
-        o.write_tsv("results.tsv", fit.table)
-        o.write_json("results.json", _results_sidecar(fit))
-    return Path(out)
-
-
-def _results_sidecar(fit: TableFit) -> dict[str, Any]:
-    return {
-        "software": "groupmodel",
-        "software_version": __version__,
-        "note": DISCLAIMER,
-        "outcome": fit.outcome,
-        "n_observations": fit.model.design.n_observations,
-        "df_resid": fit.result.df_resid,
-        "residual_variance": float(fit.result.residual_variance[0]),
-        "columns": {
-            "estimate": "contrast estimate L b (t tests; n/a for F)",
-            "se": "standard error of the estimate (t tests)",
-            "statistic": "t or F",
-            "df1": "numerator degrees of freedom (1 for t: t squared is F(1, df2))",
-            "df2": "residual degrees of freedom",
-            "p": "p value for the hypothesis's tail",
-            "z": "z of equal p (signed like t; upper tail for F)",
-        },
-        "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
-                       for n, h in fit.model.hypotheses.items()},
-        "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
-    }
-
-
-
 # --------------------------------------------------------------------------------------------------
 # Voxelwise fit
 # --------------------------------------------------------------------------------------------------
 #: Share of --memory given to the image data matrix; the rest is for one chunk's work and the result maps.
 DATA_SHARE = 0.6
-#: Maps that come from permutations (their sidecars record method, J, exhaustive and seed).
-PERMUTATION_STATS = ("p_perm", "p_fwe", "tfce", "p_tfce_fwe", "p_cluster_fwe")
-CORRECTION_NOTES = {
-    "p_fdr": "Benjamini-Hochberg (1995) adjusted p over the voxels of the mask",
-    "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
-    "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
-    "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
-    "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
-    "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
-    "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
-}
-#: What the cluster tables hold.
-CLUSTER_KINDS = {
-    "voxel_fwe": "clusters of voxels with voxel-level FWE p < 0.05; p_fwe is the smallest in the cluster",
-    "tfce_fwe": "clusters of voxels with TFCE FWE p < 0.05; p_fwe is the smallest in the cluster",
-    "cluster_extent_fwe": "clusters at the cluster-forming threshold; p_fwe is the cluster-extent FWE p",
-}
-CLUSTER_COLUMNS = {
-    "cluster": "cluster number, largest first",
-    "sign": "+1 for high values, -1 for low values (two-sided t)",
-    "size": "voxels (or vertices)",
-    "peak_stat": "most extreme statistic in the cluster's direction",
-    "peak_index": "position of the peak in the mask's voxel order",
-    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
-    "com_x, com_y, com_z": "unweighted centre of mass in mm",
-    "p_fwe": "family-wise error p",
-}
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
-_INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
-            "mlog10p": "none", "residual_variance": "estimate"}
 
 
 @dataclass
@@ -412,115 +347,4 @@ def fit_images(
         data.close()
 
 
-def _map_name(grid: Any, stem: str) -> str:
-    return stem + (".gii" if grid.kind == "gifti" else ".nii.gz")
-
-
-def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
-    """The JSON sidecar of one map."""
-    out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
-    if name is not None:
-        h = fit.model.hypotheses[name]
-        out.update({
-            "test": h.test,
-            "statement": h.statement,
-            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
-            "df1": h.n_rows,
-            "df2": fit.df_resid,
-            "tail": h.tail,
-        })
-    else:
-        out.update({"df2": fit.df_resid})
-    out.update(extra)
-    out.update({"software": "groupmodel", "software_version": __version__, "note": DISCLAIMER})
-    return out
-
-
-def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
-                    extra_writer: Any = None) -> list[str]:
-    """Write every map with its sidecar, the mask, the design files and a summary, atomically."""
-    from ..images.core import write_map, write_mask
-
-    folder = OutputFolder(out, force=force)
-    written: list[str] = []
-    with folder as o:
-        written += fit.model.write_into(o)
-        for h in fit.model.hypotheses.values():
-            for stat, values in fit.maps[h.name].items():
-                fname = _map_name(fit.grid, f"{h.name}_{stat}")
-                intent = None
-                if stat == "t":
-                    intent = ("t test", (fit.df_resid,))
-                elif stat == "F":
-                    intent = ("f test", (h.n_rows, fit.df_resid))
-                elif stat in ("z", "p"):
-                    intent = (_INTENTS[stat], ())
-                write_map(o.file(fname), values, fit.mask, fit.grid, intent=intent,
-                          description=f"groupmodel {h.name} {stat}"[:79])
-                # the sidecar is named after the map's stem: hypothesis names may contain dots
-                extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
-                if stat in CORRECTION_NOTES:
-                    extra["correction"] = CORRECTION_NOTES[stat]
-                o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
-                written.append(fname)
-            for kind, table in fit.tables.get(h.name, {}).items():
-                tname = f"{h.name}_clusters_{kind}.tsv"
-                o.write_tsv(tname, table)
-                o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
-                    fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
-                    clusters=CLUSTER_KINDS[kind]))
-                written.append(tname)
-        fname = _map_name(fit.grid, "residual_variance")
-        write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")
-        o.write_json("residual_variance.json", map_sidecar(fit, None, "residual_variance"))
-        mname = _map_name(fit.grid, "mask")
-        write_mask(o.file(mname), fit.mask, fit.grid)
-        o.write_json("mask.json", {"statistic": "mask", **fit.mask_report, "software_version": __version__})
-        written += [fname, mname]
-        o.write_tsv("summary.tsv", fit.summary())
-        o.write_json("summary.json", {
-            "software": "groupmodel", "software_version": __version__, "note": DISCLAIMER,
-            "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
-            "df_resid": fit.df_resid, "mask": fit.mask_report,
-            "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
-            "warnings": fit.warnings, "inference": fit.inference,
-        })
-        written += ["summary.tsv", "summary.json"]
-        if extra_writer is not None:
-            written += extra_writer(o)
-    return written
-
-
-def run_voxelwise_cli(args: Any) -> int:
-    """``groupmodel fit`` without --outcome: fit, print a summary, write the maps."""
-    spec = load_spec(args.spec)
-    options = InferenceOptions.resolve(spec.inference, spec.base_dir, args)
-    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
-                     inference=options)
-    m = fit.model
-    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
-          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
-          f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
-    if m.sample.exclusions:
-        print(f"excluded {len(m.sample.exclusions)}:")
-        for e in m.sample.exclusions:
-            print(f"  {e.participant_id} (row {e.row}): {e.reason}")
-    for w in fit.warnings:
-        print(f"  warning: {w}")
-    for h in m.hypotheses.values():
-        print(f"  {h.name} [{h.test}]: {h.statement}")
-    if options.active:
-        rec = next(iter(fit.records.values()), {})
-        print(f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
-              f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "
-              f"Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; cluster threshold "
-              f"{options.cluster_threshold if options.cluster_threshold is not None else 'none'}")
-    print(fit.summary().to_string(index=False))
-    write_voxel_fit(fit, args.out, force=args.force)
-    print(f"wrote {args.out}")
-    print(DISCLAIMER)
-    return 0
-
-
-__all__ = ["TableFit", "VoxelFit", "fit_table", "fit_images", "write_table_fit", "write_voxel_fit",
-           "results_table", "InputError"]
+__all__ = ["TableFit", "VoxelFit", "fit_table", "fit_images", "results_table", "InputError"]

@@ -3,6 +3,7 @@
 No image arrays and no files written here: :mod:`groupmodel.outputs` writes what a model holds.
 """
 
-from .assembly import DISCLAIMER, Model, build
+from ..text import DISCLAIMER
+from .assembly import Model, build
 
 __all__ = ["DISCLAIMER", "Model", "build"]

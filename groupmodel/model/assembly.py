@@ -13,19 +13,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .. import __version__
 from ..errors import ModelError, SpecError
-from ..outputs.folder import OutputFolder
-from ..text import DISCLAIMER
-from .checks import (
-    Finding,
-    cell_counts_by_term,
-    check_design,
-    condition_number,
-    has_constant_column,
-    matrix_rank,
-    variance_inflation,
-)
+from .checks import Finding, check_design
 from .design import Design, build_design
 from .hypotheses import Hypothesis, build_hypotheses
 from .spec import ModelSpec, load_spec
@@ -94,44 +83,10 @@ class Model:
 
     # ----- sidecars ------------------------------------------------------------------------------
     def design_sidecar(self) -> dict[str, Any]:
-        d = self.design
-        s = np.linalg.svd(d.matrix, compute_uv=False)
-        return {
-            "software": "groupmodel",
-            "software_version": __version__,
-            "note": DISCLAIMER,
-            "spec": str(self.spec.path),
-            "participants": str(self.sample.source),
-            "n_observations": d.n_observations,
-            "columns": d.column_sidecar(),
-            "factors": {f: c.as_dict() for f, c in d.factors.items()},
-            "covariates": {c: v.as_dict() for c, v in d.covariates.items()},
-            "intercept": d.intercept,
-            "terms": [":".join(t) if t else "intercept" for t in d.terms],
-            "rank": matrix_rank(d.matrix),
-            "rank_tolerance": "largest singular value x max(n, p) x machine epsilon",
-            "singular_values": s.tolist(),
-            "condition_number": condition_number(d.matrix),
-            "condition_number_scaling": "columns scaled to unit length",
-            "variance_inflation": (variance_inflation(d.matrix, d.column_names)
-                                   if has_constant_column(d.matrix) else None),
-            "cell_counts": cell_counts_by_term(d),
-            "cells": [
-                {"cell": dict(zip(d.factors, c, strict=True)), "count": int(k), "design_row": r.tolist()}
-                for c, k, r in zip(d.cells, d.cell_counts, d.cell_rows(), strict=True)
-            ],
-            "excluded": [e.as_dict() for e in self.sample.exclusions],
-            "findings": [f.as_dict() for f in self.findings],
-        }
+        """What design.json holds (written by :mod:`groupmodel.outputs.design_files`)."""
+        from ..outputs.design_files import design_sidecar
 
-    def contrasts_sidecar(self) -> dict[str, Any]:
-        return {
-            "software": "groupmodel",
-            "software_version": __version__,
-            "note": DISCLAIMER,
-            "columns": self.design.column_names,
-            "hypotheses": {name: h.as_dict(self.design) for name, h in self.hypotheses.items()},
-        }
+        return design_sidecar(self)
 
     # ----- engine view ---------------------------------------------------------------------------
     def tests(self) -> list[Any]:
@@ -141,30 +96,11 @@ class Model:
         return [Test(h.name, h.weights, h.test, h.tail) for h in self.hypotheses.values()]
 
     # ----- files ---------------------------------------------------------------------------------
-    def write_into(self, out: OutputFolder, pictures: bool = True) -> list[str]:
-        """Write design and contrast files into an open output folder; returns the file names."""
-        out.write_tsv("design.tsv", self.design_frame())
-        out.write_json("design.json", self.design_sidecar())
-        out.write_tsv("contrasts.tsv", self.contrasts_frame())
-        out.write_json("contrasts.json", self.contrasts_sidecar())
-        names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
-        if pictures:
-            from ..outputs.figures import plot_contrasts, plot_design
-
-            plot_design(out.file("design.png"), self.design.matrix, self.design.column_names,
-                        self.design.participant_ids)
-            rows, labels, tests = self.contrast_rows()
-            plot_contrasts(out.file("contrasts.png"), rows, labels, self.design.column_names, tests)
-            names += ["design.png", "contrasts.png"]
-        return names
-
     def write(self, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
         """Write the design files atomically into ``out``; refuses a model with errors (ModelError)."""
-        folder = OutputFolder(out, force=force)
-        self.raise_for_errors()
-        with folder as o:
-            self.write_into(o, pictures=pictures)
-        return Path(out)
+        from ..outputs.design_files import write_model_folder
+
+        return write_model_folder(self, out, force=force, pictures=pictures)
 
 
 def build(

@@ -1,0 +1,102 @@
+"""The sub-commands of ``groupmodel``: each calls the Python API, prints, and returns an exit code."""
+
+from __future__ import annotations
+
+import argparse
+
+from ..errors import OutputError
+from ..outputs.folder import OutputFolder
+from .printing import print_disclaimer, print_model_report, print_voxel_fit
+
+
+def cmd_build(args: argparse.Namespace) -> int:
+    """``groupmodel build``: build the model, report it, write the design files (none when it has errors)."""
+    from ..model.assembly import build
+    from ..outputs.design_files import write_model
+
+    folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
+    model = build(args.spec)
+    print_model_report(model)
+    if model.errors:
+        print("nothing written: the model has errors (see above)")
+        model.raise_for_errors()  # the same one line on stderr and exit code 1 as every other error
+    with folder as out:
+        names = write_model(model, out, pictures=not args.no_pictures)
+    print(f"wrote {args.out}: {', '.join(names)}")
+    print_disclaimer()
+    return 0
+
+
+def cmd_fit(args: argparse.Namespace) -> int:
+    """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
+    OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
+    if args.outcome:
+        return _fit_table(args)
+    return _fit_images(args)
+
+
+def _fit_table(args: argparse.Namespace) -> int:
+    from ..analysis.voxel_fit import fit_table
+    from ..outputs.fit_files import write_table_fit
+
+    fit = fit_table(args.spec, args.outcome)
+    print_model_report(fit.model)
+    print()
+    print(fit.format())
+    write_table_fit(fit, args.out, force=args.force)
+    print(f"wrote {args.out}/results.tsv")
+    return 0
+
+
+def _fit_images(args: argparse.Namespace) -> int:
+    """Fit, print a summary, write the maps."""
+    from ..analysis.corrections import InferenceOptions
+    from ..analysis.voxel_fit import fit_images
+    from ..model.spec import load_spec
+    from ..outputs.fit_files import write_voxel_fit
+
+    spec = load_spec(args.spec)
+    options = InferenceOptions.resolve(spec.inference, spec.base_dir, args)
+    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                     inference=options)
+    print_voxel_fit(fit, options)
+    write_voxel_fit(fit, args.out, force=args.force)
+    print(f"wrote {args.out}")
+    print_disclaimer()
+    return 0
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    """``groupmodel check``: print the report, write --json, return 0 (no error finding) or 1."""
+    from ..audit import audit
+    from ..outputs.folder import dumps_json
+
+    report = audit(
+        design=args.design,
+        contrasts=args.contrasts,
+        participants=args.participants,
+        factors=_split_names(args.factors),
+        covariates=_split_names(args.covariates),
+        spec=args.spec,
+        images=args.images,
+    )
+    print(report.format())
+    if args.json is not None:
+        try:
+            args.json.parent.mkdir(parents=True, exist_ok=True)
+            args.json.write_text(dumps_json(report.as_dict()), encoding="utf-8")
+        except OSError as exc:
+            raise OutputError(f"--json {args.json}: cannot be written ({exc.strerror}); choose another path") from None
+        print(f"wrote {args.json}")
+    return report.exit_code
+
+
+def _split_names(text: str | None) -> list[str] | None:
+    """'training, chronotype' -> ['training', 'chronotype'] (None when not given)."""
+    if text is None:
+        return None
+    return [t.strip() for t in text.split(",") if t.strip()]
+
+
+#: Sub-command name -> its function.
+COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check}

@@ -1,0 +1,61 @@
+"""What ``groupmodel`` prints on the terminal: the model report, the fit summary, the closing lines."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from ..text import DISCLAIMER
+
+
+def print_model_report(model: Any) -> None:
+    """The model of ``build`` and of a table fit: size, columns, exclusions, findings, hypotheses."""
+    d = model.design
+    print(f"{model.spec.name}: {d.n_observations} observations, {d.n_columns} columns "
+          f"({', '.join(d.column_names)})")
+    print_exclusions(model)
+    if model.findings:
+        print("findings:")
+        for finding in model.findings:
+            print(f"  {finding}")
+    if model.hypotheses:
+        print("hypotheses:")
+        for h in model.hypotheses.values():
+            rows = f"{h.n_rows} rows" if h.n_rows > 1 else "1 row"
+            print(f"  {h.name} [{h.test}, {rows}]: {h.statement}")
+
+
+def print_exclusions(model: Any) -> None:
+    """Each participant left out, with its row and reason (nothing when none is)."""
+    if model.sample.exclusions:
+        print(f"excluded {len(model.sample.exclusions)}:")
+        for e in model.sample.exclusions:
+            print(f"  {e.participant_id} (row {e.row}): {e.reason}")
+
+
+def print_voxel_fit(fit: Any, options: Any) -> None:
+    """A voxelwise fit before its files are written: sample and mask, warnings, hypotheses, inference, summary."""
+    m = fit.model
+    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
+          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
+          f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
+    print_exclusions(m)
+    for w in fit.warnings:
+        print(f"  warning: {w}")
+    for h in m.hypotheses.values():
+        print(f"  {h.name} [{h.test}]: {h.statement}")
+    if options.active:
+        print(_inference_line(fit, options))
+    print(fit.summary().to_string(index=False))
+
+
+def _inference_line(fit: Any, options: Any) -> str:
+    rec = next(iter(fit.records.values()), {})
+    return (f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
+            f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "
+            f"Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; cluster threshold "
+            f"{options.cluster_threshold if options.cluster_threshold is not None else 'none'}")
+
+
+def print_disclaimer() -> None:
+    """The research-use note, last line of a command that wrote results."""
+    print(DISCLAIMER)

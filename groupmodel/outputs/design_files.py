@@ -1,0 +1,85 @@
+"""The design and contrast files of a model: design.tsv/json, contrasts.tsv/json and their pictures.
+
+``groupmodel build`` writes these alone; every fit writes them beside its results.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from ..model.checks import cell_counts_by_term, condition_number, has_constant_column, matrix_rank, variance_inflation
+from .folder import OutputFolder
+from .provenance import provenance
+
+if TYPE_CHECKING:
+    from ..model.assembly import Model
+
+
+def design_sidecar(model: Model) -> dict[str, Any]:
+    """design.json: the spec, the columns and their coding, rank and conditioning, cells and findings."""
+    d = model.design
+    s = np.linalg.svd(d.matrix, compute_uv=False)
+    return {
+        **provenance(),
+        "spec": str(model.spec.path),
+        "participants": str(model.sample.source),
+        "n_observations": d.n_observations,
+        "columns": d.column_sidecar(),
+        "factors": {f: c.as_dict() for f, c in d.factors.items()},
+        "covariates": {c: v.as_dict() for c, v in d.covariates.items()},
+        "intercept": d.intercept,
+        "terms": [":".join(t) if t else "intercept" for t in d.terms],
+        "rank": matrix_rank(d.matrix),
+        "rank_tolerance": "largest singular value x max(n, p) x machine epsilon",
+        "singular_values": s.tolist(),
+        "condition_number": condition_number(d.matrix),
+        "condition_number_scaling": "columns scaled to unit length",
+        "variance_inflation": (variance_inflation(d.matrix, d.column_names)
+                               if has_constant_column(d.matrix) else None),
+        "cell_counts": cell_counts_by_term(d),
+        "cells": [
+            {"cell": dict(zip(d.factors, c, strict=True)), "count": int(k), "design_row": r.tolist()}
+            for c, k, r in zip(d.cells, d.cell_counts, d.cell_rows(), strict=True)
+        ],
+        "excluded": [e.as_dict() for e in model.sample.exclusions],
+        "findings": [f.as_dict() for f in model.findings],
+    }
+
+
+def contrasts_sidecar(model: Model) -> dict[str, Any]:
+    """contrasts.json: the design columns and every hypothesis with its statement and weights."""
+    return {
+        **provenance(),
+        "columns": model.design.column_names,
+        "hypotheses": {name: h.as_dict(model.design) for name, h in model.hypotheses.items()},
+    }
+
+
+def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[str]:
+    """Write design and contrast files into an open output folder; returns the file names."""
+    out.write_tsv("design.tsv", model.design_frame())
+    out.write_json("design.json", design_sidecar(model))
+    out.write_tsv("contrasts.tsv", model.contrasts_frame())
+    out.write_json("contrasts.json", contrasts_sidecar(model))
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+    if pictures:
+        from .figures import plot_contrasts, plot_design
+
+        plot_design(out.file("design.png"), model.design.matrix, model.design.column_names,
+                    model.design.participant_ids)
+        rows, labels, tests = model.contrast_rows()
+        plot_contrasts(out.file("contrasts.png"), rows, labels, model.design.column_names, tests)
+        names += ["design.png", "contrasts.png"]
+    return names
+
+
+def write_model_folder(model: Model, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
+    """Write the design files atomically into ``out``; refuses a model with errors (ModelError)."""
+    folder = OutputFolder(out, force=force)
+    model.raise_for_errors()
+    with folder as o:
+        write_model(model, o, pictures=pictures)
+    return Path(out)

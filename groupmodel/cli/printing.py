@@ -2,12 +2,17 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING
 
 from ..text import DISCLAIMER
 
+if TYPE_CHECKING:
+    from ..analysis.corrections import InferenceOptions
+    from ..analysis.voxel_fit import VoxelFit
+    from ..model.assembly import Model
 
-def print_model_report(model: Any) -> None:
+
+def print_model_report(model: Model) -> None:
     """The model of ``build`` and of a table fit: size, columns, exclusions, findings, hypotheses."""
     d = model.design
     print(f"{model.spec.name}: {d.n_observations} observations, {d.n_columns} columns "
@@ -24,7 +29,7 @@ def print_model_report(model: Any) -> None:
             print(f"  {h.name} [{h.test}, {rows}]: {h.statement}")
 
 
-def print_exclusions(model: Any) -> None:
+def print_exclusions(model: Model) -> None:
     """Each participant left out, with its row and reason (nothing when none is)."""
     if model.sample.exclusions:
         print(f"excluded {len(model.sample.exclusions)}:")
@@ -32,7 +37,7 @@ def print_exclusions(model: Any) -> None:
             print(f"  {e.participant_id} (row {e.row}): {e.reason}")
 
 
-def print_voxel_fit(fit: Any, options: Any) -> None:
+def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
     """A voxelwise fit before its files are written: sample and mask, warnings, hypotheses, inference, summary."""
     m = fit.model
     print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
@@ -48,7 +53,7 @@ def print_voxel_fit(fit: Any, options: Any) -> None:
     print(fit.summary().to_string(index=False))
 
 
-def _inference_line(fit: Any, options: Any) -> str:
+def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
     rec = next(iter(fit.records.values()), {})
     return (f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
             f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "

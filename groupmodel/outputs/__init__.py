@@ -1,4 +1,10 @@
-"""Everything groupmodel writes: atomic output folders, TSV and JSON files, pictures."""
+"""Everything groupmodel writes: atomic output folders, TSV and JSON files, pictures.
+
+- :mod:`.folder`: the atomic output folder, JSON and TSV text;
+- :mod:`.provenance`: the header (software, version, research-use note) every sidecar carries;
+- :mod:`.design_files`: design.tsv/json, contrasts.tsv/json and their pictures (:mod:`.figures`);
+- :mod:`.fit_files`: results of a table fit; maps, sidecars, cluster tables and summary of a voxel fit.
+"""
 
 from .folder import NA, OutputFolder, dumps_json, format_tsv
 

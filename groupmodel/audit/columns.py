@@ -14,14 +14,15 @@ each design column is identified as one of
 * "unexplained".
 
 The search is exact up to the precision typed in the file (see
-:meth:`groupmodel.audit_read.MatrixFile.tolerance`): a column is a function of a
+:meth:`groupmodel.audit.read.MatrixFile.tolerance`): a column is a function of a
 set of factors when it is constant within their cells, and a covariate column
 when ``x = alpha(cell) + beta(cell) * c`` fits with no residual.  The smallest
 set of factors that explains a column is taken.
 
 From the identification every cell gets its design row (covariates held at
 their mean over the design rows) and every covariate its slope row, which is what
-:mod:`groupmodel.hypotheses` needs to state contrasts over cell means.
+:mod:`groupmodel.hypotheses` needs to state contrasts over cell means (see
+:mod:`groupmodel.audit.cells`; the words are in :mod:`groupmodel.audit.words`).
 """
 
 from __future__ import annotations

@@ -24,6 +24,7 @@ import pandas as pd
 from ..errors import InputError, TableError
 from ..model.table import Sample, read_table
 from .read import AuditFinding, MatrixFile, read_matrix
+from .words import member_brief
 
 if TYPE_CHECKING:
     from ..model.spec import ModelSpec
@@ -76,8 +77,6 @@ class AuditContext:
 
     def brief(self, j: int) -> str:
         """A column's label with a few words on what it is (for lists of dependent columns and VIFs)."""
-        from .contrasts import member_brief
-
         label = self.files.labels[j]
         if not self.roles or self.files.x.names:
             return label

@@ -311,16 +311,6 @@ def dependents_in_words(x: np.ndarray, names: list[str]) -> list[str]:
     return [d.replace("column column ", "column ") for d in dependent_columns(x, names)]
 
 
-def member_brief(m: Any) -> str:
-    if m.kind == "indicator":
-        return f"{m.factor}={m.level}"
-    if m.kind == "effect":
-        return f"{m.factor} {m.level} vs {m.reference}"
-    if m.kind == "polynomial":
-        return f"{m.factor} {('linear', 'quadratic', 'cubic')[min(m.degree or 1, 3) - 1]}"
-    return m.factor
-
-
 def same_rows(a: np.ndarray, b: np.ndarray, tol: float) -> bool:
     """Do the rows of ``a`` and ``b`` span the same space (relative residuals at most ``tol``)?"""
     a, b = np.atleast_2d(a), np.atleast_2d(b)

@@ -87,7 +87,7 @@ def identify_columns(req: Request, files: Files, alignment: Alignment) -> Identi
         table = table.restrict(used_f, used_c)
         view = table.view(align, invalid, restrict_levels=True)
         roles = _roles(files, view)
-    has_intercept = any(r.kind in ("intercept", "constant") for r in roles)
+    has_intercept = has_intercept_of(roles)
     summary = summarise_factors(roles, view, has_intercept)
     means = {c: float(view.covariates[c][view.known].mean()) for c in used_c}
     sds = {c: float(view.covariates[c][view.known].std(ddof=1)) for c in used_c}

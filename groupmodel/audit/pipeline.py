@@ -18,6 +18,12 @@ The statements reuse :mod:`groupmodel.model.hypotheses`: the audit builds a
 :class:`HandDesign` -- a :class:`~groupmodel.design.Design` whose matrix is the
 hand matrix and whose cell rows come from the column identification -- so the
 same words describe generated and hand-written contrasts.
+
+How it is built: :mod:`groupmodel.audit.context` reads the inputs into a frozen
+:class:`~groupmodel.audit.context.AuditContext`, and :func:`build_context` adds the
+later stages one by one (rows aligned, columns identified, contrasts assessed, the
+spec compared), each a function returning a new frozen object.  The report is then
+the findings of :data:`PIPELINE`, one function per section, in report order.
 """
 
 from __future__ import annotations

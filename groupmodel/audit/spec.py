@@ -36,6 +36,10 @@ class _Pair:
     same: bool
     model: Any
 
+    @property
+    def projections(self) -> tuple[np.ndarray, np.ndarray]:
+        return np.linalg.pinv(self.xh), np.linalg.pinv(self.xs)
+
 
 def _spec(severity: str, code: str, message: str) -> AuditFinding:
     return AuditFinding(severity, code, message, "spec")  # type: ignore[arg-type]
@@ -65,8 +69,9 @@ def compare_with_spec(ctx: AuditContext) -> SpecComparison:
     pair = _Pair(xh, xs, rh == rs == both, model)
     found = [_column_space(ctx, pair, rh)]
     matches = []
+    projections = pair.projections
     for con in reports:
-        m, texts = _contrast_vs_spec(ctx, con, pair)
+        m, texts = _contrast_vs_spec(ctx, con, pair, projections)
         matches.append(m)
         found.extend(texts)
     return SpecComparison(tuple(found), tuple(matches))
@@ -94,16 +99,18 @@ def _column_space(ctx: AuditContext, pair: _Pair, rank: int) -> AuditFinding:
                  "columns if the models are meant to be the same")
 
 
-def _contrast_vs_spec(ctx: AuditContext, con: ContrastReport, pair: _Pair
-                      ) -> tuple[tuple[str, ...], list[AuditFinding]]:
-    """The spec's hypotheses one hand contrast matches, and what to say about it."""
+def _contrast_vs_spec(ctx: AuditContext, con: ContrastReport, pair: _Pair,
+                      projections: tuple[np.ndarray, np.ndarray]) -> tuple[tuple[str, ...], list[AuditFinding]]:
+    """The spec's hypotheses one hand contrast matches, and what to say about it.
+
+    ``projections`` are the pseudo-inverses of the hand and the spec's design rows.
+    """
     if not con.estimable:
         return (), []
     assert ctx.request.spec is not None
     sname = ctx.request.spec.name
     hyps = pair.model.hypotheses
-    proj_h = np.linalg.pinv(pair.xh)
-    proj_s = np.linalg.pinv(pair.xs)
+    proj_h, proj_s = projections
     matches = []
     for name, h in hyps.items():
         if not h.estimable:

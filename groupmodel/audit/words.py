@@ -4,6 +4,8 @@ description of every column (see :mod:`groupmodel.audit.columns` for the identif
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..model.coding import degree_name
@@ -217,3 +219,13 @@ def _poly_typed(m: Member) -> str:
     if np.all(np.abs(vals - np.round(vals)) < 1e-6) and abs(abs(m.poly_scale) - 1.0) > 1e-6:
         return " = " + ", ".join(_num(v) for v in vals)
     return ""
+
+
+def member_brief(m: Any) -> str:
+    if m.kind == "indicator":
+        return f"{m.factor}={m.level}"
+    if m.kind == "effect":
+        return f"{m.factor} {m.level} vs {m.reference}"
+    if m.kind == "polynomial":
+        return f"{m.factor} {('linear', 'quadratic', 'cubic')[min(m.degree or 1, 3) - 1]}"
+    return m.factor

@@ -166,6 +166,41 @@ def read_matrix(path: Path, kind: Literal["design", "contrasts"]) -> MatrixFile:
     TableError
         The file is missing, is a folder, is not UTF-8 text, or has no data rows.
     """
+    option = "--design" if kind == "design" else "--contrasts"
+    numbered = _data_lines(path, kind)
+    body = [ln for _, ln in numbered]
+    sep = "\t" if any("\t" in ln for ln in body) else ("," if any("," in ln for ln in body) else " ")
+    rows = [(n, _split(ln, sep)) for n, ln in numbered]
+
+    first = rows[0][1]
+    text_fields = sum(not _is_number(f) for f in first)
+    has_header = text_fields * 2 > len(first)
+    header = [h.strip() for h in first] if has_header else None
+    data = rows[1:] if has_header else rows
+    if not data:
+        raise TableError(
+            f"{option} {path}: expected rows of numbers under the header, found none; add the matrix rows"
+        )
+    ids, labels, skip = _text_columns(header, data, kind)
+    width = len(header) if header is not None else max(len(r) for _, r in data)
+    keep = [j for j in range(width) if j not in skip]
+    names = [header[j] for j in keep] if header is not None else None
+    values, digits, problems, ragged = _entries(path, data, (width, keep, names), header is not None)
+    return MatrixFile(
+        path=path,
+        values=values,
+        names=names,
+        ids=ids,
+        labels=labels,
+        lines=[n for n, _ in data],
+        digits=digits,
+        problems=problems,
+        ragged=ragged,
+    )
+
+
+def _data_lines(path: Path, kind: Literal["design", "contrasts"]) -> list[tuple[int, str]]:
+    """(1-based line number, text) of every line that is neither blank nor a ``#`` comment."""
     what = "design file" if kind == "design" else "contrast file"
     option = "--design" if kind == "design" else "--contrasts"
     if not path.exists():
@@ -182,21 +217,12 @@ def read_matrix(path: Path, kind: Literal["design", "contrasts"]) -> MatrixFile:
             f"{option} {path}: expected rows of numbers, found an empty file (or only # comments); "
             "give the matrix, one row per line"
         )
-    body = [ln for _, ln in numbered]
-    sep = "\t" if any("\t" in ln for ln in body) else ("," if any("," in ln for ln in body) else " ")
-    rows = [(n, _split(ln, sep)) for n, ln in numbered]
+    return numbered
 
-    first = rows[0][1]
-    text_fields = sum(not _is_number(f) for f in first)
-    has_header = text_fields * 2 > len(first)
-    header = [h.strip() for h in first] if has_header else None
-    data = rows[1:] if has_header else rows
-    if not data:
-        raise TableError(
-            f"{option} {path}: expected rows of numbers under the header, found none; add the matrix rows"
-        )
 
-    # Which fields are text (ids, names) rather than numbers.
+def _text_columns(header: list[str] | None, data: list[tuple[int, list[str]]], kind: Literal["design", "contrasts"]
+                  ) -> tuple[list[str] | None, list[str] | None, set[int]]:
+    """Which fields are text (ids, names) rather than numbers: (ids, labels, indices of the fields to skip)."""
     ids: list[str] | None = None
     labels: list[str] | None = None
     skip: set[int] = set()
@@ -217,15 +243,21 @@ def read_matrix(path: Path, kind: Literal["design", "contrasts"]) -> MatrixFile:
         else:
             labels = [r[0] for _, r in data]
         skip.add(0)
+    return ids, labels, skip
 
-    width = len(header) if header is not None else max(len(r) for _, r in data)
-    keep = [j for j in range(width) if j not in skip]
-    names = [header[j] for j in keep] if header is not None else None
+
+def _entries(path: Path, data: list[tuple[int, list[str]]], layout: tuple[int, list[int], list[str] | None],
+             has_header: bool) -> tuple[np.ndarray, np.ndarray, list[AuditFinding], bool]:
+    """The numeric entries (NaN where not a number), their typed decimals, the problems, and raggedness.
+
+    ``layout`` is the row width, the fields kept as numbers and their header names.
+    """
+    width, keep, names = layout
     problems: list[AuditFinding] = []
     ragged = False
     values = np.full((len(data), len(keep)), np.nan)
     digits = np.zeros((len(data), len(keep)), dtype=int)
-    expected = "as the header has" if header is not None else "as the first row has"
+    expected = "as the header has" if has_header else "as the first row has"
     for i, (line, fields) in enumerate(data):
         if len(fields) != width:
             ragged = True
@@ -238,38 +270,30 @@ def read_matrix(path: Path, kind: Literal["design", "contrasts"]) -> MatrixFile:
             if j >= len(fields):
                 continue
             tok = fields[j]
-            colname = f" ({names[jj]})" if names else ""
             if _is_number(tok):
                 values[i, jj] = float(tok)
                 digits[i, jj] = _decimals(tok)
                 continue
-            try:
-                x = float(tok)
-            except ValueError:
-                x = None
-            if x is not None and not math.isfinite(x):
-                problems.append(AuditFinding(
-                    "error", "not_finite",
-                    f"{path.name} line {line} (row {i + 1}), column {jj + 1}{colname}: expected a finite number, "
-                    f"found {tok!r}; replace it with the value it stands for",
-                ))
-            else:
-                shown = repr(tok) if tok else "an empty entry"
-                problems.append(AuditFinding(
-                    "error", "not_numeric",
-                    f"{path.name} line {line} (row {i + 1}), column {jj + 1}{colname}: expected a number, "
-                    f"found {shown}; type the number (0, 1, -1, 0.5, ...)",
-                ))
-    return MatrixFile(
-        path=path,
-        values=values,
-        names=names,
-        ids=ids,
-        labels=labels,
-        lines=[n for n, _ in data],
-        digits=digits,
-        problems=problems,
-        ragged=ragged,
+            where = f"{path.name} line {line} (row {i + 1}), column {jj + 1}{f' ({names[jj]})' if names else ''}"
+            problems.append(_entry_problem(tok, where))
+    return values, digits, problems, ragged
+
+
+def _entry_problem(tok: str, where: str) -> AuditFinding:
+    """An entry that is not a number, or a number that is not finite."""
+    try:
+        x = float(tok)
+    except ValueError:
+        x = None
+    if x is not None and not math.isfinite(x):
+        return AuditFinding(
+            "error", "not_finite",
+            f"{where}: expected a finite number, found {tok!r}; replace it with the value it stands for",
+        )
+    shown = repr(tok) if tok else "an empty entry"
+    return AuditFinding(
+        "error", "not_numeric",
+        f"{where}: expected a number, found {shown}; type the number (0, 1, -1, 0.5, ...)",
     )
 
 

@@ -249,7 +249,7 @@ def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, l
         Checked, in design-row order.
     dropped : list of (participant_id, reason)
     """
-    from ..images.core import check_images, resolve_images
+    from ..images import check_images, resolve_images
     from ..model.table import read_table
 
     spec = model.spec
@@ -306,7 +306,7 @@ def fit_images(
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
     """
-    from ..images.core import chunk_size_for, load_masked
+    from ..images import chunk_size_for, load_masked
 
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
@@ -439,7 +439,7 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                     extra_writer: Any = None) -> list[str]:
     """Write every map with its sidecar, the mask, the design files and a summary, atomically."""
-    from ..images.core import write_map, write_mask
+    from ..images import write_map, write_mask
 
     folder = OutputFolder(out, force=force)
     written: list[str] = []

@@ -137,13 +137,11 @@ def load_masked(
     spill_dir, buf = _allocate(n * n_cand, storage_dtype(grid), memory_bytes, workdir)
     try:
         tally = _read_all(source, buf, cand, spill_dir is not None, progress)
-        keep = tally.keep()
         exclusions = tally.exclusions()
         warnings = tally.warnings
-        del tally  # the running masks are not needed any more
-        _require_voxels(keep, exclusions, mask, source.origin)
-        full_mask, keep_idx = _layout(keep, cand)
-        del keep, cand
+        full_mask, keep_idx = _layout(tally, cand)  # frees the running masks as soon as it can
+        del tally, cand
+        _require_voxels(full_mask, exclusions, mask, source.origin)
         data, spill_dir = _compact(buf, n, n_cand, keep_idx, memory_bytes, spill_dir)
         del buf
     except BaseException:
@@ -227,9 +225,12 @@ class _Tally:
             self.warnings.append(f"{_who(ref)} is zero everywhere{inside}: {ref.path}")
         self.nonzero_any |= nonzero
 
-    def keep(self) -> np.ndarray:
-        """Candidates finite in every image and nonzero in some."""
-        return self.finite_all & self.nonzero_any
+    def take_keep(self) -> np.ndarray:
+        """Candidates finite in every image and nonzero in some.  Call last: the running masks are dropped
+        here (freed), so that the layout of the mask is built without them."""
+        keep = self.finite_all & self.nonzero_any
+        del self.finite_all, self.finite_any, self.nonzero_any, self.finite, self.nonzero
+        return keep
 
     def exclusions(self) -> Exclusions:
         return Exclusions(
@@ -278,9 +279,9 @@ def _store(row: np.ndarray, arr: np.ndarray, cand: _Candidates) -> None:
             np.copyto(row, arr.reshape(-1, order="F")[cand.cand_f], casting="unsafe")
 
 
-def _require_voxels(keep: np.ndarray, exclusions: Exclusions, mask: Path | str | None, origin: str) -> None:
-    """ImageError when no candidate is finite in every image and nonzero in some."""
-    if int(np.count_nonzero(keep)) == 0:
+def _require_voxels(full_mask: np.ndarray, exclusions: Exclusions, mask: Path | str | None, origin: str) -> None:
+    """ImageError when no candidate is finite in every image and nonzero in some (the mask is empty)."""
+    if not full_mask.any():
         n_nonfinite = exclusions.n_nonfinite_excluded + exclusions.n_nonfinite_everywhere
         raise ImageError(
             f"expected some voxels finite in every image and nonzero in some; found none "
@@ -290,19 +291,26 @@ def _require_voxels(keep: np.ndarray, exclusions: Exclusions, mask: Path | str |
         )
 
 
-def _layout(keep: np.ndarray, cand: _Candidates) -> tuple[np.ndarray, np.ndarray | None]:
+def _layout(tally: _Tally, cand: _Candidates) -> tuple[np.ndarray, np.ndarray | None]:
     """The analysis mask on the grid, and the gather that takes each row's kept candidates to the mask's
-    C order (None when the row layout already is the final one)."""
+    C order (None when the row layout already is the final one).
+
+    The kept candidates are taken out of ``tally`` here, and freed as soon as they are used: this is the
+    peak of the work after the reading (index arrays of the whole grid).
+    """
     shape = cand.grid.shape
     n_grid = cand.grid.n_voxels
+    keep = tally.take_keep()
     if cand.cand_f is None:
         # keep is in Fortran order; the columns go in C order of the mask
         full_mask = np.ascontiguousarray(keep.reshape(shape[::-1]).T)
+        del keep
         gather = np.arange(n_grid, dtype=np.int64).reshape(shape[::-1]).T[full_mask]
     else:
         full_mask = np.zeros(n_grid, dtype=bool)
         full_mask[np.flatnonzero(cand.user_mask)[keep]] = True
         full_mask = full_mask.reshape(shape)
         gather = np.flatnonzero(keep)
+        del keep
     # the row layout already is the final one (surfaces; all candidates kept in C order)
     return full_mask, None if gather.size == cand.n and np.array_equal(gather, np.arange(cand.n)) else gather

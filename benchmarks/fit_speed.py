@@ -205,7 +205,7 @@ def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
     import groupmodel.tails
 
     import groupmodel.fit
-    import groupmodel.images.core
+    import groupmodel.images
     from groupmodel.cli.parser import parse_memory
     from groupmodel.fit import fit_images, write_voxel_fit
 

@@ -184,7 +184,7 @@ def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, l
         Checked, in design-row order.
     dropped : list of (participant_id, reason)
     """
-    from ..images.core import check_images, resolve_images
+    from ..images import check_images, resolve_images
     from ..model.table import read_table
 
     spec = model.spec
@@ -241,7 +241,7 @@ def fit_images(
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
     """
-    from ..images.core import chunk_size_for, load_masked
+    from ..images import chunk_size_for, load_masked
 
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)

@@ -1,5 +1,5 @@
 """``groupmodel check``: an audit of design and contrast files written by hand."""
 
-from .pipeline import AuditReport, audit, run_check_cli
+from .pipeline import AuditReport, audit
 
-__all__ = ["AuditReport", "audit", "run_check_cli"]
+__all__ = ["AuditReport", "audit"]

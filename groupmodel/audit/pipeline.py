@@ -28,12 +28,10 @@ the findings of :data:`PIPELINE`, one function per section, in report order.
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from ..errors import OutputError
 from .align import align_rows
 from .cells import HandDesign
 from .context import AuditContext, check_shape, make_request, read_inputs
@@ -54,7 +52,7 @@ from .sections import (
 )
 from .spec import compare_with_spec
 
-__all__ = ["AuditReport", "ContrastReport", "HandDesign", "SECTIONS", "SMD_WARN", "audit", "run_check_cli"]
+__all__ = ["AuditReport", "ContrastReport", "HandDesign", "SECTIONS", "SMD_WARN", "audit"]
 
 #: The report's sections, in report order: each a function of the context returning its findings.
 PIPELINE: tuple[Callable[[AuditContext], list[AuditFinding]], ...] = (
@@ -148,37 +146,3 @@ def _report(ctx: AuditContext, findings: list[AuditFinding]) -> AuditReport:
         covariates=list(ident.covariates) if ident is not None else [],
         cells=[dict(zip(ident.factors, c, strict=True)) for c in ident.cells] if ident is not None else None,
     )
-
-
-# --------------------------------------------------------------------------------------------------
-# Command line
-# --------------------------------------------------------------------------------------------------
-def _split_names(text: str | None) -> list[str] | None:
-    if text is None:
-        return None
-    names = [t.strip() for t in text.split(",") if t.strip()]
-    return names
-
-
-def run_check_cli(args: argparse.Namespace) -> int:
-    """``groupmodel check``: print the report, write --json, return 0 (no error finding) or 1."""
-    report = audit(
-        design=args.design,
-        contrasts=args.contrasts,
-        participants=args.participants,
-        factors=_split_names(args.factors),
-        covariates=_split_names(args.covariates),
-        spec=args.spec,
-        images=args.images,
-    )
-    print(report.format())
-    if args.json is not None:
-        from ..outputs.folder import dumps_json
-
-        try:
-            args.json.parent.mkdir(parents=True, exist_ok=True)
-            args.json.write_text(dumps_json(report.as_dict()), encoding="utf-8")
-        except OSError as exc:
-            raise OutputError(f"--json {args.json}: cannot be written ({exc.strerror}); choose another path") from None
-        print(f"wrote {args.json}")
-    return report.exit_code

@@ -92,11 +92,10 @@ class AuditReport:
         return "\n".join(lines)
 
     def as_dict(self) -> dict[str, Any]:
-        from .. import __version__
+        from ..outputs.provenance import provenance
 
         return {
-            "software": "groupmodel",
-            "software_version": __version__,
+            **provenance(("software", "software_version")),
             "design_file": str(self.design),
             "contrasts_file": str(self.contrasts_file) if self.contrasts_file else None,
             "participants_file": str(self.participants),

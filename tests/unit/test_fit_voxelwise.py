@@ -22,7 +22,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import groupmodel.images.core as images_module
+import groupmodel.images as images_module
+import groupmodel.images.reading as images_reading
 from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.fit import F_MAPS, T_MAPS, VoxelFit, fit_images, write_voxel_fit
 
@@ -177,14 +178,14 @@ def test_memory_budget_spill_does_not_change_results(study, base_fit, monkeypatc
         return data
 
     reads: list[str] = []
-    real_read = images_module._read_array
+    real_read = images_reading._read_array
 
     def count_reads(ref, *args, **kwargs):
         reads.append(ref.path.name)
         return real_read(ref, *args, **kwargs)
 
     monkeypatch.setattr(images_module, "load_masked", spy)
-    monkeypatch.setattr(images_module, "_read_array", count_reads)
+    monkeypatch.setattr(images_reading, "_read_array", count_reads)
     in_ram = fit_images(study, memory_bytes=2 * 1024**3, progress=False)
     spilled = fit_images(study, memory_bytes=4096, progress=False)
     assert seen == [False, True]

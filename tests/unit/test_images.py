@@ -31,7 +31,7 @@ from groupmodel.images import (
     write_map,
     write_mask,
 )
-from groupmodel.images.core import _compact_rows
+from groupmodel.images.spill import _compact_rows
 
 # a realistic oblique-free affine: x stored right-to-left, origin away from the corner
 AFFINE = np.array([[-3.0, 0, 0, 30.5], [0, 3.0, 0, -42.0], [0, 0, 3.5, -20.25], [0, 0, 0, 1]])

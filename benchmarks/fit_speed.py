@@ -201,23 +201,23 @@ class _StageTimer:
 
 
 def child_groupmodel(spec: Path, out: Path, memory: str) -> dict[str, Any]:
-    import groupmodel.figures
-    import groupmodel.tails
-
-    import groupmodel.fit
+    import groupmodel.analysis.voxel_fit
+    import groupmodel.engine.tails
     import groupmodel.images
+    import groupmodel.outputs.figures
     from groupmodel.cli.parser import parse_memory
     from groupmodel.fit import fit_images, write_voxel_fit
 
+    # Each stage is timed where its caller looks the function up.
     stages = {
         "check images": (groupmodel.images, "check_images"),
         "read images (load_masked)": (groupmodel.images, "load_masked"),
-        "engine (fit_chunk, all chunks)": (groupmodel.fit, "fit_chunk"),
-        "  of which t p/z (tails.t_tests)": (groupmodel.tails, "t_tests"),
-        "  of which F p/z (tails.f_tests)": (groupmodel.tails, "f_tests"),
+        "engine (fit_chunk, all chunks)": (groupmodel.analysis.voxel_fit, "fit_chunk"),
+        "  of which t p/z (tails.t_tests)": (groupmodel.engine.tails, "t_tests"),
+        "  of which F p/z (tails.f_tests)": (groupmodel.engine.tails, "f_tests"),
         "write NIfTI maps (write_map)": (groupmodel.images, "write_map"),
-        "design picture": (groupmodel.figures, "plot_design"),
-        "contrast picture": (groupmodel.figures, "plot_contrasts"),
+        "design picture": (groupmodel.outputs.figures, "plot_design"),
+        "contrast picture": (groupmodel.outputs.figures, "plot_contrasts"),
     }
     base = _maxrss_mb()
     with _AnonSampler() as anon, _StageTimer(stages) as timer:

@@ -135,9 +135,9 @@ def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str,
 
 def block_labels(model: Any, column: str) -> np.ndarray:
     """Integer exchangeability-block label of every design row, from a table column."""
-    from ..model.table import MISSING, read_table
+    from ..model.table import MISSING
 
-    table = read_table(model.spec.participants)
+    table = model.sample.table  # read once, by build
     if column not in table.columns:
         raise InputError(
             f"{model.spec.participants.name}: blocks column {column!r} is not in the table "

@@ -52,6 +52,7 @@ import numpy as np
 
 from ..errors import EstimabilityError, InputError, ModelError
 from . import tails
+from .linalg import ESTIMABILITY_TOL, RowSpace, rank_tolerance, rows_dependent
 
 __all__ = [
     "ChunkResult",
@@ -64,11 +65,9 @@ __all__ = [
 ]
 
 _EPS = float(np.finfo(np.float64).eps)
-#: Relative tolerance of the estimability check ``||L - L V_r V_r'|| <= tol * ||L||``.  Loose
-#: enough for weights rounded to about 8 significant digits (1/3 written 0.33333333 passes where
-#: the exact row is estimable; such a row is tested as its projection onto the row space), tight
-#: enough to catch any genuinely non-estimable row.
-ESTIMABILITY_RTOL = 1e-8
+#: Relative tolerance of the estimability check ``||L - L V_r V_r'|| <= tol * ||L||``: the one in
+#: :mod:`groupmodel.engine.linalg` (see there why 1e-8).
+ESTIMABILITY_RTOL = ESTIMABILITY_TOL
 #: The constant vector counts as in the column space of X when ``||1 - U U' 1|| <= this * sqrt(n)``;
 #: otherwise the data are fitted uncentred (correct, only without the protection against offsets).
 CONSTANT_RTOL = 1e-9
@@ -311,7 +310,7 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
         raise InputError(f"expected unique test names, got duplicates {dupes}; rename the tests")
 
     u, s, vt = np.linalg.svd(x, full_matrices=False)
-    tol = float(s.max() * max(n, p) * _EPS) if rank_tol is None else float(rank_tol)
+    tol = rank_tolerance(x, s) if rank_tol is None else float(rank_tol)
     r = int(np.sum(s > tol))
     if r == 0:
         raise ModelError(
@@ -326,6 +325,7 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
     u_r = u[:, :r]
     v_r = vt[:r].T  # (p, r)
     pinv_rows = v_r / s[:r]  # (p, r): X^+ = V_r S_r^-1 U_r'
+    row_space = RowSpace(vt[:r], r, tol)
 
     # Centring: 1 in the column space of X?
     ones = np.ones(n)
@@ -351,9 +351,8 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
                 f"expected weights over the {p} design columns, got {w.shape[1]} columns in {where}; "
                 "rebuild the test from this design"
             )
-        row_norm = np.linalg.norm(w, axis=1)
-        off = np.linalg.norm(w - (w @ v_r) @ v_r.T, axis=1)
-        bad = np.flatnonzero(off > ESTIMABILITY_RTOL * np.maximum(row_norm, np.finfo(float).tiny))
+        off, row_norm = row_space.distance(w)
+        bad = np.flatnonzero(~row_space.contains(w))
         if bad.size:
             i = int(bad[0])
             raise EstimabilityError(
@@ -362,8 +361,7 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
                 "test only differences the design can estimate, or add the missing cells/columns"
             )
         q = w.shape[0]
-        sv_w = np.linalg.svd(w, compute_uv=False)
-        if q > 1 and sv_w[-1] <= sv_w[0] * max(q, p) * _EPS * 1e3:
+        if rows_dependent(w):
             raise ModelError(
                 f"expected {q} linearly independent rows, got dependent rows in {where}; "
                 "drop the redundant rows"

@@ -13,7 +13,7 @@ from __future__ import annotations
 import csv
 import json
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -50,6 +50,13 @@ class Sample:
     data : pandas.DataFrame
         One row per included observation, in table order, with ``participant_id``, a ``row`` column (1-based
         data row in the file), factor columns as text and covariate / outcome columns as float64.
+    table : pandas.DataFrame
+        The whole participants table as read (every row, every column, as text): later steps (image paths,
+        exchangeability blocks, rebuilding with further exclusions) take what they need from here instead of
+        reading the file again.
+    sidecar_levels, numeric_columns, extra_exclusions
+        What the selection was made with, so that it can be made again with more exclusions
+        (:func:`select_sample` with ``sample=``).
     exclusions : tuple of Exclusion
         Every left-out row with its reason, in table order.
     levels : dict
@@ -63,6 +70,11 @@ class Sample:
     levels: dict[str, tuple[str, ...]]
     source: Path
     notes: list[str] = field(default_factory=list)
+    table: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=["participant_id"]), repr=False,
+                                compare=False)
+    sidecar_levels: dict[str, tuple[str, ...]] = field(default_factory=dict, repr=False)
+    numeric_columns: tuple[str, ...] = ()
+    extra_exclusions: dict[str, str] = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -71,6 +83,20 @@ class Sample:
     @property
     def participant_ids(self) -> list[str]:
         return self.data["participant_id"].tolist()
+
+    @property
+    def file_rows(self) -> list[int]:
+        """Each observation's 0-based data row in the participants file."""
+        return [r - 1 for r in self.data["row"]]
+
+    @property
+    def n_file_rows(self) -> int:
+        """Number of data rows in the participants file (included or not)."""
+        return len(self.table)
+
+    def table_rows(self) -> pd.DataFrame:
+        """Every column of the participants table (as text) for the included observations, in design order."""
+        return self.table.iloc[self.file_rows].reset_index(drop=True)
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -174,8 +200,13 @@ def select_sample(
     sidecar_levels: dict[str, tuple[str, ...]] | None = None,
     numeric_columns: Sequence[str] = (),
     extra_exclusions: Mapping[str, str] | None = None,
+    sample: Sample | None = None,
 ) -> Sample:
     """Apply exclude, include and missing-value rules and resolve factor levels.
+
+    The participants table and sidecar are read here (once) unless given; the returned :class:`Sample` keeps
+    them.  With ``sample``, the selection is made again from that sample's table, sidecar levels and numeric
+    columns, with ``extra_exclusions`` added to its own: nothing is read from disk.
 
     Parameters
     ----------
@@ -190,11 +221,31 @@ def select_sample(
     extra_exclusions : mapping, optional
         participant_id -> reason, for rows left out by a later stage (e.g. a missing image with
         ``--drop-missing-images``); listed with the others.
+    sample : Sample, optional
+        An earlier selection whose table, sidecar levels, numeric columns and exclusions are reused.
     """
+    extra = dict(extra_exclusions or {})
+    if sample is not None:
+        table, sidecar_levels = sample.table, sample.sidecar_levels
+        numeric_columns = tuple(numeric_columns) or sample.numeric_columns
+        extra = {**sample.extra_exclusions, **extra}
     if table is None:
         table = read_table(spec.participants)
     if sidecar_levels is None:
         sidecar_levels = read_sidecar_levels(spec.participants_sidecar)
+    selected = _select_rows(spec, table, sidecar_levels, numeric_columns, extra or None)
+    return replace(selected, table=table, sidecar_levels=dict(sidecar_levels),
+                   numeric_columns=tuple(numeric_columns), extra_exclusions=extra)
+
+
+def _select_rows(
+    spec: ModelSpec,
+    table: pd.DataFrame,
+    sidecar_levels: dict[str, tuple[str, ...]],
+    numeric_columns: Sequence[str],
+    extra_exclusions: Mapping[str, str] | None,
+) -> Sample:
+    """The selection itself (see :func:`select_sample`); reads nothing."""
     name = spec.participants.name
     factors = spec.model_factors()
     covariates = list(spec.model_covariates()) + [c for c in numeric_columns if c not in spec.model_covariates()]

@@ -308,7 +308,7 @@ def fit_images(
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
-        inference = InferenceOptions.resolve(spec.inference, spec.base_dir)
+        inference = InferenceOptions.from_spec(spec)
     model = build(spec)
     _require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)

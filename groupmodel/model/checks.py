@@ -87,6 +87,15 @@ def cell_counts_by_term(design: Design) -> dict[str, dict[str, int]]:
 
 def check_design(design: Design) -> list[Finding]:
     """All design-level findings (rank, collinearity, cells, centring)."""
+    findings, rank = _rank_findings(design)
+    findings += _collinearity_findings(design, rank)
+    findings += _cell_findings(design)
+    findings += _centring_findings(design)
+    return findings
+
+
+def _rank_findings(design: Design) -> tuple[list[Finding], int]:
+    """Too many columns, rank deficiency (naming the dependent columns), no residual df; and the rank."""
     findings: list[Finding] = []
     x = design.matrix
     names = design.column_names
@@ -110,6 +119,14 @@ def check_design(design: Design) -> list[Finding]:
             f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank}); "
             "remove terms or add participants",
         ))
+    return findings, rank
+
+
+def _collinearity_findings(design: Design, rank: int) -> list[Finding]:
+    """Condition number and variance inflation of a full-rank design."""
+    findings: list[Finding] = []
+    x = design.matrix
+    p = x.shape[1]
     cond = condition_number(x)
     if rank == p and cond > CONDITION_WARN:
         findings.append(Finding(
@@ -120,13 +137,19 @@ def check_design(design: Design) -> list[Finding]:
     if rank == p and has_constant_column(x):
         # Without a constant column (cell-means and other no-intercept designs) the usual VIF, which adds a
         # constant to each regression, is infinite by construction and says nothing: skip it, as check does.
-        for col, v in variance_inflation(x, names).items():
+        for col, v in variance_inflation(x, design.column_names).items():
             if v > VIF_WARN:
                 findings.append(Finding(
                     "warning", "high_vif",
                     f"column {col} has variance inflation factor {v:.3g} (above {VIF_WARN:g}): it is nearly a "
                     "combination of other columns; consider centring or dropping a term",
                 ))
+    return findings
+
+
+def _cell_findings(design: Design) -> list[Finding]:
+    """Empty and small cells of every term's factors."""
+    findings: list[Finding] = []
     for term, table in cell_counts_by_term(design).items():
         for cell, count in table.items():
             if count == 0:
@@ -135,6 +158,12 @@ def check_design(design: Design) -> list[Finding]:
                 findings.append(Finding(
                     "warning", "small_cell", f"only {count} participant has {cell} (term {term})"
                 ))
+    return findings
+
+
+def _centring_findings(design: Design) -> list[Finding]:
+    """Covariates that enter an interaction with a factor uncentred."""
+    findings: list[Finding] = []
     for term in design.terms:
         fs = [m for m in term if m in design.factors]
         covs = [m for m in term if m in design.covariates]

@@ -373,16 +373,8 @@ def load_spec(path: Path | str) -> ModelSpec:
     return spec_from_dict(raw, path)
 
 
-def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
-    """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
-    path = Path(path)
-    name = path.name
-    validator = jsonschema.Draft202012Validator(load_schema())
-    errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
-    if errors:
-        raise SpecError(_schema_message(errors[0], name))
-    base = path.parent
-
+def _read_factors(raw: Mapping[str, Any], name: str) -> dict[str, FactorSpec]:
+    """``factors``: levels, coding, reference and scores, each checked against the others."""
     factors: dict[str, FactorSpec] = {}
     for fname, f in (raw.get("factors") or {}).items():
         levels = tuple(f["levels"]) if "levels" in f else None
@@ -401,7 +393,11 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         if scores is not None and len(set(scores)) != len(scores):
             raise SpecError(f"{name} $.factors.{fname}.scores: scores must differ; found {list(scores)}")
         factors[fname] = FactorSpec(fname, levels, f.get("coding", "effect"), ref, scores)
+    return factors
 
+
+def _read_covariates(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec]) -> dict[str, CovariateSpec]:
+    """``covariates``: centring and scaling; a column is a factor or a covariate, not both."""
     covariates: dict[str, CovariateSpec] = {}
     for cname, c in (raw.get("covariates") or {}).items():
         if cname in factors:
@@ -416,7 +412,12 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
                 f"{sorted(factors)}, found {center['within']!r}; declare it under factors"
             )
         covariates[cname] = CovariateSpec(cname, center, c.get("scale", "none"))
+    return covariates
 
+
+def _read_terms(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec],
+                covariates: Mapping[str, CovariateSpec]) -> tuple[Term, ...]:
+    """``terms`` expanded (``a*b`` -> ``a``, ``b``, ``a:b``), each member declared, duplicates dropped."""
     terms: list[Term] = []
     for i, text in enumerate(raw.get("terms", [])):
         for term in parse_term(text):
@@ -434,7 +435,22 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
             if any(set(term) == set(t) for t in terms):
                 continue  # a*b + a:b: the second a:b adds nothing
             terms.append(term)
+    return tuple(terms)
 
+
+def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
+    """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
+    path = Path(path)
+    name = path.name
+    validator = jsonschema.Draft202012Validator(load_schema())
+    errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
+    if errors:
+        raise SpecError(_schema_message(errors[0], name))
+    base = path.parent
+
+    factors = _read_factors(raw, name)
+    covariates = _read_covariates(raw, name, factors)
+    terms = _read_terms(raw, name, factors, covariates)
 
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
@@ -454,7 +470,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         factors=factors,
         covariates=covariates,
         intercept=bool(raw.get("intercept", True)),
-        terms=tuple(terms),
+        terms=terms,
         hypotheses={n: HypothesisSpec.read(n, body) for n, body in (raw.get("hypotheses") or {}).items()},
         images=raw.get("images"),
         mask=(base / raw["mask"]) if "mask" in raw else None,

@@ -327,59 +327,12 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
     pinv_rows = v_r / s[:r]  # (p, r): X^+ = V_r S_r^-1 U_r'
     row_space = RowSpace(vt[:r], r, tol)
 
-    # Centring: 1 in the column space of X?
-    ones = np.ones(n)
-    u1 = u_r.T @ ones
-    centred = bool(np.linalg.norm(ones - u_r @ u1) <= CONSTANT_RTOL * np.sqrt(n))
-    if centred:
-        b1 = pinv_rows @ u1
-        # One step of iterative refinement: L b1 multiplies each voxel's mean (1e12 in NIST SmLs09),
-        # so b1 is wanted to full accuracy, not just to the eps * n * cond of one solve.
-        b1 = b1 + pinv_rows @ (u_r.T @ (ones - x @ b1))
-    else:
-        b1 = np.zeros(p)
+    centred, b1 = _centring(x, u_r, pinv_rows)
     # Rounding level of L b1 relative to ||L|| ||b1||, for snapping difference contrasts to 0 below.
     cond_r = float(s[0] / s[r - 1])
     lb1_rtol = min(64 * _EPS * np.sqrt(max(n, p)) * cond_r, 1e-8)
-
-    prepared_tests = []
-    for test in tests:
-        w = test.weights
-        where = f"test {test.name!r}"
-        if w.shape[1] != p:
-            raise ModelError(
-                f"expected weights over the {p} design columns, got {w.shape[1]} columns in {where}; "
-                "rebuild the test from this design"
-            )
-        off, row_norm = row_space.distance(w)
-        bad = np.flatnonzero(~row_space.contains(w))
-        if bad.size:
-            i = int(bad[0])
-            raise EstimabilityError(
-                f"expected estimable rows (in the row space of the rank-{r} design), got row {i} of "
-                f"{where} with a part of relative size {off[i] / max(row_norm[i], 1e-300):.3g} outside it; "
-                "test only differences the design can estimate, or add the missing cells/columns"
-            )
-        q = w.shape[0]
-        if rows_dependent(w):
-            raise ModelError(
-                f"expected {q} linearly independent rows, got dependent rows in {where}; "
-                "drop the redundant rows"
-            )
-        a = w @ pinv_rows  # (q, r)
-        lb1 = w @ b1
-        if centred:
-            # L b1 is exactly 0 for a difference contrast; computed, it is ~1e-16, and the mean
-            # (1e12 in NIST SmLs09) would multiply that rounding into the effect.
-            lb1 = np.where(np.abs(lb1) <= lb1_rtol * row_norm * np.linalg.norm(b1), 0.0, lb1)
-        if test.kind == "t":
-            prepared_tests.append(
-                _PreparedTest(test, _readonly(a), _readonly(lb1), float(np.sum(a * a)), None)
-            )
-        else:
-            wa, da, _ = np.linalg.svd(a, full_matrices=False)
-            whiten = wa.T / da[:, None]  # D^-1 W'
-            prepared_tests.append(_PreparedTest(test, _readonly(a), _readonly(lb1), 0.0, _readonly(whiten)))
+    basis = _Basis(row_space, pinv_rows, b1, centred, lb1_rtol)
+    prepared_tests = [_prepare_test(test, basis) for test in tests]
 
     return Prepared(
         n_obs=n,
@@ -395,6 +348,74 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
         tests=tuple(tests),
         _prepared_tests=tuple(prepared_tests),
     )
+
+
+@dataclass(frozen=True, eq=False)
+class _Basis:
+    """What every test is prepared against (internal to :func:`prepare`)."""
+
+    row_space: RowSpace
+    pinv_rows: np.ndarray  # (p, r)
+    b1: np.ndarray  # (p,)
+    centred: bool
+    lb1_rtol: float
+
+    @property
+    def n_cols(self) -> int:
+        return self.pinv_rows.shape[0]
+
+
+def _centring(x: np.ndarray, u_r: np.ndarray, pinv_rows: np.ndarray) -> tuple[bool, np.ndarray]:
+    """Whether the constant vector lies in the column space of X, and ``b1 = X^+ 1`` (zeros if not)."""
+    n, p = x.shape
+    ones = np.ones(n)
+    u1 = u_r.T @ ones
+    centred = bool(np.linalg.norm(ones - u_r @ u1) <= CONSTANT_RTOL * np.sqrt(n))
+    if centred:
+        b1 = pinv_rows @ u1
+        # One step of iterative refinement: L b1 multiplies each voxel's mean (1e12 in NIST SmLs09),
+        # so b1 is wanted to full accuracy, not just to the eps * n * cond of one solve.
+        b1 = b1 + pinv_rows @ (u_r.T @ (ones - x @ b1))
+    else:
+        b1 = np.zeros(p)
+    return centred, b1
+
+
+def _prepare_test(test: Test, basis: _Basis) -> _PreparedTest:
+    """Check one test against the design (width, estimability, independent rows) and prepare its products."""
+    w = test.weights
+    where = f"test {test.name!r}"
+    if w.shape[1] != basis.n_cols:
+        raise ModelError(
+            f"expected weights over the {basis.n_cols} design columns, got {w.shape[1]} columns in {where}; "
+            "rebuild the test from this design"
+        )
+    off, row_norm = basis.row_space.distance(w)
+    bad = np.flatnonzero(~basis.row_space.contains(w))
+    if bad.size:
+        i = int(bad[0])
+        raise EstimabilityError(
+            f"expected estimable rows (in the row space of the rank-{basis.row_space.rank} design), got row {i} "
+            f"of {where} with a part of relative size {off[i] / max(row_norm[i], 1e-300):.3g} outside it; "
+            "test only differences the design can estimate, or add the missing cells/columns"
+        )
+    q = w.shape[0]
+    if rows_dependent(w):
+        raise ModelError(
+            f"expected {q} linearly independent rows, got dependent rows in {where}; "
+            "drop the redundant rows"
+        )
+    a = w @ basis.pinv_rows  # (q, r)
+    lb1 = w @ basis.b1
+    if basis.centred:
+        # L b1 is exactly 0 for a difference contrast; computed, it is ~1e-16, and the mean
+        # (1e12 in NIST SmLs09) would multiply that rounding into the effect.
+        lb1 = np.where(np.abs(lb1) <= basis.lb1_rtol * row_norm * np.linalg.norm(basis.b1), 0.0, lb1)
+    if test.kind == "t":
+        return _PreparedTest(test, _readonly(a), _readonly(lb1), float(np.sum(a * a)), None)
+    wa, da, _ = np.linalg.svd(a, full_matrices=False)
+    whiten = wa.T / da[:, None]  # D^-1 W'
+    return _PreparedTest(test, _readonly(a), _readonly(lb1), 0.0, _readonly(whiten))
 
 
 def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> ChunkResult:

@@ -443,6 +443,21 @@ def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> Ch
             f"expected data of shape ({prepared.n_obs}, v), one row per design row, got shape {y.shape}; "
             "check that the images match the rows of the design"
         )
+    n = y.shape[0]
+    uy, rss, mean, scale = _project(prepared, y)
+    df = prepared.df_resid
+    sigma2 = rss / df
+    zero_var = sigma2 <= (ZERO_VARIANCE_FACTOR * n * _EPS * scale) ** 2
+    variance = _Variance(sigma2, np.where(zero_var, np.nan, sigma2), zero_var, df)
+    results = {pt.test.name: _test_result(pt, uy, mean, variance) for pt in prepared._prepared_tests}
+    b = None
+    if beta:
+        b = prepared.pinv_rows @ uy + prepared.b1[:, None] * mean[None, :]
+    return ChunkResult(residual_variance=sigma2, df_resid=df, tests=results, beta=b)
+
+
+def _project(prepared: Prepared, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``U' Yc`` (r, v), residual sums of squares, voxel means (0 when not centring) and max|Yc|, each (v,)."""
     n, v = y.shape
     r = prepared.rank
     u = prepared.u
@@ -469,45 +484,50 @@ def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> Ch
             uy[:, lo:hi] = z
             blk -= u @ z  # residuals R = Yc - U (U' Yc), formed explicitly
             rss[lo:hi] = np.einsum("ij,ij->j", blk, blk)
-    df = prepared.df_resid
-    sigma2 = rss / df
-    zero_var = sigma2 <= (ZERO_VARIANCE_FACTOR * n * _EPS * scale) ** 2
-    sigma2_pos = np.where(zero_var, np.nan, sigma2)
+    return uy, rss, mean, scale
 
-    results: dict[str, TestResult] = {}
-    for pt in prepared._prepared_tests:
-        test = pt.test
-        eff = pt.a @ uy + pt.lb1[:, None] * mean[None, :]  # (q, v)
-        if test.kind == "t":
-            eff = eff[0]
-            se = np.where(zero_var, 0.0, np.sqrt(sigma2 * pt.a_norm2))
-            with np.errstate(invalid="ignore", divide="ignore"):
-                stat = eff / np.sqrt(sigma2_pos * pt.a_norm2)
-            p, log_p, z = tails.t_tests(stat, df, test.tail)
-            df1 = 1
-        else:
-            q = eff.shape[0]
-            white = pt.whiten @ eff
-            with np.errstate(invalid="ignore", divide="ignore"):
-                stat = np.einsum("ij,ij->j", white, white) / (q * sigma2_pos)
-            p, log_p, z = tails.f_tests(stat, q, df)
-            se = None
-            df1 = q
-        results[test.name] = TestResult(
-            name=test.name,
-            kind=test.kind,
-            tail=test.tail,
-            effect=eff,
-            se=se,
-            statistic=stat,
-            df1=df1,
-            df2=df,
-            p=p,
-            log_p=log_p,
-            z=z,
-            mlog10p=tails.mlog10p(log_p),
-        )
-    b = None
-    if beta:
-        b = prepared.pinv_rows @ uy + prepared.b1[:, None] * mean[None, :]
-    return ChunkResult(residual_variance=sigma2, df_resid=df, tests=results, beta=b)
+
+@dataclass(frozen=True, eq=False)
+class _Variance:
+    """A chunk's residual variance (v,), the same with NaN where it is (numerically) zero, and its df."""
+
+    sigma2: np.ndarray
+    sigma2_pos: np.ndarray
+    zero_var: np.ndarray
+    df: int
+
+
+def _test_result(pt: _PreparedTest, uy: np.ndarray, mean: np.ndarray, variance: _Variance) -> TestResult:
+    """One test's effects, statistics, p, log p and z over a chunk."""
+    sigma2, sigma2_pos, zero_var, df = variance.sigma2, variance.sigma2_pos, variance.zero_var, variance.df
+    test = pt.test
+    eff = pt.a @ uy + pt.lb1[:, None] * mean[None, :]  # (q, v)
+    if test.kind == "t":
+        eff = eff[0]
+        se = np.where(zero_var, 0.0, np.sqrt(sigma2 * pt.a_norm2))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat = eff / np.sqrt(sigma2_pos * pt.a_norm2)
+        p, log_p, z = tails.t_tests(stat, df, test.tail)
+        df1 = 1
+    else:
+        q = eff.shape[0]
+        white = pt.whiten @ eff
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat = np.einsum("ij,ij->j", white, white) / (q * sigma2_pos)
+        p, log_p, z = tails.f_tests(stat, q, df)
+        se = None
+        df1 = q
+    return TestResult(
+        name=test.name,
+        kind=test.kind,
+        tail=test.tail,
+        effect=eff,
+        se=se,
+        statistic=stat,
+        df1=df1,
+        df2=df,
+        p=p,
+        log_p=log_p,
+        z=z,
+        mlog10p=tails.mlog10p(log_p),
+    )

@@ -150,7 +150,12 @@ def read_table(path: Path) -> pd.DataFrame:
             )
         rows.append([f.strip() for f in fields])
     frame = pd.DataFrame(rows, columns=header, dtype=object)
-    ids = frame["participant_id"]
+    _check_ids(name, frame["participant_id"])
+    return frame
+
+
+def _check_ids(name: str, ids: pd.Series) -> None:
+    """Every row has a participant_id, and no id appears twice."""
     missing_id = [i + 1 for i, v in enumerate(ids) if v in MISSING]
     if missing_id:
         raise TableError(f"{name} row {missing_id[0]}: participant_id is missing; give every row an id")
@@ -162,7 +167,6 @@ def read_table(path: Path) -> pd.DataFrame:
             f"{name} rows {where}: participant_id {first!r} appears {len(where)} times; "
             "each participant must have one row"
         )
-    return frame
 
 
 def read_sidecar_levels(path: Path | None) -> dict[str, tuple[str, ...]]:

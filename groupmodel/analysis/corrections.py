@@ -8,8 +8,7 @@ maps come out, what their sidecars record, and the cluster tables.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, replace
-from pathlib import Path
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -17,109 +16,13 @@ import pandas as pd
 
 from ..errors import InputError
 from ..inference.multiple import bonferroni, fdr_bh
+from ..model.options import InferenceOptions
 
 #: Method names as users write them -> the inference engine's names.
 METHODS = {"auto": "auto", "permutation": "permute", "sign_flip": "flip", "both": "both"}
 _METHOD_NAMES = {"permute": "permutation", "flip": "sign_flip", "both": "both"}
 #: Level at which corrected maps are summarised in cluster tables.
 TABLE_ALPHA = 0.05
-
-
-@dataclass(frozen=True)
-class InferenceOptions:
-    """Settings of corrected inference (spec ``inference`` object, overridden by the command line).
-
-    Attributes
-    ----------
-    permutations : int
-        J, the rearrangements including the identity (0: parametric corrections only).  When fewer distinct
-        rearrangements exist, all of them are used and the result is exact.
-    seed : int
-        Seed of the random rearrangements (default 0, always recorded).
-    method : {"auto", "permutation", "sign_flip", "both"}
-        ``auto``: sign flips when a hypothesis's effect of interest is constant over rows (one-sample),
-        row permutation otherwise.
-    blocks : str or None
-        Table column of exchangeability blocks.
-    whole_blocks : bool
-        Permute blocks as wholes instead of rows within blocks.
-    tfce : bool
-        Threshold-free cluster enhancement (E = 0.5, H = 2) and its FWE p.
-    tfce_step : float or None
-        TFCE step dh in statistic units (default: the largest observed value / 100), recorded.
-    cluster_threshold : float or None
-        Cluster-forming threshold as a z value, for cluster-extent FWE.
-    connectivity : {6, 18, 26}
-        Voxel neighbourhood for TFCE and clusters (26: faces, edges and corners).
-    mesh : Path or None
-        Surface (GIFTI with a triangle array) giving vertex neighbours for surface data.
-    jobs : int or None
-        Worker processes for TFCE and cluster nulls (default: the cores the process may use); results
-        do not depend on it.
-    threads : int or None
-        Threads for the permutation products (default: the cores the process may use); results do
-        not depend on it.
-    """
-
-    permutations: int = 0
-    seed: int = 0
-    method: str = "auto"
-    blocks: str | None = None
-    whole_blocks: bool = False
-    tfce: bool = False
-    tfce_step: float | None = None
-    cluster_threshold: float | None = None
-    connectivity: int = 26
-    mesh: Path | None = None
-    jobs: int | None = None
-    threads: int | None = None
-
-    @property
-    def active(self) -> bool:
-        return self.permutations > 0
-
-    def as_dict(self) -> dict[str, Any]:
-        d = asdict(self)
-        d["mesh"] = str(self.mesh) if self.mesh else None
-        return d
-
-    @classmethod
-    def resolve(cls, spec_inference: dict[str, Any], base_dir: Path, cli: Any | None = None) -> InferenceOptions:
-        """Spec settings, then command-line settings that were given."""
-        opts = cls(**{k: v for k, v in spec_inference.items() if k != "mesh"},
-                     mesh=(base_dir / spec_inference["mesh"]) if spec_inference.get("mesh") else None)
-        if cli is not None:
-            given: dict[str, Any] = {}
-            if getattr(cli, "permutations", None):
-                given["permutations"] = cli.permutations
-            if getattr(cli, "seed", None) is not None:
-                given["seed"] = cli.seed
-            if getattr(cli, "method", "auto") != "auto":
-                given["method"] = cli.method
-            if getattr(cli, "blocks", None):
-                given["blocks"] = cli.blocks
-            if getattr(cli, "whole_blocks", False):
-                given["whole_blocks"] = True
-            if getattr(cli, "tfce", False):
-                given["tfce"] = True
-            if getattr(cli, "cluster_threshold", None) is not None:
-                given["cluster_threshold"] = cli.cluster_threshold
-            if getattr(cli, "jobs", None) is not None:
-                given["jobs"] = cli.jobs
-            if getattr(cli, "threads", None) is not None:
-                given["threads"] = cli.threads
-            opts = replace(opts, **given)
-        if (opts.tfce or opts.cluster_threshold is not None or opts.blocks or opts.whole_blocks) and not opts.active:
-            raise InputError(
-                "TFCE, cluster-extent and exchangeability blocks need permutations; found --permutations 0; "
-                "add --permutations J (e.g. 5000) or inference.permutations to the spec"
-            )
-        for option, value in (("--jobs", opts.jobs), ("--threads", opts.threads)):
-            if value is not None and value < 1:
-                raise InputError(f"{option} must be a whole number >= 1; got {value}; give e.g. {option} 2")
-        if opts.whole_blocks and not opts.blocks:
-            raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
-        return opts
 
 
 def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str, np.ndarray]]:
@@ -135,9 +38,9 @@ def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str,
 
 def block_labels(model: Any, column: str) -> np.ndarray:
     """Integer exchangeability-block label of every design row, from a table column."""
-    from ..model.table import MISSING, read_table
+    from ..model.table import MISSING
 
-    table = read_table(model.spec.participants)
+    table = model.sample.table  # read once, by build
     if column not in table.columns:
         raise InputError(
             f"{model.spec.participants.name}: blocks column {column!r} is not in the table "

@@ -185,7 +185,6 @@ def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, l
     dropped : list of (participant_id, reason)
     """
     from ..images import check_images, resolve_images
-    from ..model.table import read_table
 
     spec = model.spec
     if not spec.images:
@@ -194,18 +193,16 @@ def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, l
             '"maps/{participant_id}_effect.nii.gz", a column of paths, or one 4-D file); found none; '
             "add it, or fit one table column with --outcome"
         )
-    table = read_table(spec.participants)
-    file_rows = [r - 1 for r in model.sample.data["row"]]
-    rows = table.iloc[file_rows].reset_index(drop=True)
-    source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
-                            source_label=f'{spec.name} "images"', file_rows=file_rows, n_file_rows=len(table))
+    # The participants table was read once, by build: its rows come from the sample.
+    sample = model.sample
+    source = resolve_images(spec.images, model.design.participant_ids, sample.table_rows(), spec.base_dir,
+                            source_label=f'{spec.name} "images"', file_rows=sample.file_rows,
+                            n_file_rows=sample.n_file_rows)
     source, dropped = check_images(source, drop_missing=drop_missing)
     if dropped:
-        extra = {pid: reason for pid, reason in dropped}
-        model = build(spec, extra_exclusions=extra)
-        rows = table.iloc[[r - 1 for r in model.sample.data["row"]]].reset_index(drop=True)
-        source = resolve_images(spec.images, model.design.participant_ids, rows, spec.base_dir,
-                                source_label=f'{spec.name} "images"')
+        model = model.without({pid: reason for pid, reason in dropped})
+        source = resolve_images(spec.images, model.design.participant_ids, model.sample.table_rows(),
+                                spec.base_dir, source_label=f'{spec.name} "images"')
         source, _ = check_images(source)
     return model, source, dropped
 
@@ -246,7 +243,7 @@ def fit_images(
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
-        inference = InferenceOptions.resolve(spec.inference, spec.base_dir)
+        inference = InferenceOptions.from_spec(spec)
     model = build(spec)
     _require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)

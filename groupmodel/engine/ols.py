@@ -52,6 +52,7 @@ import numpy as np
 
 from ..errors import EstimabilityError, InputError, ModelError
 from . import tails
+from .linalg import ESTIMABILITY_TOL, RowSpace, rank_tolerance, rows_dependent
 
 __all__ = [
     "ChunkResult",
@@ -64,11 +65,9 @@ __all__ = [
 ]
 
 _EPS = float(np.finfo(np.float64).eps)
-#: Relative tolerance of the estimability check ``||L - L V_r V_r'|| <= tol * ||L||``.  Loose
-#: enough for weights rounded to about 8 significant digits (1/3 written 0.33333333 passes where
-#: the exact row is estimable; such a row is tested as its projection onto the row space), tight
-#: enough to catch any genuinely non-estimable row.
-ESTIMABILITY_RTOL = 1e-8
+#: Relative tolerance of the estimability check ``||L - L V_r V_r'|| <= tol * ||L||``: the one in
+#: :mod:`groupmodel.engine.linalg` (see there why 1e-8).
+ESTIMABILITY_RTOL = ESTIMABILITY_TOL
 #: The constant vector counts as in the column space of X when ``||1 - U U' 1|| <= this * sqrt(n)``;
 #: otherwise the data are fitted uncentred (correct, only without the protection against offsets).
 CONSTANT_RTOL = 1e-9
@@ -311,7 +310,7 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
         raise InputError(f"expected unique test names, got duplicates {dupes}; rename the tests")
 
     u, s, vt = np.linalg.svd(x, full_matrices=False)
-    tol = float(s.max() * max(n, p) * _EPS) if rank_tol is None else float(rank_tol)
+    tol = rank_tolerance(x, s) if rank_tol is None else float(rank_tol)
     r = int(np.sum(s > tol))
     if r == 0:
         raise ModelError(
@@ -326,62 +325,14 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
     u_r = u[:, :r]
     v_r = vt[:r].T  # (p, r)
     pinv_rows = v_r / s[:r]  # (p, r): X^+ = V_r S_r^-1 U_r'
+    row_space = RowSpace(vt[:r], r, tol)
 
-    # Centring: 1 in the column space of X?
-    ones = np.ones(n)
-    u1 = u_r.T @ ones
-    centred = bool(np.linalg.norm(ones - u_r @ u1) <= CONSTANT_RTOL * np.sqrt(n))
-    if centred:
-        b1 = pinv_rows @ u1
-        # One step of iterative refinement: L b1 multiplies each voxel's mean (1e12 in NIST SmLs09),
-        # so b1 is wanted to full accuracy, not just to the eps * n * cond of one solve.
-        b1 = b1 + pinv_rows @ (u_r.T @ (ones - x @ b1))
-    else:
-        b1 = np.zeros(p)
+    centred, b1 = _centring(x, u_r, pinv_rows)
     # Rounding level of L b1 relative to ||L|| ||b1||, for snapping difference contrasts to 0 below.
     cond_r = float(s[0] / s[r - 1])
     lb1_rtol = min(64 * _EPS * np.sqrt(max(n, p)) * cond_r, 1e-8)
-
-    prepared_tests = []
-    for test in tests:
-        w = test.weights
-        where = f"test {test.name!r}"
-        if w.shape[1] != p:
-            raise ModelError(
-                f"expected weights over the {p} design columns, got {w.shape[1]} columns in {where}; "
-                "rebuild the test from this design"
-            )
-        row_norm = np.linalg.norm(w, axis=1)
-        off = np.linalg.norm(w - (w @ v_r) @ v_r.T, axis=1)
-        bad = np.flatnonzero(off > ESTIMABILITY_RTOL * np.maximum(row_norm, np.finfo(float).tiny))
-        if bad.size:
-            i = int(bad[0])
-            raise EstimabilityError(
-                f"expected estimable rows (in the row space of the rank-{r} design), got row {i} of "
-                f"{where} with a part of relative size {off[i] / max(row_norm[i], 1e-300):.3g} outside it; "
-                "test only differences the design can estimate, or add the missing cells/columns"
-            )
-        q = w.shape[0]
-        sv_w = np.linalg.svd(w, compute_uv=False)
-        if q > 1 and sv_w[-1] <= sv_w[0] * max(q, p) * _EPS * 1e3:
-            raise ModelError(
-                f"expected {q} linearly independent rows, got dependent rows in {where}; "
-                "drop the redundant rows"
-            )
-        a = w @ pinv_rows  # (q, r)
-        lb1 = w @ b1
-        if centred:
-            # L b1 is exactly 0 for a difference contrast; computed, it is ~1e-16, and the mean
-            # (1e12 in NIST SmLs09) would multiply that rounding into the effect.
-            lb1 = np.where(np.abs(lb1) <= lb1_rtol * row_norm * np.linalg.norm(b1), 0.0, lb1)
-        if test.kind == "t":
-            prepared_tests.append(
-                _PreparedTest(test, _readonly(a), _readonly(lb1), float(np.sum(a * a)), None)
-            )
-        else:
-            wa, da, _ = np.linalg.svd(a, full_matrices=False)
-            whiten = wa.T / da[:, None]  # D^-1 W'
-            prepared_tests.append(_PreparedTest(test, _readonly(a), _readonly(lb1), 0.0, _readonly(whiten)))
+    basis = _Basis(row_space, pinv_rows, b1, centred, lb1_rtol)
+    prepared_tests = [_prepare_test(test, basis) for test in tests]
 
     return Prepared(
         n_obs=n,
@@ -397,6 +348,74 @@ def prepare(design: np.ndarray, tests: Sequence[Test], rank_tol: float | None = 
         tests=tuple(tests),
         _prepared_tests=tuple(prepared_tests),
     )
+
+
+@dataclass(frozen=True, eq=False)
+class _Basis:
+    """What every test is prepared against (internal to :func:`prepare`)."""
+
+    row_space: RowSpace
+    pinv_rows: np.ndarray  # (p, r)
+    b1: np.ndarray  # (p,)
+    centred: bool
+    lb1_rtol: float
+
+    @property
+    def n_cols(self) -> int:
+        return self.pinv_rows.shape[0]
+
+
+def _centring(x: np.ndarray, u_r: np.ndarray, pinv_rows: np.ndarray) -> tuple[bool, np.ndarray]:
+    """Whether the constant vector lies in the column space of X, and ``b1 = X^+ 1`` (zeros if not)."""
+    n, p = x.shape
+    ones = np.ones(n)
+    u1 = u_r.T @ ones
+    centred = bool(np.linalg.norm(ones - u_r @ u1) <= CONSTANT_RTOL * np.sqrt(n))
+    if centred:
+        b1 = pinv_rows @ u1
+        # One step of iterative refinement: L b1 multiplies each voxel's mean (1e12 in NIST SmLs09),
+        # so b1 is wanted to full accuracy, not just to the eps * n * cond of one solve.
+        b1 = b1 + pinv_rows @ (u_r.T @ (ones - x @ b1))
+    else:
+        b1 = np.zeros(p)
+    return centred, b1
+
+
+def _prepare_test(test: Test, basis: _Basis) -> _PreparedTest:
+    """Check one test against the design (width, estimability, independent rows) and prepare its products."""
+    w = test.weights
+    where = f"test {test.name!r}"
+    if w.shape[1] != basis.n_cols:
+        raise ModelError(
+            f"expected weights over the {basis.n_cols} design columns, got {w.shape[1]} columns in {where}; "
+            "rebuild the test from this design"
+        )
+    off, row_norm = basis.row_space.distance(w)
+    bad = np.flatnonzero(~basis.row_space.contains(w))
+    if bad.size:
+        i = int(bad[0])
+        raise EstimabilityError(
+            f"expected estimable rows (in the row space of the rank-{basis.row_space.rank} design), got row {i} "
+            f"of {where} with a part of relative size {off[i] / max(row_norm[i], 1e-300):.3g} outside it; "
+            "test only differences the design can estimate, or add the missing cells/columns"
+        )
+    q = w.shape[0]
+    if rows_dependent(w):
+        raise ModelError(
+            f"expected {q} linearly independent rows, got dependent rows in {where}; "
+            "drop the redundant rows"
+        )
+    a = w @ basis.pinv_rows  # (q, r)
+    lb1 = w @ basis.b1
+    if basis.centred:
+        # L b1 is exactly 0 for a difference contrast; computed, it is ~1e-16, and the mean
+        # (1e12 in NIST SmLs09) would multiply that rounding into the effect.
+        lb1 = np.where(np.abs(lb1) <= basis.lb1_rtol * row_norm * np.linalg.norm(basis.b1), 0.0, lb1)
+    if test.kind == "t":
+        return _PreparedTest(test, _readonly(a), _readonly(lb1), float(np.sum(a * a)), None)
+    wa, da, _ = np.linalg.svd(a, full_matrices=False)
+    whiten = wa.T / da[:, None]  # D^-1 W'
+    return _PreparedTest(test, _readonly(a), _readonly(lb1), 0.0, _readonly(whiten))
 
 
 def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> ChunkResult:
@@ -424,6 +443,21 @@ def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> Ch
             f"expected data of shape ({prepared.n_obs}, v), one row per design row, got shape {y.shape}; "
             "check that the images match the rows of the design"
         )
+    n = y.shape[0]
+    uy, rss, mean, scale = _project(prepared, y)
+    df = prepared.df_resid
+    sigma2 = rss / df
+    zero_var = sigma2 <= (ZERO_VARIANCE_FACTOR * n * _EPS * scale) ** 2
+    variance = _Variance(sigma2, np.where(zero_var, np.nan, sigma2), zero_var, df)
+    results = {pt.test.name: _test_result(pt, uy, mean, variance) for pt in prepared._prepared_tests}
+    b = None
+    if beta:
+        b = prepared.pinv_rows @ uy + prepared.b1[:, None] * mean[None, :]
+    return ChunkResult(residual_variance=sigma2, df_resid=df, tests=results, beta=b)
+
+
+def _project(prepared: Prepared, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``U' Yc`` (r, v), residual sums of squares, voxel means (0 when not centring) and max|Yc|, each (v,)."""
     n, v = y.shape
     r = prepared.rank
     u = prepared.u
@@ -450,45 +484,50 @@ def fit_chunk(prepared: Prepared, data: np.ndarray, *, beta: bool = False) -> Ch
             uy[:, lo:hi] = z
             blk -= u @ z  # residuals R = Yc - U (U' Yc), formed explicitly
             rss[lo:hi] = np.einsum("ij,ij->j", blk, blk)
-    df = prepared.df_resid
-    sigma2 = rss / df
-    zero_var = sigma2 <= (ZERO_VARIANCE_FACTOR * n * _EPS * scale) ** 2
-    sigma2_pos = np.where(zero_var, np.nan, sigma2)
+    return uy, rss, mean, scale
 
-    results: dict[str, TestResult] = {}
-    for pt in prepared._prepared_tests:
-        test = pt.test
-        eff = pt.a @ uy + pt.lb1[:, None] * mean[None, :]  # (q, v)
-        if test.kind == "t":
-            eff = eff[0]
-            se = np.where(zero_var, 0.0, np.sqrt(sigma2 * pt.a_norm2))
-            with np.errstate(invalid="ignore", divide="ignore"):
-                stat = eff / np.sqrt(sigma2_pos * pt.a_norm2)
-            p, log_p, z = tails.t_tests(stat, df, test.tail)
-            df1 = 1
-        else:
-            q = eff.shape[0]
-            white = pt.whiten @ eff
-            with np.errstate(invalid="ignore", divide="ignore"):
-                stat = np.einsum("ij,ij->j", white, white) / (q * sigma2_pos)
-            p, log_p, z = tails.f_tests(stat, q, df)
-            se = None
-            df1 = q
-        results[test.name] = TestResult(
-            name=test.name,
-            kind=test.kind,
-            tail=test.tail,
-            effect=eff,
-            se=se,
-            statistic=stat,
-            df1=df1,
-            df2=df,
-            p=p,
-            log_p=log_p,
-            z=z,
-            mlog10p=tails.mlog10p(log_p),
-        )
-    b = None
-    if beta:
-        b = prepared.pinv_rows @ uy + prepared.b1[:, None] * mean[None, :]
-    return ChunkResult(residual_variance=sigma2, df_resid=df, tests=results, beta=b)
+
+@dataclass(frozen=True, eq=False)
+class _Variance:
+    """A chunk's residual variance (v,), the same with NaN where it is (numerically) zero, and its df."""
+
+    sigma2: np.ndarray
+    sigma2_pos: np.ndarray
+    zero_var: np.ndarray
+    df: int
+
+
+def _test_result(pt: _PreparedTest, uy: np.ndarray, mean: np.ndarray, variance: _Variance) -> TestResult:
+    """One test's effects, statistics, p, log p and z over a chunk."""
+    sigma2, sigma2_pos, zero_var, df = variance.sigma2, variance.sigma2_pos, variance.zero_var, variance.df
+    test = pt.test
+    eff = pt.a @ uy + pt.lb1[:, None] * mean[None, :]  # (q, v)
+    if test.kind == "t":
+        eff = eff[0]
+        se = np.where(zero_var, 0.0, np.sqrt(sigma2 * pt.a_norm2))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat = eff / np.sqrt(sigma2_pos * pt.a_norm2)
+        p, log_p, z = tails.t_tests(stat, df, test.tail)
+        df1 = 1
+    else:
+        q = eff.shape[0]
+        white = pt.whiten @ eff
+        with np.errstate(invalid="ignore", divide="ignore"):
+            stat = np.einsum("ij,ij->j", white, white) / (q * sigma2_pos)
+        p, log_p, z = tails.f_tests(stat, q, df)
+        se = None
+        df1 = q
+    return TestResult(
+        name=test.name,
+        kind=test.kind,
+        tail=test.tail,
+        effect=eff,
+        se=se,
+        statistic=stat,
+        df1=df1,
+        df2=df,
+        p=p,
+        log_p=log_p,
+        z=z,
+        mlog10p=tails.mlog10p(log_p),
+    )

@@ -51,6 +51,11 @@ class Model:
     def warnings(self) -> list[Finding]:
         return [f for f in self.findings if f.severity == "warning"]
 
+    def without(self, extra_exclusions: Mapping[str, str]) -> Model:
+        """The same model with more participants left out (participant_id -> reason), rebuilt from the
+        sample already read: the participants table is not read again."""
+        return build(self.spec, extra_exclusions=extra_exclusions, sample=self.sample)
+
     def raise_for_errors(self) -> None:
         """Raise a ModelError carrying every error finding (exit code 1)."""
         if self.errors:
@@ -107,6 +112,7 @@ def build(
     spec: ModelSpec | Path | str,
     numeric_columns: Sequence[str] = (),
     extra_exclusions: Mapping[str, str] | None = None,
+    sample: Sample | None = None,
 ) -> Model:
     """Build the model of a spec: read the table, build the design and hypotheses, run the checks.
 
@@ -117,6 +123,9 @@ def build(
         Extra numeric columns every included row must have (e.g. the outcome of a table-level fit).
     extra_exclusions : mapping, optional
         participant_id -> reason for rows a later stage leaves out (e.g. missing images).
+    sample : Sample, optional
+        The sample of an earlier build of the same spec: its table is used again (not read from disk),
+        with ``extra_exclusions`` added to its own (see :meth:`Model.without`).
 
     Returns
     -------
@@ -126,7 +135,7 @@ def build(
     """
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
-    sample = select_sample(spec, numeric_columns=numeric_columns, extra_exclusions=extra_exclusions)
+    sample = select_sample(spec, numeric_columns=numeric_columns, extra_exclusions=extra_exclusions, sample=sample)
     design = build_design(spec, sample)
     findings = [Finding("note", "levels", n) for n in sample.notes]
     findings += check_design(design)

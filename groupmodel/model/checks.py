@@ -10,10 +10,33 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal
 
-import numpy as np
-
-from ..text import number_text
+from ..engine.linalg import (
+    condition_number,
+    dependent_columns,
+    has_constant_column,
+    matrix_rank,
+    rank_tolerance,
+    variance_inflation,
+    variance_inflation_by_regression,
+)
 from .design import Design
+
+# The linear algebra lives in groupmodel.engine.linalg; these names stay importable from here.
+__all__ = [
+    "CONDITION_WARN",
+    "Finding",
+    "SMALL_CELL",
+    "VIF_WARN",
+    "cell_counts_by_term",
+    "check_design",
+    "condition_number",
+    "dependent_columns",
+    "has_constant_column",
+    "matrix_rank",
+    "rank_tolerance",
+    "variance_inflation",
+    "variance_inflation_by_regression",
+]
 
 Severity = Literal["error", "warning", "note"]
 
@@ -41,104 +64,6 @@ class Finding:
         return f"{self.severity}: {self.message}"
 
 
-def rank_tolerance(matrix: np.ndarray, s: np.ndarray) -> float:
-    """The rank tolerance used throughout: ``s.max() * max(n, p) * eps`` (as numpy.linalg.matrix_rank)."""
-    return float(s.max() * max(matrix.shape) * np.finfo(float).eps) if s.size else 0.0
-
-
-def matrix_rank(matrix: np.ndarray) -> int:
-    s = np.linalg.svd(matrix, compute_uv=False)
-    return int((s > rank_tolerance(matrix, s)).sum())
-
-
-def _fmt_coef(c: float) -> str:
-    return number_text(abs(c), whole_tol=1e-6)
-
-
-def dependent_columns(matrix: np.ndarray, names: list[str]) -> list[str]:
-    """Describe each column that is a linear combination of earlier independent columns, in words.
-
-    Columns are taken left to right; a column that adds nothing to the span of the columns kept so far is
-    written as that combination, e.g. ``column site=B equals intercept - site=A``.
-    """
-    kept: list[int] = []
-    out = []
-    tol = rank_tolerance(matrix, np.linalg.svd(matrix, compute_uv=False)) * 10
-    for j in range(matrix.shape[1]):
-        trial = matrix[:, kept + [j]]
-        s = np.linalg.svd(trial, compute_uv=False)
-        # More columns than rows: svd returns only n values, so the column is dependent whatever they are.
-        if s.size == trial.shape[1] and s.min() > tol and s.min() / s.max() > 1e-10:
-            kept.append(j)
-            continue
-        if not np.any(matrix[:, j]):
-            out.append(f"column {names[j]} is all zero")
-            continue
-        coef, *_ = np.linalg.lstsq(matrix[:, kept], matrix[:, j], rcond=None) if kept else (np.zeros(0),)
-        parts = []
-        for c, k in zip(coef, kept, strict=True):
-            if abs(c) < 1e-8:
-                continue
-            sign = "-" if c < 0 else "+"
-            mag = _fmt_coef(c)
-            body = names[k] if mag == "1" else f"{mag} x {names[k]}"
-            parts.append(f"{sign} {body}")
-        expr = " ".join(parts).lstrip("+ ").strip() if parts else "0"
-        if expr.startswith("- "):
-            expr = "-" + expr[2:]
-        out.append(f"column {names[j]} equals {expr}")
-    return out
-
-
-def condition_number(matrix: np.ndarray) -> float:
-    """Condition number of the design with each column scaled to unit length (Belsley's scaling)."""
-    norms = np.linalg.norm(matrix, axis=0)
-    scaled = matrix / np.where(norms > 0, norms, 1.0)
-    s = np.linalg.svd(scaled, compute_uv=False)
-    return float(s.max() / s.min()) if s.min() > 0 else float("inf")
-
-
-def has_constant_column(matrix: np.ndarray) -> bool:
-    """Whether some column is a nonzero constant (an intercept)."""
-    return bool(np.any((np.ptp(matrix, axis=0) == 0) & (matrix[0] != 0))) if matrix.size else False
-
-
-def variance_inflation(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
-    """VIF of every non-constant column: 1 / (1 - R^2) from regressing it on the other columns and a constant.
-
-    Computed from one inverse: VIF_j = [(Z'Z)^-1]_jj (Z'Z)_jj with Z the centred non-constant columns, the
-    standard identity (from memory; checked against statsmodels' variance_inflation_factor in the tests).
-    When Z'Z is singular (a rank-deficient design, or indicators of every level), each column is regressed
-    on the others instead and the affected columns get ``inf``.
-    """
-    keep = [j for j in range(matrix.shape[1]) if np.ptp(matrix[:, j]) > 0]
-    if not keep:
-        return {}
-    z = matrix[:, keep] - matrix[:, keep].mean(axis=0)
-    gram = z.T @ z
-    if np.linalg.cond(gram) < 1e12:
-        vif = np.diag(np.linalg.inv(gram)) * np.diag(gram)
-        return {names[j]: float(v) for j, v in zip(keep, vif, strict=True)}
-    return variance_inflation_by_regression(matrix, names)
-
-
-def variance_inflation_by_regression(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
-    """VIF by one least-squares regression per column (the definition; slower, robust to singularity)."""
-    n, p = matrix.shape
-    out: dict[str, float] = {}
-    for j in range(p):
-        x = matrix[:, j]
-        if np.ptp(x) == 0:
-            continue
-        others = np.column_stack([np.ones(n), np.delete(matrix, j, axis=1)])
-        coef, *_ = np.linalg.lstsq(others, x, rcond=None)
-        resid = x - others @ coef
-        ss_tot = float(((x - x.mean()) ** 2).sum())
-        ss_res = float((resid**2).sum())
-        out[names[j]] = float("inf") if ss_res <= ss_tot * 1e-12 else ss_tot / ss_res
-    return out
-
-
 def cell_counts_by_term(design: Design) -> dict[str, dict[str, int]]:
     """For every term with a factor, the count of each cell of its factors' crossing."""
     from itertools import product
@@ -162,6 +87,15 @@ def cell_counts_by_term(design: Design) -> dict[str, dict[str, int]]:
 
 def check_design(design: Design) -> list[Finding]:
     """All design-level findings (rank, collinearity, cells, centring)."""
+    findings, rank = _rank_findings(design)
+    findings += _collinearity_findings(design, rank)
+    findings += _cell_findings(design)
+    findings += _centring_findings(design)
+    return findings
+
+
+def _rank_findings(design: Design) -> tuple[list[Finding], int]:
+    """Too many columns, rank deficiency (naming the dependent columns), no residual df; and the rank."""
     findings: list[Finding] = []
     x = design.matrix
     names = design.column_names
@@ -185,6 +119,14 @@ def check_design(design: Design) -> list[Finding]:
             f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank}); "
             "remove terms or add participants",
         ))
+    return findings, rank
+
+
+def _collinearity_findings(design: Design, rank: int) -> list[Finding]:
+    """Condition number and variance inflation of a full-rank design."""
+    findings: list[Finding] = []
+    x = design.matrix
+    p = x.shape[1]
     cond = condition_number(x)
     if rank == p and cond > CONDITION_WARN:
         findings.append(Finding(
@@ -195,13 +137,19 @@ def check_design(design: Design) -> list[Finding]:
     if rank == p and has_constant_column(x):
         # Without a constant column (cell-means and other no-intercept designs) the usual VIF, which adds a
         # constant to each regression, is infinite by construction and says nothing: skip it, as check does.
-        for col, v in variance_inflation(x, names).items():
+        for col, v in variance_inflation(x, design.column_names).items():
             if v > VIF_WARN:
                 findings.append(Finding(
                     "warning", "high_vif",
                     f"column {col} has variance inflation factor {v:.3g} (above {VIF_WARN:g}): it is nearly a "
                     "combination of other columns; consider centring or dropping a term",
                 ))
+    return findings
+
+
+def _cell_findings(design: Design) -> list[Finding]:
+    """Empty and small cells of every term's factors."""
+    findings: list[Finding] = []
     for term, table in cell_counts_by_term(design).items():
         for cell, count in table.items():
             if count == 0:
@@ -210,6 +158,12 @@ def check_design(design: Design) -> list[Finding]:
                 findings.append(Finding(
                     "warning", "small_cell", f"only {count} participant has {cell} (term {term})"
                 ))
+    return findings
+
+
+def _centring_findings(design: Design) -> list[Finding]:
+    """Covariates that enter an interaction with a factor uncentred."""
+    findings: list[Finding] = []
     for term in design.terms:
         fs = [m for m in term if m in design.factors]
         covs = [m for m in term if m in design.covariates]

@@ -288,6 +288,32 @@ def _covariate_coding(spec: ModelSpec, name: str, data: pd.DataFrame) -> Covaria
     return CovariateCoding(name, kind, center, within, scale, mean, sd)
 
 
+#: The parts of one column: ``(member, coding-column label)`` for a factor, ``(member, None)`` for a covariate.
+ColumnParts = tuple[tuple[str, str | None], ...]
+
+
+def _term_block(term: Term, data: pd.DataFrame, factors: Mapping[str, FactorCoding],
+                covariates: Mapping[str, CovariateCoding]) -> tuple[np.ndarray, list[ColumnParts]]:
+    """A term's columns (n, k): elementwise products of its members' columns, the first member slowest; and
+    each column's parts (one ``(member, coding-column label or None)`` per member)."""
+    n = len(data)
+    block = np.ones((n, 1))
+    labels: list[ColumnParts] = [()]
+    for m in term:
+        if m in factors:
+            fc = factors[m]
+            idx = np.array([fc.levels.index(v) for v in data[m]])
+            member = fc.matrix[idx]
+            member_labels: list[tuple[str, str | None]] = [(m, lab) for lab in fc.labels]
+        else:
+            cov = covariates[m]
+            member = cov.transform(data[m].to_numpy(float), data[cov.within] if cov.within else None)[:, None]
+            member_labels = [(m, None)]
+        block = (block[:, :, None] * member[:, None, :]).reshape(n, -1)
+        labels = [old + (new,) for old in labels for new in member_labels]
+    return block, labels
+
+
 def build_design(spec: ModelSpec, sample: Sample) -> Design:
     """Build the design of ``spec`` on the observations of ``sample``.
 
@@ -315,20 +341,7 @@ def build_design(spec: ModelSpec, sample: Sample) -> Design:
     term_columns: dict[Term, slice] = {}
     start = 0
     for term in terms:
-        block = np.ones((n, 1))
-        labels: list[tuple[tuple[str, str | None], ...]] = [()]
-        for m in term:
-            if m in factors:
-                fc = factors[m]
-                idx = np.array([fc.levels.index(v) for v in data[m]])
-                member = fc.matrix[idx]
-                member_labels: list[tuple[str, str | None]] = [(m, lab) for lab in fc.labels]
-            else:
-                cov = covariates[m]
-                member = cov.transform(data[m].to_numpy(float), data[cov.within] if cov.within else None)[:, None]
-                member_labels = [(m, None)]
-            block = (block[:, :, None] * member[:, None, :]).reshape(n, -1)
-            labels = [old + (new,) for old in labels for new in member_labels]
+        block, labels = _term_block(term, data, factors, covariates)
         blocks.append(block)
         for parts in labels:
             name = "intercept" if not parts else ":".join(lab if lab is not None else m for m, lab in parts)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import itertools
 import json
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
@@ -19,8 +20,12 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from .options import InferenceOptions
 
 Coding = Literal["effect", "treatment", "polynomial", "indicator"]
+Tail = Literal["two-sided", "greater", "less"]
+#: Factor levels as written, in order: ``(("training", "sprint"), ("chronotype", "lark"))``.
+Levels = tuple[tuple[str, str], ...]
 #: A model term: the names of its members, in the order written (``("training", "chronotype")``).
 Term = tuple[str, ...]
 
@@ -54,6 +59,172 @@ class CovariateSpec:
         return self.center.get("within") if isinstance(self.center, dict) else None
 
 
+# --------------------------------------------------------------------------------------------------
+# Hypotheses as written: one frozen object per hypothesis, its kind's arguments in their own object
+# --------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Main:
+    """``{"main": factor}``: all levels of a factor have the same (marginal) mean."""
+
+    factor: str
+
+
+@dataclass(frozen=True)
+class Interaction:
+    """``{"interaction": [f1, f2, ...]}``: every interaction contrast of the factors is 0."""
+
+    factors: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Compare:
+    """``{"compare": {factor: [side, side]}}``: the (average) mean of one side minus the other is 0."""
+
+    factor: str
+    sides: tuple[tuple[str, ...], tuple[str, ...]]
+
+
+@dataclass(frozen=True)
+class Mean:
+    """``{"mean": {factor: level, ...}}``: a (marginal) mean is 0 (all cells when empty)."""
+
+    levels: Levels
+
+
+@dataclass(frozen=True)
+class Trend:
+    """``{"trend": factor, "degree": d}``: the orthogonal-polynomial trend of that degree is 0."""
+
+    factor: str
+    degree: int
+
+
+@dataclass(frozen=True)
+class Slope:
+    """``{"slope": covariate}``: the slope of a covariate (averaged over cells) is 0."""
+
+    covariate: str
+
+
+@dataclass(frozen=True)
+class CellEntry:
+    """One ``{"at": {...}, "weight": w}`` of a ``cells`` hypothesis."""
+
+    levels: Levels
+    weight: float
+
+
+@dataclass(frozen=True)
+class Cells:
+    """``{"cells": [...]}``: a weighted sum of (marginal) cell means is 0."""
+
+    entries: tuple[CellEntry, ...]
+
+
+@dataclass(frozen=True)
+class Weights:
+    """``{"weights": {column: w} or [{...}, ...]}``: raw weights over the design columns."""
+
+    rows: tuple[tuple[tuple[str, float], ...], ...]
+    one_row: bool  # written as one object rather than a list of rows (names the JSON path in errors)
+
+
+Target = Main | Interaction | Compare | Mean | Trend | Slope | Cells | Weights
+
+
+def _levels(mapping: Any) -> Levels:
+    return tuple(dict(mapping).items())
+
+
+def _side(side: str | list[str]) -> tuple[str, ...]:
+    return (side,) if isinstance(side, str) else tuple(side)
+
+
+def _compare(value: Any, body: Mapping[str, Any]) -> Compare:
+    (factor, sides), = value.items()
+    return Compare(factor, (_side(sides[0]), _side(sides[1])))
+
+
+def _weights(value: Any, body: Mapping[str, Any]) -> Weights:
+    rows = [value] if isinstance(value, dict) else list(value)
+    return Weights(tuple(tuple((col, float(w)) for col, w in row.items()) for row in rows), isinstance(value, dict))
+
+
+#: kind -> reader of its arguments (the value under the kind's key, and the whole object for extra keys).
+#: A new kind of hypothesis is one entry here, a builder in :mod:`groupmodel.model.hypotheses` and its
+#: key in the schema.
+TARGET_READERS: dict[str, Callable[[Any, Mapping[str, Any]], Target]] = {
+    "main": lambda value, body: Main(value),
+    "interaction": lambda value, body: Interaction(tuple(value)),
+    "compare": _compare,
+    "mean": lambda value, body: Mean(_levels(value)),
+    "trend": lambda value, body: Trend(value, int(body.get("degree", 1))),
+    "slope": lambda value, body: Slope(value),
+    "cells": lambda value, body: Cells(tuple(CellEntry(_levels(e["at"]), float(e["weight"])) for e in value)),
+    "weights": _weights,
+}
+
+
+@dataclass(frozen=True)
+class HypothesisSpec:
+    """One hypothesis of the spec, read (checked against the design later, when it is built).
+
+    Attributes
+    ----------
+    name : str
+    kind : str
+        The key that names its kind (``main``, ``interaction``, ``compare``, ``mean``, ``trend``, ``slope``,
+        ``cells`` or ``weights``).
+    target : Main, Interaction, Compare, Mean, Trend, Slope, Cells or Weights
+        The kind's arguments.
+    at : tuple of (name, value)
+        Factor levels (text) and covariate values (numbers) at which it is evaluated, in the order written.
+    tail : {"two-sided", "greater", "less"} or None
+        As written; None when not given (two-sided).
+    marginal : {"equal", "observed"}
+    degree : int or None
+        As written (it belongs to ``trend`` only, which the builder checks).
+    description : str or None
+    """
+
+    name: str
+    kind: str
+    target: Target
+    at: tuple[tuple[str, str | float], ...] = ()
+    tail: Tail | None = None
+    marginal: str = "equal"
+    degree: int | None = None
+    description: str | None = None
+
+    @property
+    def where(self) -> str:
+        """Its place in the spec, as error messages start: ``hypotheses.<name>``."""
+        return f"hypotheses.{self.name}"
+
+    @property
+    def json_path(self) -> str:
+        return f"$.{self.where}"
+
+    @property
+    def tail_or_default(self) -> Tail:
+        return self.tail if self.tail is not None else "two-sided"
+
+    @classmethod
+    def read(cls, name: str, body: Mapping[str, Any]) -> HypothesisSpec:
+        """Read one hypothesis object (already valid against the schema, or built in code)."""
+        kind = next(k for k in TARGET_READERS if k in body)
+        return cls(
+            name=name,
+            kind=kind,
+            target=TARGET_READERS[kind](body[kind], body),
+            at=tuple((body.get("at") or {}).items()),
+            tail=body.get("tail"),
+            marginal=body.get("marginal", "equal"),
+            degree=body.get("degree"),
+            description=body.get("description"),
+        )
+
+
 @dataclass(frozen=True)
 class ModelSpec:
     """A validated model spec.
@@ -65,7 +236,10 @@ class ModelSpec:
     terms : tuple of Term
         Expanded terms in the order given (shorthand ``a*b`` expanded in place, duplicates removed).
     hypotheses : dict
-        Hypothesis name -> the JSON object as written (interpreted by :mod:`groupmodel.hypotheses`).
+        Hypothesis name -> its :class:`HypothesisSpec` (built over the design by :mod:`groupmodel.model.hypotheses`).
+    inference : dict
+        The ``inference`` object as written; ``inference_options`` is the same read into
+        :class:`InferenceOptions` (checked as a whole once the command line has had its say).
     """
 
     path: Path
@@ -77,12 +251,13 @@ class ModelSpec:
     covariates: dict[str, CovariateSpec]
     intercept: bool
     terms: tuple[Term, ...]
-    hypotheses: dict[str, dict[str, Any]] = field(default_factory=dict)
+    hypotheses: dict[str, HypothesisSpec] = field(default_factory=dict)
     images: str | None = None
     mask: Path | None = None
     outcome: str | None = None
     inference: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
+    inference_options: InferenceOptions = field(default_factory=InferenceOptions)
 
     @property
     def base_dir(self) -> Path:
@@ -198,16 +373,8 @@ def load_spec(path: Path | str) -> ModelSpec:
     return spec_from_dict(raw, path)
 
 
-def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
-    """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
-    path = Path(path)
-    name = path.name
-    validator = jsonschema.Draft202012Validator(load_schema())
-    errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
-    if errors:
-        raise SpecError(_schema_message(errors[0], name))
-    base = path.parent
-
+def _read_factors(raw: Mapping[str, Any], name: str) -> dict[str, FactorSpec]:
+    """``factors``: levels, coding, reference and scores, each checked against the others."""
     factors: dict[str, FactorSpec] = {}
     for fname, f in (raw.get("factors") or {}).items():
         levels = tuple(f["levels"]) if "levels" in f else None
@@ -226,7 +393,11 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         if scores is not None and len(set(scores)) != len(scores):
             raise SpecError(f"{name} $.factors.{fname}.scores: scores must differ; found {list(scores)}")
         factors[fname] = FactorSpec(fname, levels, f.get("coding", "effect"), ref, scores)
+    return factors
 
+
+def _read_covariates(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec]) -> dict[str, CovariateSpec]:
+    """``covariates``: centring and scaling; a column is a factor or a covariate, not both."""
     covariates: dict[str, CovariateSpec] = {}
     for cname, c in (raw.get("covariates") or {}).items():
         if cname in factors:
@@ -241,7 +412,12 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
                 f"{sorted(factors)}, found {center['within']!r}; declare it under factors"
             )
         covariates[cname] = CovariateSpec(cname, center, c.get("scale", "none"))
+    return covariates
 
+
+def _read_terms(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec],
+                covariates: Mapping[str, CovariateSpec]) -> tuple[Term, ...]:
+    """``terms`` expanded (``a*b`` -> ``a``, ``b``, ``a:b``), each member declared, duplicates dropped."""
     terms: list[Term] = []
     for i, text in enumerate(raw.get("terms", [])):
         for term in parse_term(text):
@@ -259,7 +435,22 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
             if any(set(term) == set(t) for t in terms):
                 continue  # a*b + a:b: the second a:b adds nothing
             terms.append(term)
+    return tuple(terms)
 
+
+def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
+    """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
+    path = Path(path)
+    name = path.name
+    validator = jsonschema.Draft202012Validator(load_schema())
+    errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
+    if errors:
+        raise SpecError(_schema_message(errors[0], name))
+    base = path.parent
+
+    factors = _read_factors(raw, name)
+    covariates = _read_covariates(raw, name, factors)
+    terms = _read_terms(raw, name, factors, covariates)
 
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
@@ -279,11 +470,12 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         factors=factors,
         covariates=covariates,
         intercept=bool(raw.get("intercept", True)),
-        terms=tuple(terms),
-        hypotheses=dict(raw.get("hypotheses") or {}),
+        terms=terms,
+        hypotheses={n: HypothesisSpec.read(n, body) for n, body in (raw.get("hypotheses") or {}).items()},
         images=raw.get("images"),
         mask=(base / raw["mask"]) if "mask" in raw else None,
         outcome=raw.get("outcome"),
         inference=dict(raw.get("inference") or {}),
         raw=raw,
+        inference_options=InferenceOptions.parse(raw.get("inference") or {}, base),
     )

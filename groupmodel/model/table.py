@@ -13,7 +13,7 @@ from __future__ import annotations
 import csv
 import json
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -50,6 +50,13 @@ class Sample:
     data : pandas.DataFrame
         One row per included observation, in table order, with ``participant_id``, a ``row`` column (1-based
         data row in the file), factor columns as text and covariate / outcome columns as float64.
+    table : pandas.DataFrame
+        The whole participants table as read (every row, every column, as text): later steps (image paths,
+        exchangeability blocks, rebuilding with further exclusions) take what they need from here instead of
+        reading the file again.
+    sidecar_levels, numeric_columns, extra_exclusions
+        What the selection was made with, so that it can be made again with more exclusions
+        (:func:`select_sample` with ``sample=``).
     exclusions : tuple of Exclusion
         Every left-out row with its reason, in table order.
     levels : dict
@@ -63,6 +70,11 @@ class Sample:
     levels: dict[str, tuple[str, ...]]
     source: Path
     notes: list[str] = field(default_factory=list)
+    table: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=["participant_id"]), repr=False,
+                                compare=False)
+    sidecar_levels: dict[str, tuple[str, ...]] = field(default_factory=dict, repr=False)
+    numeric_columns: tuple[str, ...] = ()
+    extra_exclusions: dict[str, str] = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -71,6 +83,20 @@ class Sample:
     @property
     def participant_ids(self) -> list[str]:
         return self.data["participant_id"].tolist()
+
+    @property
+    def file_rows(self) -> list[int]:
+        """Each observation's 0-based data row in the participants file."""
+        return [r - 1 for r in self.data["row"]]
+
+    @property
+    def n_file_rows(self) -> int:
+        """Number of data rows in the participants file (included or not)."""
+        return len(self.table)
+
+    def table_rows(self) -> pd.DataFrame:
+        """Every column of the participants table (as text) for the included observations, in design order."""
+        return self.table.iloc[self.file_rows].reset_index(drop=True)
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -124,7 +150,12 @@ def read_table(path: Path) -> pd.DataFrame:
             )
         rows.append([f.strip() for f in fields])
     frame = pd.DataFrame(rows, columns=header, dtype=object)
-    ids = frame["participant_id"]
+    _check_ids(name, frame["participant_id"])
+    return frame
+
+
+def _check_ids(name: str, ids: pd.Series) -> None:
+    """Every row has a participant_id, and no id appears twice."""
     missing_id = [i + 1 for i, v in enumerate(ids) if v in MISSING]
     if missing_id:
         raise TableError(f"{name} row {missing_id[0]}: participant_id is missing; give every row an id")
@@ -136,7 +167,6 @@ def read_table(path: Path) -> pd.DataFrame:
             f"{name} rows {where}: participant_id {first!r} appears {len(where)} times; "
             "each participant must have one row"
         )
-    return frame
 
 
 def read_sidecar_levels(path: Path | None) -> dict[str, tuple[str, ...]]:
@@ -174,8 +204,13 @@ def select_sample(
     sidecar_levels: dict[str, tuple[str, ...]] | None = None,
     numeric_columns: Sequence[str] = (),
     extra_exclusions: Mapping[str, str] | None = None,
+    sample: Sample | None = None,
 ) -> Sample:
     """Apply exclude, include and missing-value rules and resolve factor levels.
+
+    The participants table and sidecar are read here (once) unless given; the returned :class:`Sample` keeps
+    them.  With ``sample``, the selection is made again from that sample's table, sidecar levels and numeric
+    columns, with ``extra_exclusions`` added to its own: nothing is read from disk.
 
     Parameters
     ----------
@@ -190,15 +225,26 @@ def select_sample(
     extra_exclusions : mapping, optional
         participant_id -> reason, for rows left out by a later stage (e.g. a missing image with
         ``--drop-missing-images``); listed with the others.
+    sample : Sample, optional
+        An earlier selection whose table, sidecar levels, numeric columns and exclusions are reused.
     """
+    extra = dict(extra_exclusions or {})
+    if sample is not None:
+        table, sidecar_levels = sample.table, sample.sidecar_levels
+        numeric_columns = tuple(numeric_columns) or sample.numeric_columns
+        extra = {**sample.extra_exclusions, **extra}
     if table is None:
         table = read_table(spec.participants)
     if sidecar_levels is None:
         sidecar_levels = read_sidecar_levels(spec.participants_sidecar)
+    selected = _select_rows(spec, table, sidecar_levels, numeric_columns, extra or None)
+    return replace(selected, table=table, sidecar_levels=dict(sidecar_levels),
+                   numeric_columns=tuple(numeric_columns), extra_exclusions=extra)
+
+
+def _check_columns(spec: ModelSpec, table: pd.DataFrame, needed: Sequence[str]) -> None:
+    """Every column the model reads or filters on is in the table; every excluded id is in it."""
     name = spec.participants.name
-    factors = spec.model_factors()
-    covariates = list(spec.model_covariates()) + [c for c in numeric_columns if c not in spec.model_covariates()]
-    needed = list(spec.columns_used()) + [c for c in numeric_columns if c not in spec.columns_used()]
     for col in list(needed) + list(spec.include):
         if col not in table.columns:
             where = "$.include" if col in spec.include and col not in needed else "the model"
@@ -213,6 +259,10 @@ def select_sample(
             f"{spec.name} $.exclude: participant_id {unknown[0]!r} is not in {name}; fix or remove the id"
         )
 
+
+def _left_out(spec: ModelSpec, table: pd.DataFrame, needed: Sequence[str],
+              extra_exclusions: Mapping[str, str] | None) -> tuple[list[Exclusion], list[int]]:
+    """Each left-out row with its reason, and the 0-based positions of the rows kept, in table order."""
     exclusions: list[Exclusion] = []
     keep: list[int] = []
     excluded_ids = set(spec.exclude)
@@ -241,6 +291,94 @@ def select_sample(
             exclusions.append(Exclusion(pid, row, f"missing value (n/a) in column {what}"))
             continue
         keep.append(i)
+    return exclusions, keep
+
+
+def _factor_levels(spec: ModelSpec, f: str, values: list[str], rows: list[int],
+                   sidecar_levels: Mapping[str, tuple[str, ...]], notes: list[str]) -> tuple[str, ...]:
+    """A factor's levels: declared in the spec, else in participants.json, else the sorted observed values.
+
+    Values outside declared levels are refused; sidecar levels nobody has are left out (with a note).
+    """
+    name = spec.participants.name
+    fs = spec.factors[f]
+    observed = list(dict.fromkeys(values))
+    if fs.levels is not None:
+        declared: tuple[str, ...] = fs.levels
+        source = f"{spec.name} factors.{f}.levels"
+    elif f in sidecar_levels:
+        declared = sidecar_levels[f]
+        sidecar_name = spec.participants_sidecar.name if spec.participants_sidecar else "participants.json"
+        source = f"{sidecar_name} {f}.Levels"
+    else:
+        declared = tuple(sorted(observed))
+        source = ""
+    if source:
+        for r, v in zip(rows, values, strict=True):
+            if v not in declared:
+                raise TableError(
+                    f"{name} row {r}, column {f!r}: level {v!r} is not declared in {source} {list(declared)}; "
+                    "fix the value or add the level"
+                )
+    if fs.levels is None and source:
+        unused = [lv for lv in declared if lv not in observed]
+        if unused:
+            notes.append(
+                f"factor {f}: level(s) {unused} from {source} have no included participant and are left out "
+                "of the design"
+            )
+            declared = tuple(lv for lv in declared if lv in observed)
+    _check_levels(spec, f, declared)
+    return declared
+
+
+def _check_levels(spec: ModelSpec, f: str, declared: tuple[str, ...]) -> None:
+    fs = spec.factors[f]
+    if fs.reference is not None and fs.reference not in declared:
+        raise SpecError(
+            f"{spec.name} $.factors.{f}.reference: expected one of the levels {list(declared)}, "
+            f"found {fs.reference!r}; fix the reference"
+        )
+    if fs.scores is not None and len(fs.scores) != len(declared):
+        raise SpecError(
+            f"{spec.name} $.factors.{f}.scores: expected {len(declared)} scores (one per level "
+            f"{list(declared)}), found {len(fs.scores)}; give one score per level"
+        )
+    if len(declared) < 2:
+        raise TableError(
+            f"{spec.participants.name} column {f!r}: a factor needs at least 2 levels among the included "
+            f"participants, found {list(declared)}; drop the factor from the terms or check include/exclude"
+        )
+
+
+def _numbers(name: str, column: str, rows: list[int], values: list[str]) -> np.ndarray:
+    """A numeric column as float64, refusing (with row and column) any text that is not a number."""
+    nums = []
+    for r, v in zip(rows, values, strict=True):
+        x = _to_number(v)
+        if x is None:
+            raise TableError(
+                f"{name} row {r}, column {column!r}: expected a number, found {v!r}; "
+                "fix the value (use n/a for a missing value) or declare the column as a factor"
+            )
+        nums.append(x)
+    return np.asarray(nums, dtype=float)
+
+
+def _select_rows(
+    spec: ModelSpec,
+    table: pd.DataFrame,
+    sidecar_levels: dict[str, tuple[str, ...]],
+    numeric_columns: Sequence[str],
+    extra_exclusions: Mapping[str, str] | None,
+) -> Sample:
+    """The selection itself (see :func:`select_sample`); reads nothing."""
+    name = spec.participants.name
+    factors = spec.model_factors()
+    covariates = list(spec.model_covariates()) + [c for c in numeric_columns if c not in spec.model_covariates()]
+    needed = list(spec.columns_used()) + [c for c in numeric_columns if c not in spec.columns_used()]
+    _check_columns(spec, table, needed)
+    exclusions, keep = _left_out(spec, table, needed, extra_exclusions)
 
     data = table.iloc[keep].reset_index(drop=True)
     rows = [i + 1 for i in keep]
@@ -248,63 +386,12 @@ def select_sample(
     notes: list[str] = []
     levels: dict[str, tuple[str, ...]] = {}
     for f in factors:
-        fs = spec.factors[f]
         values = data[f].tolist()
-        observed = list(dict.fromkeys(values))
-        if fs.levels is not None:
-            declared: tuple[str, ...] = fs.levels
-            source = f"{spec.name} factors.{f}.levels"
-        elif f in sidecar_levels:
-            declared = sidecar_levels[f]
-            sidecar_name = spec.participants_sidecar.name if spec.participants_sidecar else "participants.json"
-            source = f"{sidecar_name} {f}.Levels"
-        else:
-            declared = tuple(sorted(observed))
-            source = ""
-        if source:
-            for r, v in zip(rows, values, strict=True):
-                if v not in declared:
-                    raise TableError(
-                        f"{name} row {r}, column {f!r}: level {v!r} is not declared in {source} {list(declared)}; "
-                        "fix the value or add the level"
-                    )
-        if fs.levels is None and source:
-            unused = [lv for lv in declared if lv not in observed]
-            if unused:
-                notes.append(
-                    f"factor {f}: level(s) {unused} from {source} have no included participant and are left out "
-                    "of the design"
-                )
-                declared = tuple(lv for lv in declared if lv in observed)
-        if fs.reference is not None and fs.reference not in declared:
-            raise SpecError(
-                f"{spec.name} $.factors.{f}.reference: expected one of the levels {list(declared)}, "
-                f"found {fs.reference!r}; fix the reference"
-            )
-        if fs.scores is not None and len(fs.scores) != len(declared):
-            raise SpecError(
-                f"{spec.name} $.factors.{f}.scores: expected {len(declared)} scores (one per level "
-                f"{list(declared)}), found {len(fs.scores)}; give one score per level"
-            )
-        if len(declared) < 2:
-            raise TableError(
-                f"{name} column {f!r}: a factor needs at least 2 levels among the included participants, "
-                f"found {list(declared)}; drop the factor from the terms or check include/exclude"
-            )
-        levels[f] = declared
+        levels[f] = _factor_levels(spec, f, values, rows, sidecar_levels, notes)
         out[f] = pd.Series(values, dtype=object)
     extra_factor_cols = [c for c in needed if c not in factors and c not in covariates]
     for c in extra_factor_cols:  # within-centring factors that are not model terms
         out[c] = pd.Series(data[c].tolist(), dtype=object)
     for c in covariates:
-        nums = []
-        for r, v in zip(rows, data[c].tolist(), strict=True):
-            x = _to_number(v)
-            if x is None:
-                raise TableError(
-                    f"{name} row {r}, column {c!r}: expected a number, found {v!r}; "
-                    "fix the value (use n/a for a missing value) or declare the column as a factor"
-                )
-            nums.append(x)
-        out[c] = np.asarray(nums, dtype=float)
+        out[c] = _numbers(name, c, rows, data[c].tolist())
     return Sample(data=out, exclusions=tuple(exclusions), levels=levels, source=spec.participants, notes=notes)

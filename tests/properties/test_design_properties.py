@@ -19,7 +19,8 @@ import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from groupmodel.model.checks import cell_counts_by_term, check_design, matrix_rank
+from groupmodel.engine.linalg import matrix_rank
+from groupmodel.model.checks import cell_counts_by_term, check_design
 from groupmodel.model.design import Design, build_design
 from groupmodel.model.spec import parse_term, spec_from_dict
 from groupmodel.model.table import select_sample

@@ -22,14 +22,8 @@ import pytest
 from patsy.contrasts import Poly, Sum, Treatment
 
 from groupmodel import build
-from groupmodel.model.checks import (
-    CONDITION_WARN,
-    cell_counts_by_term,
-    check_design,
-    condition_number,
-    matrix_rank,
-    variance_inflation,
-)
+from groupmodel.engine.linalg import condition_number, matrix_rank, variance_inflation
+from groupmodel.model.checks import CONDITION_WARN, cell_counts_by_term, check_design
 from groupmodel.model.coding import make_coding, orthogonal_polynomials
 from groupmodel.model.design import Design, build_design
 from groupmodel.model.spec import parse_term, spec_from_dict

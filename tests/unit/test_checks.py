@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 
 import groupmodel
-from groupmodel.model.checks import has_constant_column
+from groupmodel.engine.linalg import has_constant_column
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "example_study"
 

@@ -1,0 +1,144 @@
+"""Settings of corrected inference, as data: built from the spec, overridden by the command line, validated.
+
+:meth:`InferenceOptions.from_spec` reads the spec's ``inference`` object (already checked against the
+schema); :meth:`InferenceOptions.with_overrides` applies settings given elsewhere (the command line) with
+:func:`dataclasses.replace`.  Both check the combination of settings once, when it is complete.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, replace
+from pathlib import Path
+from typing import Any
+
+from ..errors import InputError
+
+
+@dataclass(frozen=True)
+class InferenceOptions:
+    """Settings of corrected inference (spec ``inference`` object, overridden by the command line).
+
+    Attributes
+    ----------
+    permutations : int
+        J, the rearrangements including the identity (0: parametric corrections only).  When fewer distinct
+        rearrangements exist, all of them are used and the result is exact.
+    seed : int
+        Seed of the random rearrangements (default 0, always recorded).
+    method : {"auto", "permutation", "sign_flip", "both"}
+        ``auto``: sign flips when a hypothesis's effect of interest is constant over rows (one-sample),
+        row permutation otherwise.
+    blocks : str or None
+        Table column of exchangeability blocks.
+    whole_blocks : bool
+        Permute blocks as wholes instead of rows within blocks.
+    tfce : bool
+        Threshold-free cluster enhancement (E = 0.5, H = 2) and its FWE p.
+    tfce_step : float or None
+        TFCE step dh in statistic units (default: the largest observed value / 100), recorded.
+    cluster_threshold : float or None
+        Cluster-forming threshold as a z value, for cluster-extent FWE.
+    connectivity : {6, 18, 26}
+        Voxel neighbourhood for TFCE and clusters (26: faces, edges and corners).
+    mesh : Path or None
+        Surface (GIFTI with a triangle array) giving vertex neighbours for surface data.
+    jobs : int or None
+        Worker processes for TFCE and cluster nulls (default: the cores the process may use); results
+        do not depend on it.
+    threads : int or None
+        Threads for the permutation products (default: the cores the process may use); results do
+        not depend on it.
+    """
+
+    permutations: int = 0
+    seed: int = 0
+    method: str = "auto"
+    blocks: str | None = None
+    whole_blocks: bool = False
+    tfce: bool = False
+    tfce_step: float | None = None
+    cluster_threshold: float | None = None
+    connectivity: int = 26
+    mesh: Path | None = None
+    jobs: int | None = None
+    threads: int | None = None
+
+    @property
+    def active(self) -> bool:
+        return self.permutations > 0
+
+    def as_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d["mesh"] = str(self.mesh) if self.mesh else None
+        return d
+
+    @classmethod
+    def parse(cls, spec_inference: Mapping[str, Any], base_dir: Path) -> InferenceOptions:
+        """The spec's ``inference`` object as options, not yet checked as a whole (the command line may
+        still complete it); a relative ``mesh`` is taken relative to ``base_dir``."""
+        return cls(**{k: v for k, v in spec_inference.items() if k != "mesh"},
+                   mesh=(base_dir / spec_inference["mesh"]) if spec_inference.get("mesh") else None)
+
+    @classmethod
+    def from_spec(cls, spec: Any, **overrides: Any) -> InferenceOptions:
+        """A spec's settings (``spec.inference_options``) with ``overrides`` applied, validated."""
+        return spec.inference_options.with_overrides(**overrides)
+
+    def with_overrides(self, **given: Any) -> InferenceOptions:
+        """These settings with ``given`` ones replaced (``dataclasses.replace``), validated."""
+        return replace(self, **given).validated()
+
+    def validated(self) -> InferenceOptions:
+        """Check the combination of settings; returns self.
+
+        Raises
+        ------
+        InputError
+            TFCE, clusters or blocks without permutations; ``jobs``/``threads`` below 1; whole blocks
+            without blocks.
+        """
+        if (self.tfce or self.cluster_threshold is not None or self.blocks or self.whole_blocks) \
+                and not self.active:
+            raise InputError(
+                "TFCE, cluster-extent and exchangeability blocks need permutations; found --permutations 0; "
+                "add --permutations J (e.g. 5000) or inference.permutations to the spec"
+            )
+        for option, value in (("--jobs", self.jobs), ("--threads", self.threads)):
+            if value is not None and value < 1:
+                raise InputError(f"{option} must be a whole number >= 1; got {value}; give e.g. {option} 2")
+        if self.whole_blocks and not self.blocks:
+            raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
+        return self
+
+    @classmethod
+    def resolve(cls, spec_inference: dict[str, Any], base_dir: Path, cli: Any | None = None) -> InferenceOptions:
+        """Spec settings, then command-line settings that were given (kept for callers that pass the
+        argparse namespace; new code uses :meth:`from_spec` / :meth:`with_overrides`)."""
+        return cls.parse(spec_inference, base_dir).with_overrides(**command_line_overrides(cli))
+
+
+def command_line_overrides(cli: Any | None) -> dict[str, Any]:
+    """The settings an argparse namespace gives (options left at their defaults give nothing)."""
+    given: dict[str, Any] = {}
+    if cli is None:
+        return given
+    if getattr(cli, "permutations", None):
+        given["permutations"] = cli.permutations
+    if getattr(cli, "seed", None) is not None:
+        given["seed"] = cli.seed
+    if getattr(cli, "method", "auto") != "auto":
+        given["method"] = cli.method
+    if getattr(cli, "blocks", None):
+        given["blocks"] = cli.blocks
+    if getattr(cli, "whole_blocks", False):
+        given["whole_blocks"] = True
+    if getattr(cli, "tfce", False):
+        given["tfce"] = True
+    if getattr(cli, "cluster_threshold", None) is not None:
+        given["cluster_threshold"] = cli.cluster_threshold
+    if getattr(cli, "jobs", None) is not None:
+        given["jobs"] = cli.jobs
+    if getattr(cli, "threads", None) is not None:
+        given["threads"] = cli.threads
+    return given

@@ -17,9 +17,10 @@ from typing import Any
 
 import numpy as np
 
+from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import GroupModelError
-from ..model.checks import dependent_columns
-from ..model.hypotheses import ESTIMABILITY_TOL, RowSpace, build_hypothesis, describe_cell_weights, independent_rows
+from ..model.hypotheses import build_hypothesis
+from ..model.statements import describe_cell_weights
 from .cells import HandDesign
 from .context import AuditContext
 from .read import AuditFinding, num_text

@@ -7,14 +7,8 @@ from __future__ import annotations
 import math
 from itertools import combinations
 
-from ..model.checks import (
-    CONDITION_WARN,
-    VIF_WARN,
-    condition_number,
-    has_constant_column,
-    matrix_rank,
-    variance_inflation,
-)
+from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation
+from ..model.checks import CONDITION_WARN, VIF_WARN
 from .context import AuditContext, file_findings
 from .contrasts import UNCENTRED_MEAN_SD, ContrastReport, dependents_in_words
 from .read import AuditFinding, listing, num_text

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-from ..model.checks import matrix_rank
+from ..engine.linalg import matrix_rank
 from ..model.design import Design
 from .context import AuditContext
 from .contrasts import ContrastReport, same_rows

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+from typing import Any
 
 from ..errors import OutputError
 from ..outputs.folder import OutputFolder
@@ -50,13 +51,12 @@ def _fit_table(args: argparse.Namespace) -> int:
 
 def _fit_images(args: argparse.Namespace) -> int:
     """Fit, print a summary, write the maps."""
-    from ..analysis.corrections import InferenceOptions
     from ..analysis.voxel_fit import fit_images
     from ..model.spec import load_spec
     from ..outputs.fit_files import write_voxel_fit
 
     spec = load_spec(args.spec)
-    options = InferenceOptions.resolve(spec.inference, spec.base_dir, args)
+    options = spec.inference_options.with_overrides(**inference_overrides(args))
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
                      inference=options)
     print_voxel_fit(fit, options)
@@ -100,3 +100,24 @@ def _split_names(text: str | None) -> list[str] | None:
 
 #: Sub-command name -> its function.
 COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check}
+
+
+def inference_overrides(args: argparse.Namespace) -> dict[str, Any]:
+    """The inference settings given on the command line (options left at their defaults give nothing)."""
+    given: dict[str, Any] = {}
+    if args.permutations:
+        given["permutations"] = args.permutations
+    if args.seed is not None:
+        given["seed"] = args.seed
+    if args.method != "auto":
+        given["method"] = args.method
+    if args.blocks:
+        given["blocks"] = args.blocks
+    if args.whole_blocks:
+        given["whole_blocks"] = True
+    if args.tfce:
+        given["tfce"] = True
+    for name in ("cluster_threshold", "jobs", "threads"):
+        if getattr(args, name) is not None:
+            given[name] = getattr(args, name)
+    return given

@@ -110,35 +110,3 @@ class InferenceOptions:
         if self.whole_blocks and not self.blocks:
             raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
         return self
-
-    @classmethod
-    def resolve(cls, spec_inference: dict[str, Any], base_dir: Path, cli: Any | None = None) -> InferenceOptions:
-        """Spec settings, then command-line settings that were given (kept for callers that pass the
-        argparse namespace; new code uses :meth:`from_spec` / :meth:`with_overrides`)."""
-        return cls.parse(spec_inference, base_dir).with_overrides(**command_line_overrides(cli))
-
-
-def command_line_overrides(cli: Any | None) -> dict[str, Any]:
-    """The settings an argparse namespace gives (options left at their defaults give nothing)."""
-    given: dict[str, Any] = {}
-    if cli is None:
-        return given
-    if getattr(cli, "permutations", None):
-        given["permutations"] = cli.permutations
-    if getattr(cli, "seed", None) is not None:
-        given["seed"] = cli.seed
-    if getattr(cli, "method", "auto") != "auto":
-        given["method"] = cli.method
-    if getattr(cli, "blocks", None):
-        given["blocks"] = cli.blocks
-    if getattr(cli, "whole_blocks", False):
-        given["whole_blocks"] = True
-    if getattr(cli, "tfce", False):
-        given["tfce"] = True
-    if getattr(cli, "cluster_threshold", None) is not None:
-        given["cluster_threshold"] = cli.cluster_threshold
-    if getattr(cli, "jobs", None) is not None:
-        given["jobs"] = cli.jobs
-    if getattr(cli, "threads", None) is not None:
-        given["threads"] = cli.threads
-    return given

@@ -10,7 +10,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from ..model.checks import cell_counts_by_term, condition_number, has_constant_column, matrix_rank, variance_inflation
+from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation
+from ..model.checks import cell_counts_by_term
 from .folder import OutputFolder
 from .provenance import provenance
 

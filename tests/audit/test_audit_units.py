@@ -196,7 +196,7 @@ def test_json_report_and_images(tmp_path: Path, capsys: pytest.CaptureFixture[st
 
 def test_fast_vif_equals_regression_vif() -> None:
     """The one-inverse VIF equals the regression form of the definition (common practice)."""
-    from groupmodel.model.checks import variance_inflation, variance_inflation_by_regression
+    from groupmodel.engine.linalg import variance_inflation, variance_inflation_by_regression
 
     rng = np.random.default_rng(3)
     a = rng.normal(size=40)

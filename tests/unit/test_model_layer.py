@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 import groupmodel
+from groupmodel.cli.commands import inference_overrides
 from groupmodel.errors import InputError
 from groupmodel.model.design import Design
 from groupmodel.model.hypotheses import BUILDERS, At, CellWeights, build_hypotheses, register
@@ -65,7 +66,7 @@ def test_options_from_spec_and_overrides() -> None:
     assert (opts.permutations, opts.tfce, opts.seed) == (100, True, 4) and base.permutations == 0
     cli = argparse.Namespace(permutations=100, seed=4, method="auto", blocks=None, whole_blocks=False, tfce=True,
                              cluster_threshold=None, jobs=None, threads=None)
-    assert InferenceOptions.resolve(spec.inference, spec.base_dir, cli) == opts
+    assert spec.inference_options.with_overrides(**inference_overrides(cli)) == opts
     with pytest.raises(InputError, match="need permutations"):
         base.with_overrides(tfce=True)
     with pytest.raises(InputError, match="--whole-blocks needs --blocks"):

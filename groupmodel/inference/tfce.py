@@ -349,155 +349,253 @@ def tfce(
     K = int(np.abs(levels).max()) if n else 0
     if K == 0:
         return out
+    order = _entering_order(levels, K)
+    pairs = _level_pairs(adjacency, order, levels, two_sided)
+    S = _prefix_weights(K, dh, H, rule)
+    forest = _Forest(n, K)
+    for k in range(K, 0, -1):
+        if order.row_hi[k] == order.row_lo[k]:
+            continue
+        new = order.act[order.row_lo[k] : order.row_hi[k]]
+        rows, roots_of, roots = _touched_roots(forest, pairs, k)
+        lab_new, lab_roots = _batch_union(forest, order.act, pairs, k, new, rows, roots_of, roots)
+        _merge(forest, k, new, roots, lab_new, lab_roots, S, E)
+    out = _element_values(forest, order.act, S, E, K)
+    if two_sided:
+        np.negative(out, out=out, where=order.signed[:n] < 0)
+    return out
+
+
+@dataclass(frozen=True)
+class _Order:
+    """Active elements in entering order: level descending, element index ascending within a level.
+
+    Attributes
+    ----------
+    signed : ndarray of int16 or int32, shape (n + 1,)
+        Signed level of each element; slot n is the sentinel that pads the neighbour table (0).
+    act, alev : ndarray
+        Active elements in entering order, and their absolute levels.
+    row_lo, row_hi : ndarray of int64, shape (K + 2,)
+        Rows of level k occupy ``act[row_lo[k]:row_hi[k]]``.
+    """
+
+    signed: np.ndarray
+    act: np.ndarray
+    alev: np.ndarray
+    row_lo: np.ndarray
+    row_hi: np.ndarray
+
+
+def _entering_order(levels: np.ndarray, K: int) -> _Order:
+    n = levels.size
     ltype = np.int16 if K < np.iinfo(np.int16).max else np.int32
     signed = np.zeros(n + 1, dtype=ltype)  # slot n: the sentinel that pads the neighbour table
     signed[:n] = levels
-    S = _prefix_weights(K, dh, H, rule)
-
-    # Entering order: level descending, element index ascending within a level.
     absolute = np.abs(signed[:n])
     active = np.flatnonzero(absolute)
     alev = absolute[active]
     order = np.argsort(-alev, kind="stable")
     act, alev = active[order], alev[order]
     counts = np.bincount(alev, minlength=K + 1)
-    # Rows of level k occupy act[row_lo[k]:row_hi[k]].
     row_hi = np.zeros(K + 2, dtype=np.int64)
     row_hi[1 : K + 1] = np.cumsum(counts[:0:-1])[::-1]
     row_lo = np.zeros(K + 2, dtype=np.int64)
     row_lo[1 : K + 1] = row_hi[1 : K + 1] - counts[1:]
+    return _Order(signed, act, alev, row_lo, row_hi)
 
-    # All neighbourhoods at once.  Relative to its row's sign, a neighbour is "old" (in an existing
-    # component) if its level is higher, and "new" if equal; an equal-level pair is kept once.
-    # An old neighbour that touches another old neighbour is already in the same component (their
-    # edge became active at a higher level), so one neighbour per touching group is enough.
+
+@dataclass(frozen=True)
+class _Pairs:
+    """The old and new neighbour pairs of every entering element, and where each level's pairs lie.
+
+    ``old_row``/``old_nb`` and ``new_row``/``new_nb`` as returned by :func:`_table_pairs`; ``row_start``
+    marks where a row's run of old neighbours starts (for de-duplicating (row, root) pairs);
+    ``old_lo[k]:old_hi[k]`` and ``new_lo[k]:new_hi[k]`` are the pairs of level k.
+    """
+
+    old_row: np.ndarray
+    old_nb: np.ndarray
+    new_row: np.ndarray
+    new_nb: np.ndarray
+    row_start: np.ndarray
+    old_lo: np.ndarray
+    old_hi: np.ndarray
+    new_lo: np.ndarray
+    new_hi: np.ndarray
+
+
+def _level_pairs(adjacency: Adjacency, order: _Order, levels: np.ndarray, two_sided: bool) -> _Pairs:
+    """All neighbourhoods at once.
+
+    Relative to its row's sign, a neighbour is "old" (in an existing component) if its level is higher,
+    and "new" if equal; an equal-level pair is kept once.  An old neighbour that touches another old
+    neighbour is already in the same component (their edge became active at a higher level), so one
+    neighbour per touching group is enough.
+    """
+    n = adjacency.n
     grid = adjacency._cache.get("grid")
     if grid is not None:
-        level_grid = np.zeros(grid.size, dtype=ltype)
+        level_grid = np.zeros(grid.size, dtype=order.signed.dtype)
         level_grid[grid.gindex] = levels
-        old_row, old_nb, new_row, new_nb = _grid_pairs(grid, level_grid, signed[:n], act)
+        old_row, old_nb, new_row, new_nb = _grid_pairs(grid, level_grid, order.signed[:n], order.act)
     else:
-        old_row, old_nb, new_row, new_nb = _table_pairs(adjacency, signed, act, alev, two_sided)
-    # Where a row's run of old neighbours starts (for de-duplicating (row, root) pairs below).
+        old_row, old_nb, new_row, new_nb = _table_pairs(adjacency, order.signed, order.act, order.alev, two_sided)
     row_start = np.ones(old_row.size, dtype=bool)
     np.not_equal(old_row[1:], old_row[:-1], out=row_start[1:])
-    old_lo = np.searchsorted(old_row, row_lo)
-    old_hi = np.searchsorted(old_row, row_hi)
-    new_lo = np.searchsorted(new_row, row_lo)
-    new_hi = np.searchsorted(new_row, row_hi)
+    return _Pairs(
+        old_row, old_nb, new_row, new_nb, row_start,
+        np.searchsorted(old_row, order.row_lo), np.searchsorted(old_row, order.row_hi),
+        np.searchsorted(new_row, order.row_lo), np.searchsorted(new_row, order.row_hi),
+    )
 
-    # Union-find state, indexed by element (slot n unused).  A root is one of its elements.
-    ident = np.arange(n + 1, dtype=np.intp)
-    up = ident.copy()  # absorbed root -> its absorber or a later root of the same component
-    lab = ident.copy()  # scratch labels of one level's batch union (restored after each level)
-    slot = np.zeros(n + 1, dtype=np.intp)  # scratch
-    best = np.zeros(n + 1, dtype=np.int64)  # scratch
-    leaf = ident.copy()  # root the element joined (itself until it enters)
-    offset = np.zeros(n + 1)  # that root's accumulator when the element joined
-    acc = np.zeros(n + 1)  # lazy accumulators of roots
-    size = np.zeros(n + 1)
-    last = np.zeros(n + 1, dtype=np.int64)  # level of the last accumulator update
-    base = np.zeros(n + 1)  # absorber's accumulator at the absorption
-    absorber = np.full(n + 1, -1, dtype=np.intp)
-    absorbed_at: list[tuple[np.ndarray, np.ndarray] | None] = [None] * (K + 1)
-    n1 = np.int64(n + 1)
 
-    for k in range(K, 0, -1):
-        if row_hi[k] == row_lo[k]:
-            continue
-        new = act[row_lo[k] : row_hi[k]]
-        o0, o1 = old_lo[k], old_hi[k]
-        rows = old_row[o0:o1]
-        roots_of = leaf[old_nb[o0:o1]]
-        if roots_of.size:
-            # Keep one entry per (row, recorded root): neighbours of one element mostly share it.
-            keep = row_start[o0:o1].copy()
+class _Forest:
+    """Union-find state, indexed by element (slot n unused).  A root is one of its elements."""
+
+    def __init__(self, n: int, K: int) -> None:
+        ident = np.arange(n + 1, dtype=np.intp)
+        self.up = ident.copy()  # absorbed root -> its absorber or a later root of the same component
+        self.lab = ident.copy()  # scratch labels of one level's batch union (restored after each level)
+        self.slot = np.zeros(n + 1, dtype=np.intp)  # scratch
+        self.best = np.zeros(n + 1, dtype=np.int64)  # scratch
+        self.leaf = ident.copy()  # root the element joined (itself until it enters)
+        self.offset = np.zeros(n + 1)  # that root's accumulator when the element joined
+        self.acc = np.zeros(n + 1)  # lazy accumulators of roots
+        self.size = np.zeros(n + 1)
+        self.last = np.zeros(n + 1, dtype=np.int64)  # level of the last accumulator update
+        self.base = np.zeros(n + 1)  # absorber's accumulator at the absorption
+        self.absorbed_at: list[tuple[np.ndarray, np.ndarray] | None] = [None] * (K + 1)
+        self.n1 = np.int64(n + 1)
+
+
+def _touched_roots(f: _Forest, pairs: _Pairs, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The current roots the old neighbours of level k belong to: (row, root) pairs, and the distinct roots."""
+    up, slot = f.up, f.slot
+    o0, o1 = pairs.old_lo[k], pairs.old_hi[k]
+    rows = pairs.old_row[o0:o1]
+    roots_of = f.leaf[pairs.old_nb[o0:o1]]
+    if roots_of.size:
+        # Keep one entry per (row, recorded root): neighbours of one element mostly share it.
+        keep = pairs.row_start[o0:o1].copy()
+        keep[1:] |= roots_of[1:] != roots_of[:-1]
+        rows, roots_of = rows[keep], roots_of[keep]
+        # Follow absorptions to the current roots, then compress the paths looked up.
+        nxt = up[roots_of]
+        stale = (nxt != roots_of).nonzero()[0]
+        if stale.size:
+            looked_up, recorded = stale, roots_of[stale]
+            while stale.size:
+                roots_of[stale] = nxt[stale]
+                nxt[stale] = up[nxt[stale]]
+                stale = stale[nxt[stale] != roots_of[stale]]
+            up[recorded] = roots_of[looked_up]
+            # Absorbed roots recorded by different neighbours now coincide: de-duplicate again.
+            keep = pairs.row_start[o0:o1][keep]
             keep[1:] |= roots_of[1:] != roots_of[:-1]
             rows, roots_of = rows[keep], roots_of[keep]
-            # Follow absorptions to the current roots, then compress the paths looked up.
-            nxt = up[roots_of]
-            stale = (nxt != roots_of).nonzero()[0]
-            if stale.size:
-                looked_up, recorded = stale, roots_of[stale]
-                while stale.size:
-                    roots_of[stale] = nxt[stale]
-                    nxt[stale] = up[nxt[stale]]
-                    stale = stale[nxt[stale] != roots_of[stale]]
-                up[recorded] = roots_of[looked_up]
-                # Absorbed roots recorded by different neighbours now coincide: de-duplicate again.
-                keep = row_start[o0:o1][keep]
-                keep[1:] |= roots_of[1:] != roots_of[:-1]
-                rows, roots_of = rows[keep], roots_of[keep]
-        # Distinct roots touched at this level.
-        pos = np.arange(roots_of.size, dtype=np.intp)
-        slot[roots_of] = pos
-        roots = roots_of[slot[roots_of] == pos]
+    # Distinct roots touched at this level.
+    pos = np.arange(roots_of.size, dtype=np.intp)
+    slot[roots_of] = pos
+    roots = roots_of[slot[roots_of] == pos]
+    return rows, roots_of, roots
 
-        # Batch union: hook each entering element to one root it touches, then resolve the rest
-        # (elements touching several roots, and entering elements touching each other).
-        a_old = act[rows]
-        lab[a_old] = roots_of
-        n0, n1_ = new_lo[k], new_hi[k]
-        a = np.concatenate([a_old, act[new_row[n0:n1_]]])
-        b = np.concatenate([roots_of, new_nb[n0:n1_]])
-        nodes = np.concatenate([new, roots])
+
+def _batch_union(
+    f: _Forest,
+    act: np.ndarray,
+    pairs: _Pairs,
+    k: int,
+    new: np.ndarray,
+    rows: np.ndarray,
+    roots_of: np.ndarray,
+    roots: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Component labels of the entering elements and of the touched roots after the unions of level k.
+
+    Each entering element is hooked to one root it touches, then the rest (elements touching several
+    roots, and entering elements touching each other) is resolved by min-label hooking with pointer jumping.
+    """
+    lab = f.lab
+    a_old = act[rows]
+    lab[a_old] = roots_of
+    n0, n1_ = pairs.new_lo[k], pairs.new_hi[k]
+    a = np.concatenate([a_old, act[pairs.new_row[n0:n1_]]])
+    b = np.concatenate([roots_of, pairs.new_nb[n0:n1_]])
+    nodes = np.concatenate([new, roots])
+    la, lb = lab[a], lab[b]
+    cross = (la != lb).nonzero()[0]
+    while cross.size:
+        a, b, la, lb = a[cross], b[cross], la[cross], lb[cross]
+        np.minimum.at(lab, np.maximum(la, lb), np.minimum(la, lb))
+        while True:  # pointer jumping until every node points at a root
+            ln = lab[nodes]
+            lln = lab[ln]
+            if (ln == lln).all():
+                break
+            lab[nodes] = lln
         la, lb = lab[a], lab[b]
         cross = (la != lb).nonzero()[0]
-        while cross.size:
-            a, b, la, lb = a[cross], b[cross], la[cross], lb[cross]
-            np.minimum.at(lab, np.maximum(la, lb), np.minimum(la, lb))
-            while True:  # pointer jumping until every node points at a root
-                ln = lab[nodes]
-                lln = lab[ln]
-                if (ln == lln).all():
-                    break
-                lab[nodes] = lln
-            la, lb = lab[a], lab[b]
-            cross = (la != lb).nonzero()[0]
-        lab_new = lab[new]
-        lab_roots = lab[roots]
-        lab[nodes] = nodes
+    lab_new = lab[new]
+    lab_roots = lab[roots]
+    lab[nodes] = nodes
+    return lab_new, lab_roots
 
-        # Per component: the continuing root is its largest old root (union by size), else the
-        # entering element that labels it.
-        slot[lab_new] = lab_new
-        if roots.size:
-            acc[roots] += size[roots] ** E * (S[last[roots]] - S[k])
-            key = size[roots].astype(np.int64) * n1 + roots
-            best[lab_roots] = -1
-            np.maximum.at(best, lab_roots, key)
-            keeper = (best[lab_roots] % n1).astype(np.intp)
-            slot[lab_roots] = keeper
-            gone = (roots != keeper).nonzero()[0]
-            if gone.size:
-                g, t = roots[gone], keeper[gone]
-                np.add.at(size, t, size[g])
-                up[g] = t
-                absorber[g] = t
-                base[g] = acc[t]
-                absorbed_at[k] = (g, t)
-            last[keeper] = k
-        joined = slot[lab_new]
-        np.add.at(size, joined, 1.0)
-        last[joined] = k
-        leaf[new] = joined
-        offset[new] = acc[joined]  # 0 for roots born at this level
 
+def _merge(
+    f: _Forest,
+    k: int,
+    new: np.ndarray,
+    roots: np.ndarray,
+    lab_new: np.ndarray,
+    lab_roots: np.ndarray,
+    S: np.ndarray,
+    E: float,
+) -> None:
+    """Per component: the continuing root is its largest old root (union by size), else the entering
+    element that labels it; accumulators brought up to date, absorptions and joins recorded."""
+    slot, size, acc, last = f.slot, f.size, f.acc, f.last
+    slot[lab_new] = lab_new
+    if roots.size:
+        acc[roots] += size[roots] ** E * (S[last[roots]] - S[k])
+        key = size[roots].astype(np.int64) * f.n1 + roots
+        f.best[lab_roots] = -1
+        np.maximum.at(f.best, lab_roots, key)
+        keeper = (f.best[lab_roots] % f.n1).astype(np.intp)
+        slot[lab_roots] = keeper
+        gone = (roots != keeper).nonzero()[0]
+        if gone.size:
+            g, t = roots[gone], keeper[gone]
+            np.add.at(size, t, size[g])
+            f.up[g] = t
+            f.base[g] = acc[t]
+            f.absorbed_at[k] = (g, t)
+        last[keeper] = k
+    joined = slot[lab_new]
+    np.add.at(size, joined, 1.0)
+    last[joined] = k
+    f.leaf[new] = joined
+    f.offset[new] = acc[joined]  # 0 for roots born at this level
+
+
+def _element_values(f: _Forest, act: np.ndarray, S: np.ndarray, E: float, K: int) -> np.ndarray:
+    """Every element's TFCE from the final accumulators, offsets and inherited contributions."""
+    n = f.leaf.size - 1
+    acc, size = f.acc, f.size
     # Final update of the surviving roots down to level 0.
-    alive = act[(up[act] == act) & (size[act] > 0)]
-    acc[alive] += size[alive] ** E * (S[last[alive]] - S[0])
+    alive = act[(f.up[act] == act) & (size[act] > 0)]
+    acc[alive] += size[alive] ** E * (S[f.last[alive]] - S[0])
     # Contributions inherited through absorptions, from the latest (lowest level) upward.
     inherited = np.zeros(n + 1)
     for k in range(1, K + 1):
-        if absorbed_at[k] is not None:
-            g, t = absorbed_at[k]
-            inherited[g] = inherited[t] + acc[t] - base[g]
+        absorbed = f.absorbed_at[k]
+        if absorbed is not None:
+            g, t = absorbed
+            inherited[g] = inherited[t] + acc[t] - f.base[g]
     # All elements at once, in element order (reads walk forward through memory); an inactive
     # element is its own leaf with no accumulator, offset or inheritance, so it gets 0.
-    joined = leaf[:n]
+    joined = f.leaf[:n]
     out = acc[joined]
-    out -= offset[:n]
+    out -= f.offset[:n]
     out += inherited[joined]
-    if two_sided:
-        np.negative(out, out=out, where=signed[:n] < 0)
     return out

@@ -216,91 +216,127 @@ def _grid_pairs(
         As :func:`_table_pairs`.
     """
     n = signed.size
-    offsets = grid.offsets
-    D = offsets.size
-    lo = -int(offsets.min())
-    hi = int(offsets.max())
-    # level_grid[g + offsets[c]] is shifted[c][g - lo]: a view per offset, no index arrays per column.
-    shifted = [level_grid[lo + int(o) : level_grid.size - hi + int(o)] for o in offsets]
-    positive = np.flatnonzero(offsets > 0)
-    ltype = signed.dtype
-    below = (np.left_shift(np.uint32(1), np.arange(D, dtype=np.uint32)) - np.uint32(1)).astype(np.uint32)
+    work = _GridWork.make(grid, level_grid, signed.dtype)
     parts: dict[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = {"old": [], "new": []}
     per = {"old": np.zeros(n, dtype=np.intp), "new": np.zeros(n, dtype=np.intp)}  # pairs per element
-    nl = np.empty((D, _ROW_BLOCK), dtype=ltype)
-    old = np.empty((D, _ROW_BLOCK), dtype=bool)
-    code = np.empty(_ROW_BLOCK, dtype=np.uint32)
-    scratch = np.empty(_ROW_BLOCK, dtype=np.uint32)
-    hit = np.empty(_ROW_BLOCK, dtype=bool)
-
-    def pack(bits: np.ndarray, out: np.ndarray) -> None:
-        """Bit c of out[e] = bits[c, e]."""
-        out.fill(0)
-        sw = scratch[: out.size]
-        for c in range(bits.shape[0]):
-            np.left_shift(bits[c], np.uint32(c), out=sw, dtype=np.uint32)
-            np.bitwise_or(out, sw, out=out)
-
-    def collect(kind: str, bits: np.ndarray, e0: int, cols: np.ndarray) -> None:
-        """Record the pairs marked in bits (C, w): element, rank among its pairs, neighbour."""
-        w = bits.shape[1]
-        cw = code[:w]
-        pack(bits, cw)
-        per[kind][e0 : e0 + w] = _popcount(cw)
-        # Pairs come in (column, element) order; an element's pairs are put back in column order
-        # by their rank among its set bits.
-        flat = bits.ravel().nonzero()[0]
-        col = flat // w
-        e_loc = flat - col * w
-        rank = _popcount(np.bitwise_and(cw[e_loc], below[col]))
-        centre = grid.gindex[e0 + e_loc]
-        parts[kind].append((e_loc + e0, rank, grid.element[centre + offsets[cols[col]]]))
-
-    every = np.arange(D)
     for e0 in range(0, n, _ROW_BLOCK):
         e1 = min(n, e0 + _ROW_BLOCK)
-        w = e1 - e0
-        g = grid.gindex[e0:e1] - lo
-        lev = signed[e0:e1]
-        own = np.abs(lev)
-        NL, OLD = nl[:, :w], old[:, :w]
-        for c in range(D):
-            np.take(shifted[c], g, out=NL[c])
-        # Relative to the element's sign; inactive elements (sign 0) get no pairs.
-        np.multiply(NL, np.sign(lev)[None, :], out=NL)
-        np.greater(NL, own[None, :], out=OLD)
-        # Skip an old neighbour when an earlier old neighbour (in path order) touches it: they are
-        # joined already.  The old pattern of each element as a bit mask, tested per column.
-        cw, sw, hw = code[:w], scratch[:w], hit[:w]
-        pack(OLD, cw)
-        for c in range(1, D):
-            np.bitwise_and(cw, grid.earlier[c], out=sw)
-            np.equal(sw, 0, out=hw)
-            np.logical_and(OLD[c], hw, out=OLD[c])
-        collect("old", OLD, e0, every)
-        # Equal-level pairs, each once: seen from the earlier element, i.e. through positive offsets.
-        eq = NL[positive] == own[None, :]
-        eq &= (own > 0)[None, :]
-        collect("new", eq, e0, positive)
+        old, new = _block_pairs(grid, work, signed, e0, e1)
+        for kind, (bits, cols) in (("old", old), ("new", new)):
+            pairs, per[kind][e0:e1] = _collect(grid, work, bits, e0, cols)
+            parts[kind].append(pairs)
     # Position of each element in entering order; move the pairs there, keeping each element's
     # pairs together and in column order (a counting scatter, no sort).
     position = np.empty(n, dtype=np.intp)
     position[act] = np.arange(act.size)
-    result = []
-    for kind in ("old", "new"):
-        el = np.concatenate([p[0] for p in parts[kind]])
-        per_act = per[kind][act]
-        first = np.zeros(n, dtype=np.intp)
-        first[act] = np.cumsum(per_act) - per_act  # start of each element's pairs in entering order
-        dest = first[el]
-        dest += np.concatenate([p[1] for p in parts[kind]])
-        row = np.empty(el.size, dtype=np.intp)
-        row[dest] = position[el]
-        nb = np.empty(el.size, dtype=np.intp)
-        nb[dest] = np.concatenate([p[2] for p in parts[kind]])
-        result += [row, nb]
-    old_row, old_nb, new_row, new_nb = result
+    old_row, old_nb = _entering_rows(parts["old"], per["old"], act, position)
+    new_row, new_nb = _entering_rows(parts["new"], per["new"], act, position)
     return old_row, old_nb, new_row, new_nb
+
+
+@dataclass(frozen=True)
+class _GridWork:
+    """Views and work arrays of one scan of :func:`_grid_pairs` over blocks of elements."""
+
+    shifted: list[np.ndarray]  # level_grid[g + offsets[c]] is shifted[c][g - lo]
+    lo: int
+    positive: np.ndarray  # columns of the positive offsets
+    every: np.ndarray  # all columns
+    below: np.ndarray  # below[c]: the bits of the columns before c
+    nl: np.ndarray
+    old: np.ndarray
+    code: np.ndarray
+    scratch: np.ndarray
+    hit: np.ndarray
+
+    @classmethod
+    def make(cls, grid: _GridLayout, level_grid: np.ndarray, ltype: np.dtype) -> _GridWork:
+        offsets = grid.offsets
+        D = offsets.size
+        lo = -int(offsets.min())
+        hi = int(offsets.max())
+        # A view per offset, no index arrays per column.
+        shifted = [level_grid[lo + int(o) : level_grid.size - hi + int(o)] for o in offsets]
+        below = (np.left_shift(np.uint32(1), np.arange(D, dtype=np.uint32)) - np.uint32(1)).astype(np.uint32)
+        return cls(
+            shifted, lo, np.flatnonzero(offsets > 0), np.arange(D), below,
+            np.empty((D, _ROW_BLOCK), dtype=ltype), np.empty((D, _ROW_BLOCK), dtype=bool),
+            np.empty(_ROW_BLOCK, dtype=np.uint32), np.empty(_ROW_BLOCK, dtype=np.uint32),
+            np.empty(_ROW_BLOCK, dtype=bool),
+        )
+
+
+def _pack(bits: np.ndarray, out: np.ndarray, scratch: np.ndarray) -> None:
+    """Bit c of out[e] = bits[c, e]."""
+    out.fill(0)
+    sw = scratch[: out.size]
+    for c in range(bits.shape[0]):
+        np.left_shift(bits[c], np.uint32(c), out=sw, dtype=np.uint32)
+        np.bitwise_or(out, sw, out=out)
+
+
+def _block_pairs(
+    grid: _GridLayout, work: _GridWork, signed: np.ndarray, e0: int, e1: int
+) -> tuple[tuple[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]:
+    """The old and the equal-level ("new") pairs of elements [e0, e1), as (bits (C, w), columns) each."""
+    w = e1 - e0
+    g = grid.gindex[e0:e1] - work.lo
+    lev = signed[e0:e1]
+    own = np.abs(lev)
+    NL, OLD = work.nl[:, :w], work.old[:, :w]
+    for c in range(len(work.shifted)):
+        np.take(work.shifted[c], g, out=NL[c])
+    # Relative to the element's sign; inactive elements (sign 0) get no pairs.
+    np.multiply(NL, np.sign(lev)[None, :], out=NL)
+    np.greater(NL, own[None, :], out=OLD)
+    # Skip an old neighbour when an earlier old neighbour (in path order) touches it: they are
+    # joined already.  The old pattern of each element as a bit mask, tested per column.
+    cw, sw, hw = work.code[:w], work.scratch[:w], work.hit[:w]
+    _pack(OLD, cw, work.scratch)
+    for c in range(1, len(work.shifted)):
+        np.bitwise_and(cw, grid.earlier[c], out=sw)
+        np.equal(sw, 0, out=hw)
+        np.logical_and(OLD[c], hw, out=OLD[c])
+    # Equal-level pairs, each once: seen from the earlier element, i.e. through positive offsets.
+    eq = NL[work.positive] == own[None, :]
+    eq &= (own > 0)[None, :]
+    return (OLD, work.every), (eq, work.positive)
+
+
+def _collect(
+    grid: _GridLayout, work: _GridWork, bits: np.ndarray, e0: int, cols: np.ndarray
+) -> tuple[tuple[np.ndarray, np.ndarray, np.ndarray], np.ndarray]:
+    """The pairs marked in bits (C, w): (element, rank among its pairs, neighbour), and pairs per element."""
+    w = bits.shape[1]
+    cw = work.code[:w]
+    _pack(bits, cw, work.scratch)
+    per = _popcount(cw)
+    # Pairs come in (column, element) order; an element's pairs are put back in column order
+    # by their rank among its set bits.
+    flat = bits.ravel().nonzero()[0]
+    col = flat // w
+    e_loc = flat - col * w
+    rank = _popcount(np.bitwise_and(cw[e_loc], work.below[col]))
+    centre = grid.gindex[e0 + e_loc]
+    return (e_loc + e0, rank, grid.element[centre + grid.offsets[cols[col]]]), per
+
+
+def _entering_rows(
+    parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]], per: np.ndarray, act: np.ndarray, position: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Rows (positions in entering order) and neighbours of the pairs, moved to entering order."""
+    n = per.size
+    el = np.concatenate([p[0] for p in parts])
+    per_act = per[act]
+    first = np.zeros(n, dtype=np.intp)
+    first[act] = np.cumsum(per_act) - per_act  # start of each element's pairs in entering order
+    dest = first[el]
+    dest += np.concatenate([p[1] for p in parts])
+    row = np.empty(el.size, dtype=np.intp)
+    row[dest] = position[el]
+    nb = np.empty(el.size, dtype=np.intp)
+    nb[dest] = np.concatenate([p[2] for p in parts])
+    return row, nb
 
 
 def tfce(

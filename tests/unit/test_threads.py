@@ -51,3 +51,15 @@ def test_available_cores_is_capped_by_the_quota(monkeypatch: pytest.MonkeyPatch)
     assert available_cores() == 8
     monkeypatch.setattr(cores, "cpu_quota", lambda: 0.2)
     assert available_cores() == 1
+
+
+def test_executors_return_results_in_order_and_hand_back_failures() -> None:
+    from groupmodel.runtime.executors import InlineExecutor, ThreadExecutor, thread_executor
+
+    assert isinstance(thread_executor(1), InlineExecutor)
+    for executor in (InlineExecutor(), ThreadExecutor(2)):
+        with executor:
+            assert executor.map(pow, [2, 3, 4], [3, 2, 1]) == [8, 9, 4]
+            failed = executor.submit(divmod, 1, 0)
+            with pytest.raises(ZeroDivisionError):
+                failed.result()

@@ -44,17 +44,15 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 from scipy import ndimage
 
-from groupmodel.inference.driver import (
-    available_cores,
-    plan_contrast,
-    residualise,
-    run_permutations,
-    single_threaded_blas,
-    stack_rows,
-    tile_width,
-)
+from groupmodel.inference.driver import run_permutations
+from groupmodel.inference.freedman_lane import plan_contrast, residualise, stack_rows
+from groupmodel.inference.graph import grid_adjacency
+from groupmodel.inference.kernel import tile_width
 from groupmodel.inference.rearrangements import permutation_set
-from groupmodel.inference.tfce import TfceParams, grid_adjacency, tfce
+from groupmodel.inference.results import TfceResult
+from groupmodel.inference.settings import ContrastTest, Execution, MapSettings, Rearrangements
+from groupmodel.inference.tfce import TfceParams, tfce
+from groupmodel.runtime.cores import available_cores, single_threaded_blas
 
 SEED = 20240606
 FULL = {"shape": (91, 109, 91), "semi_axes": (36.0, 45.0, 34.0), "n": 100}
@@ -178,7 +176,7 @@ def main() -> None:
 
     (fb, fb_cpu, how_b), (fp, _, _) = product_floor(A, W), product_floor(full_rows, W)
     t0, c0 = time.perf_counter(), time.process_time()
-    res = run_permutations(X, L, Y, n_perm=J, seed=1)
+    res = run_permutations(ContrastTest(X, L), Y, Rearrangements(n_perm=J, seed=1))
     engine, engine_cpu = (time.perf_counter() - t0) / J, (time.process_time() - c0) / J
     fa, fa_cpu, how_a = product_floor(A, W)
     floor, floor_cpu = (fb + fa) / 200, (fb_cpu + fa_cpu) / 200
@@ -209,14 +207,15 @@ def main() -> None:
           f"x 5000 = {5000 * per_map / 60:.1f} CPU-minutes")
     # Fixed cost (worker start-up, observed map): a run with one batch of 2 rearrangements.
     t0 = time.perf_counter()
-    run_permutations(X, L, Y, n_perm=2, seed=1, adjacency=adj, tfce_params=TfceParams(), n_jobs=args.jobs)
+    with_tfce, jobs = MapSettings(adjacency=adj, tfce=TfceParams()), Execution(n_jobs=args.jobs)
+    run_permutations(ContrastTest(X, L), Y, Rearrangements(n_perm=2, seed=1), with_tfce, jobs)
     fixed = time.perf_counter() - t0
     t0 = time.perf_counter()
-    rt = run_permutations(X, L, Y, n_perm=JT, seed=1, adjacency=adj, tfce_params=TfceParams(), n_jobs=args.jobs)
+    rt = run_permutations(ContrastTest(X, L), Y, Rearrangements(n_perm=JT, seed=1), with_tfce, jobs)
     wall = time.perf_counter() - t0
     scaled = fixed + max(wall - fixed, 0.0) * 5000 / JT
     print(f"engine with TFCE, {JT} permutations, {args.jobs} worker processes: {wall:.1f} s wall, of which "
-          f"about {fixed:.1f} s fixed (start-up, observed map; dh {rt.tfce_params.dh:.4f})")
+          f"about {fixed:.1f} s fixed (start-up, observed map; dh {rt.whole_map(TfceResult).params.dh:.4f})")
     if JT >= 5000:
         print(f"   {JT} permutations measured: {wall / 60:.1f} minutes (goal for 5000: < 10)")
     elif wall > 2 * fixed:

@@ -60,7 +60,7 @@ def block_labels(model: Any, column: str) -> np.ndarray:
 
 def adjacency_for(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:
     """The neighbourhood graph over in-mask elements, for TFCE and clusters (None when not needed)."""
-    from ..inference.tfce import grid_adjacency, mesh_adjacency
+    from ..inference.graph import grid_adjacency, mesh_adjacency
 
     if not (options.tfce or options.cluster_threshold is not None):
         return None
@@ -115,8 +115,11 @@ def permutation_inference(
         Memory for the whole statistic maps that TFCE and cluster inference hold per batch of
         rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
     """
-    from ..inference.driver import BATCH_SIZE, available_cores, run_permutations, shared_workers, whole_map_batch
+    from ..inference.driver import run_permutations
+    from ..inference.settings import BATCH_SIZE, ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
     from ..inference.tfce import TfceParams
+    from ..inference.whole_maps import shared_workers
+    from ..runtime.cores import available_cores
 
     adjacency = adjacency_for(data.grid, data.mask, options)
     blocks = block_labels(model, options.blocks) if options.blocks else None
@@ -127,47 +130,59 @@ def permutation_inference(
     jobs = options.jobs if options.jobs is not None else available_cores()
     n_elements = int(data.data.shape[1])
     batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
+    rearrangements = Rearrangements(
+        n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
+        whole_blocks=options.whole_blocks, seed=options.seed,
+    )
+    map_settings = MapSettings(
+        adjacency, TfceParams(dh=options.tfce_step) if options.tfce else None, options.cluster_threshold
+    )
     with shared_workers(jobs, adjacency, whole_maps) as workers:
+        execution = Execution(
+            threads=options.threads, n_jobs=jobs, workers=workers, batch_size=batch, cache_bytes=cache_bytes,
+            chunk_size=chunk_voxels,
+        )
         for h in model.hypotheses.values():
             def report(done: int, total: int, _name: str = h.name) -> None:
                 if progress is not None:
                     progress(_name, done, total)
 
-            res = run_permutations(
-                model.design.matrix, h.weights, data.columns(), kind=h.test, tail=h.tail, name=h.name,
-                n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
-                whole_blocks=options.whole_blocks, seed=options.seed, chunk_size=chunk_voxels,
-                adjacency=adjacency, tfce_params=TfceParams(dh=options.tfce_step) if options.tfce else None,
-                cluster_z=options.cluster_threshold, n_jobs=jobs, threads=options.threads, workers=workers,
-                batch_size=batch, cache_bytes=cache_bytes, progress=report,
-            )
-            record = {
-                "method": _METHOD_NAMES.get(res.method, res.method),
-                "permutations": int(res.n_perm),
-                "possible_rearrangements": int(res.n_possible) if res.n_possible < 2**62 else float(res.n_possible),
-                "exhaustive": bool(res.exhaustive),
-                "seed": options.seed,
-                "blocks": options.blocks,
-                "whole_blocks": options.whole_blocks,
-                "nuisance_method": "Freedman-Lane",
-            }
-            maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
-            tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, data.grid)}
-            if res.tfce is not None:
-                maps["tfce"] = res.tfce
-                maps["p_tfce_fwe"] = res.p_tfce_fwe
-                assert res.tfce_params is not None
-                record["tfce"] = {"E": res.tfce_params.E, "H": res.tfce_params.H, "dh": res.tfce_params.dh,
-                                  "rule": res.tfce_params.rule, "connectivity": options.connectivity}
-                tables["tfce_fwe"] = _significant_table(res.stat, res.p_tfce_fwe, h, adjacency, ijk, data.grid)
-            if res.p_cluster_fwe is not None:
-                maps["p_cluster_fwe"] = res.p_cluster_fwe
-                record["cluster"] = {"z_threshold": res.cluster_z, "statistic_threshold": res.cluster_threshold,
-                                     "connectivity": options.connectivity}
-                if res.clusters is not None:
-                    tables["cluster_extent_fwe"] = _table(res.stat, res.clusters, res.cluster_p_fwe, ijk, data.grid)
-            out[h.name] = HypothesisInference(maps, record, tables)
+            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.tail, name=h.name)
+            res = run_permutations(test, data.columns(), rearrangements, map_settings, execution, progress=report)
+            out[h.name] = _hypothesis_inference(res, h, options, adjacency, ijk, data.grid)
     return out
+
+
+def _hypothesis_inference(res: Any, h: Any, options: InferenceOptions, adjacency: Any, ijk: np.ndarray | None,
+                          grid: Any) -> HypothesisInference:
+    """The maps, record and tables of one hypothesis's permutation result (TFCE, then clusters)."""
+    from ..inference.results import TfceResult
+
+    record = {
+        "method": _METHOD_NAMES.get(res.method, res.method),
+        "permutations": int(res.n_perm),
+        "possible_rearrangements": int(res.n_possible) if res.n_possible < 2**62 else float(res.n_possible),
+        "exhaustive": bool(res.exhaustive),
+        "seed": options.seed,
+        "blocks": options.blocks,
+        "whole_blocks": options.whole_blocks,
+        "nuisance_method": "Freedman-Lane",
+    }
+    maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
+    tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, grid)}
+    for part in res.whole_maps:
+        if isinstance(part, TfceResult):
+            maps["tfce"] = part.map
+            maps["p_tfce_fwe"] = part.p_fwe
+            record["tfce"] = {"E": part.params.E, "H": part.params.H, "dh": part.params.dh,
+                              "rule": part.params.rule, "connectivity": options.connectivity}
+            tables["tfce_fwe"] = _significant_table(res.stat, part.p_fwe, h, adjacency, ijk, grid)
+        else:
+            maps["p_cluster_fwe"] = part.p_fwe
+            record["cluster"] = {"z_threshold": part.z, "statistic_threshold": part.threshold,
+                                 "connectivity": options.connectivity}
+            tables["cluster_extent_fwe"] = _table(res.stat, part.clusters, part.cluster_p_fwe, ijk, grid)
+    return HypothesisInference(maps, record, tables)
 
 
 def _table(stat: np.ndarray, clusters: Any, p: Any, ijk: np.ndarray | None, grid: Any) -> pd.DataFrame:
@@ -182,7 +197,7 @@ def _significant_table(stat: np.ndarray, p: np.ndarray, h: Any, adjacency: Any, 
                        grid: Any) -> pd.DataFrame:
     """Clusters of elements with corrected p < TABLE_ALPHA; each cluster's p is its smallest p."""
     from ..inference.clusters import label_clusters
-    from ..inference.tfce import grid_adjacency
+    from ..inference.graph import grid_adjacency
 
     if adjacency is None:
         if grid.kind != "nifti":

@@ -340,6 +340,33 @@ def _random_flips(rng: np.random.Generator, n: int, J: int, groups: list[np.ndar
     return out
 
 
+def _all_rearrangements(
+    n: int, groups: list[np.ndarray], whole_blocks: bool, classes: np.ndarray, do_perm: bool, do_flip: bool
+) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Every distinct rearrangement (permutations, flips, or their Cartesian product), the identity first."""
+    perms = _enumerate_perms(n, groups, whole_blocks, classes) if do_perm else None
+    flips = _enumerate_flips(n, groups, whole_blocks) if do_flip else None
+    if perms is not None and flips is not None:
+        # Cartesian product, identity (first perm, all-plus flips) first.
+        P, F = perms.shape[0], flips.shape[0]
+        perms = np.repeat(perms, F, axis=0)
+        flips = np.tile(flips, (P, 1))
+    return perms, flips
+
+
+def _random_rearrangements(
+    rng: np.random.Generator, n: int, J: int, groups: list[np.ndarray], whole_blocks: bool, do_perm: bool,
+    do_flip: bool,
+) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The identity, then J random rearrangements (the permutations drawn before the flips)."""
+    perms = flips = None
+    if do_perm:
+        perms = np.vstack([np.arange(n)[None, :], _random_perms(rng, n, J, groups, whole_blocks)])
+    if do_flip:
+        flips = np.vstack([np.ones((1, n), np.int8), _random_flips(rng, n, J, groups, whole_blocks)])
+    return perms, flips
+
+
 def permutation_set(
     n: int,
     n_perm: int,
@@ -392,22 +419,11 @@ def permutation_set(
     do_perm = method in ("permute", "both")
     do_flip = method in ("flip", "both")
     if total <= n_perm:
-        perms = _enumerate_perms(n, groups, whole_blocks, classes) if do_perm else None
-        flips = _enumerate_flips(n, groups, whole_blocks) if do_flip else None
-        if perms is not None and flips is not None:
-            # Cartesian product, identity (first perm, all-plus flips) first.
-            P, F = perms.shape[0], flips.shape[0]
-            perms = np.repeat(perms, F, axis=0)
-            flips = np.tile(flips, (P, 1))
+        perms, flips = _all_rearrangements(n, groups, whole_blocks, classes, do_perm, do_flip)
         exhaustive, used_seed = True, None
     else:
         rng = np.random.default_rng(seed)
-        J = n_perm - 1
-        perms = flips = None
-        if do_perm:
-            perms = np.vstack([np.arange(n)[None, :], _random_perms(rng, n, J, groups, whole_blocks)])
-        if do_flip:
-            flips = np.vstack([np.ones((1, n), np.int8), _random_flips(rng, n, J, groups, whole_blocks)])
+        perms, flips = _random_rearrangements(rng, n, n_perm - 1, groups, whole_blocks, do_perm, do_flip)
         exhaustive, used_seed = False, int(seed)
     return PermutationSet(
         perm=None if perms is None else perms.astype(np.int32),

@@ -42,363 +42,28 @@ One pass over the elements sorted by level (highest first) with union-find:
   its offset, plus, along the chain of absorptions, each absorber's final accumulator minus the
   base recorded when it absorbed.
 
-Connectivity is a sparse adjacency over the in-mask elements (:class:`Adjacency`), which serves 3-D
-grids (:func:`grid_adjacency`, 6/18/26 neighbours) and triangle meshes (:func:`mesh_adjacency`).
+Connectivity is a sparse adjacency over the in-mask elements (:class:`Adjacency`, in
+:mod:`groupmodel.inference.graph`), which serves 3-D grids (:func:`grid_adjacency`, 6/18/26 neighbours)
+and triangle meshes (:func:`mesh_adjacency`).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-from scipy import sparse
 
 from ..errors import InputError
+from .graph import Adjacency
+from .tfce_pairs import grid_pairs, table_pairs
 
-__all__ = [
-    "Adjacency",
-    "TfceParams",
-    "grid_adjacency",
-    "mesh_adjacency",
-    "tfce",
-    "tfce_levels",
-]
+__all__ = ["Adjacency", "TfceParams", "tfce", "tfce_levels"]
 
 Rule = Literal["right", "midpoint"]
 
 #: Values within this fraction of a step below a threshold count as reaching it (see module doc).
 _LEVEL_SLACK = 1e-9
-#: Elements whose neighbourhoods TFCE examines at a time.
-_ROW_BLOCK = 16384
-
-
-@dataclass(frozen=True)
-class Adjacency:
-    """Undirected neighbourhood graph over ``n`` in-mask elements (voxels or vertices).
-
-    Attributes
-    ----------
-    n : int
-        Number of elements; element ``i`` is the i-th in-mask voxel (C order) or vertex.
-    u, v : ndarray of int32, shape (n_edges,)
-        Each undirected edge once, with ``u < v``.
-    """
-
-    n: int
-    u: np.ndarray
-    v: np.ndarray
-    _cache: dict = field(default_factory=dict, repr=False, compare=False)
-
-    @classmethod
-    def from_edges(cls, n: int, u: np.ndarray, v: np.ndarray) -> Adjacency:
-        """Build from any list of edges (order, direction and duplicates do not matter).
-
-        Parameters
-        ----------
-        n : int
-            Number of elements.
-        u, v : array_like of int, shape (n_edges,)
-            Edge endpoints in ``[0, n)``; self-loops are dropped.
-        """
-        u = np.asarray(u, dtype=np.int64).ravel()
-        v = np.asarray(v, dtype=np.int64).ravel()
-        if u.shape != v.shape:
-            raise InputError(
-                f"edge lists must have equal length; got {u.size} and {v.size} "
-                "(in Adjacency.from_edges); pass one endpoint array per side"
-            )
-        if u.size and (min(u.min(), v.min()) < 0 or max(u.max(), v.max()) >= n):
-            raise InputError(
-                f"edge endpoints must lie in [0, {n}); got values from {min(u.min(), v.min())} "
-                f"to {max(u.max(), v.max())} (in Adjacency.from_edges); index in-mask elements from 0"
-            )
-        lo, hi = np.minimum(u, v), np.maximum(u, v)
-        keep = lo != hi
-        key = np.unique(lo[keep] * np.int64(n) + hi[keep])
-        return cls(int(n), (key // n).astype(np.int32), (key % n).astype(np.int32))
-
-    @classmethod
-    def from_sparse(cls, matrix: sparse.spmatrix | sparse.sparray) -> Adjacency:
-        """Build from a square sparse matrix whose nonzeros mark neighbours (symmetrised)."""
-        coo = sparse.coo_matrix(matrix)
-        if coo.shape[0] != coo.shape[1]:
-            raise InputError(
-                f"an adjacency matrix must be square; got shape {coo.shape} "
-                "(in Adjacency.from_sparse); pass an (n, n) matrix over in-mask elements"
-            )
-        return cls.from_edges(coo.shape[0], coo.row, coo.col)
-
-    @property
-    def n_edges(self) -> int:
-        """Number of undirected edges."""
-        return int(self.u.size)
-
-    def csr(self) -> sparse.csr_matrix:
-        """Symmetric CSR matrix (int8 ones, sorted indices) of the graph, built once and cached."""
-        if "csr" not in self._cache:
-            ones = np.ones(2 * self.u.size, dtype=np.int8)
-            rows = np.concatenate([self.u, self.v])
-            cols = np.concatenate([self.v, self.u])
-            mat = sparse.csr_matrix((ones, (rows, cols)), shape=(self.n, self.n))
-            mat.sort_indices()
-            self._cache["csr"] = mat
-        return self._cache["csr"]
-
-    def degree(self) -> np.ndarray:
-        """Number of neighbours of each element, shape (n,)."""
-        return np.bincount(self.u, minlength=self.n) + np.bincount(self.v, minlength=self.n)
-
-    def neighbour_table(self) -> np.ndarray:
-        """Padded neighbour lists, built once and cached.
-
-        Returns
-        -------
-        ndarray of intp, shape (n + 1, max_degree)
-            Row i lists the neighbours of element i, padded with the sentinel ``n``; row ``n``
-            (the sentinel's own row) is all sentinel.  Fixed-width rows let TFCE gather the
-            neighbourhoods of many elements in one ``take`` (intp, because numpy converts other
-            index types to intp on every gather).
-        """
-        if "table" not in self._cache:
-            csr = self.csr()
-            counts = np.diff(csr.indptr)
-            width = max(int(counts.max()) if self.n else 0, 1)
-            table = np.full((self.n + 1, width), self.n, dtype=np.intp)
-            rows = np.repeat(np.arange(self.n), counts)
-            cols = np.arange(csr.indices.size) - np.repeat(csr.indptr[:-1], counts)
-            table[rows, cols] = csr.indices
-            self._cache["table"] = table
-        return self._cache["table"]
-
-    def neighbours(self, elements: np.ndarray) -> np.ndarray:
-        """Neighbours of the given elements, shape (len(elements), max_degree), padded with n."""
-        grid = self._cache.get("grid")
-        if grid is not None:
-            return grid.neighbours(np.asarray(elements))
-        return np.take(self.neighbour_table(), np.asarray(elements), axis=0)
-
-    def neighbour_chain(self) -> np.ndarray:
-        """Which neighbour-table entries are adjacent to the entry before them, built once and cached.
-
-        Returns
-        -------
-        ndarray of bool, shape (n + 1, max_degree)
-            ``chain[i, c]`` is True when ``table[i, c - 1]`` and ``table[i, c]`` are both
-            neighbours of i and neighbours of each other.  TFCE uses it to skip neighbours that
-            are certainly in the same component as the one before them.
-        """
-        if "chain" not in self._cache:
-            table = self.neighbour_table()
-            chain = np.zeros(table.shape, dtype=bool)
-            if table.shape[1] > 1 and self.u.size:
-                n1 = np.int64(self.n + 1)
-                keys = np.sort(self.u.astype(np.int64) * n1 + self.v)
-                a, b = table[:, :-1].astype(np.int64), table[:, 1:].astype(np.int64)
-                probe = np.minimum(a, b) * n1 + np.maximum(a, b)
-                pos = np.minimum(np.searchsorted(keys, probe), keys.size - 1)
-                chain[:, 1:] = (keys[pos] == probe) & (a < self.n) & (b < self.n)
-            self._cache["chain"] = chain
-        return self._cache["chain"]
-
-
-def _grid_offsets(connectivity: int) -> list[tuple[int, int, int]]:
-    """Half of the neighbour offsets (the lexicographically positive ones) for a 3-D grid."""
-    limit = {6: 1, 18: 2, 26: 3}.get(connectivity)
-    if limit is None:
-        raise InputError(
-            f"grid connectivity must be 6, 18 or 26; got {connectivity!r} "
-            "(in grid_adjacency); use 6 (faces), 18 (faces+edges) or 26 (faces+edges+corners)"
-        )
-    offsets = []
-    for di in (-1, 0, 1):
-        for dj in (-1, 0, 1):
-            for dk in (-1, 0, 1):
-                d = (di, dj, dk)
-                if d > (0, 0, 0) and sum(abs(x) for x in d) <= limit:
-                    offsets.append(d)
-    return offsets
-
-
-def grid_adjacency(mask: np.ndarray, connectivity: int = 26) -> Adjacency:
-    """Neighbourhood graph of the True voxels of a 3-D boolean mask.
-
-    Parameters
-    ----------
-    mask : ndarray of bool, shape (I, J, K)
-        In-mask voxels; element ``i`` of the graph is the i-th True voxel in C order
-        (``np.flatnonzero(mask)``).
-    connectivity : {6, 18, 26}
-        Voxels sharing a face (6), a face or an edge (18), or a face, edge or corner (26).  The
-        default is 26, the neighbourhood usually used for TFCE and cluster extent on 3-D images.
-
-    Returns
-    -------
-    Adjacency
-    """
-    mask = np.asarray(mask, dtype=bool)
-    if mask.ndim != 3:
-        raise InputError(
-            f"a 3-D mask was expected; got {mask.ndim} dimensions (in grid_adjacency); "
-            "pass the brain mask as an (I, J, K) boolean array"
-        )
-    n = int(mask.sum())
-    index = np.full(mask.shape, -1, dtype=np.int32)
-    index[mask] = np.arange(n, dtype=np.int32)
-    us, vs = [], []
-    shape = mask.shape
-    for d in _grid_offsets(connectivity):
-        # Pair each voxel with its neighbour at offset d via two shifted views of the index image.
-        # d is lexicographically positive, so the neighbour comes later in C order (u < v) and
-        # every pair appears once: no de-duplication needed.
-        src = tuple(slice(max(0, -o), s - max(0, o)) for o, s in zip(d, shape, strict=True))
-        dst = tuple(slice(max(0, o), s - max(0, -o)) for o, s in zip(d, shape, strict=True))
-        a, b = index[src].ravel(), index[dst].ravel()
-        both = (a >= 0) & (b >= 0)
-        us.append(a[both])
-        vs.append(b[both])
-    u = np.concatenate(us) if us else np.zeros(0, np.int32)
-    v = np.concatenate(vs) if vs else np.zeros(0, np.int32)
-    order = np.lexsort((v, u))
-    adjacency = Adjacency(n, u[order], v[order])
-    adjacency._cache["grid"] = _GridLayout.build(mask, connectivity)
-    return adjacency
-
-
-@dataclass(frozen=True)
-class _GridLayout:
-    """Voxel neighbourhoods of a 3-D mask by index arithmetic on a padded grid (no table reads).
-
-    Attributes
-    ----------
-    size : int
-        Number of voxels of the grid padded by one voxel on every side.
-    gindex : ndarray of intp, shape (n,)
-        Flat padded-grid index of each element.
-    offsets : ndarray of intp, shape (D,)
-        Flat index offsets of the neighbours, ordered along a path on which consecutive offsets
-        are neighbours of each other wherever possible.
-    earlier : ndarray of uint32, shape (D,)
-        Bit c' of ``earlier[c]`` is set when c' < c and the voxels at offsets c' and c are
-        neighbours of each other.
-    element : ndarray of intp, shape (size,)
-        Element index of each padded-grid voxel; n outside the mask.
-    """
-
-    size: int
-    gindex: np.ndarray
-    offsets: np.ndarray
-    earlier: np.ndarray
-    element: np.ndarray
-
-    @classmethod
-    def build(cls, mask: np.ndarray, connectivity: int) -> _GridLayout:
-        n = int(mask.sum())
-        padded = np.zeros(tuple(s + 2 for s in mask.shape), dtype=bool)
-        padded[1:-1, 1:-1, 1:-1] = mask
-        strides = np.array([padded.shape[1] * padded.shape[2], padded.shape[2], 1], dtype=np.intp)
-        path = _offset_path(connectivity)
-        element = np.full(padded.size, n, dtype=np.intp)
-        gindex = np.flatnonzero(padded).astype(np.intp)
-        element[gindex] = np.arange(n)
-        offsets = np.array([int(np.dot(d, strides)) for d in path], dtype=np.intp)
-        earlier = np.zeros(len(path), dtype=np.uint32)
-        for c in range(len(path)):
-            for c0 in range(c):
-                if _offsets_adjacent(path[c0], path[c], connectivity):
-                    earlier[c] |= np.uint32(1 << c0)
-        return cls(int(padded.size), gindex, offsets, earlier, element)
-
-    def neighbours(self, elements: np.ndarray) -> np.ndarray:
-        """Element indices of the neighbours (n outside the mask), shape (len(elements), D)."""
-        return self.element[self.gindex[elements][:, None] + self.offsets[None, :]]
-
-
-def _offsets_adjacent(a: tuple[int, ...], b: tuple[int, ...], connectivity: int) -> bool:
-    """Whether the voxels at offsets a and b of a centre voxel are neighbours of each other."""
-    d = [x - y for x, y in zip(a, b, strict=True)]
-    limit = {6: 1, 18: 2, 26: 3}[connectivity]
-    return any(d) and max(abs(x) for x in d) <= 1 and sum(abs(x) for x in d) <= limit
-
-
-def _offset_path(connectivity: int) -> list[tuple[int, int, int]]:
-    """All neighbour offsets, ordered so that consecutive ones are neighbours where possible.
-
-    A depth-first search for a Hamiltonian path (Warnsdorff's rule) through the neighbourhood; it
-    exists for 18 and 26 neighbours.  With 6 neighbours no two offsets are neighbours and the
-    order does not matter.
-    """
-    half = _grid_offsets(connectivity)
-    offsets = sorted(half + [tuple(-x for x in d) for d in half])
-    if connectivity == 6:
-        return offsets
-
-    def onward(o: tuple, used: set) -> int:
-        return sum(1 for p in offsets if p not in used and p != o and _offsets_adjacent(o, p, connectivity))
-
-    def extend(path: list, used: set) -> bool:
-        if len(path) == len(offsets):
-            return True
-        cands = [o for o in offsets if o not in used and _offsets_adjacent(path[-1], o, connectivity)]
-        cands.sort(key=lambda o: onward(o, used))
-        for o in cands:
-            used.add(o)
-            path.append(o)
-            if extend(path, used):
-                return True
-            path.pop()
-            used.discard(o)
-        return False
-
-    for start in offsets:
-        path, used = [start], {start}
-        if extend(path, used):
-            return path
-    return offsets  # not reached for 18 or 26
-
-
-def mesh_adjacency(
-    faces: np.ndarray, n_vertices: int | None = None, mask: np.ndarray | None = None
-) -> Adjacency:
-    """Neighbourhood graph of a triangle mesh: vertices are neighbours when they share an edge.
-
-    Parameters
-    ----------
-    faces : ndarray of int, shape (n_faces, 3)
-        Vertex indices of each triangle.
-    n_vertices : int, optional
-        Number of vertices (default: ``faces.max() + 1``).
-    mask : ndarray of bool, shape (n_vertices,), optional
-        In-mask vertices; the graph is then over ``np.flatnonzero(mask)`` (renumbered from 0) and
-        edges leaving the mask are dropped.
-
-    Returns
-    -------
-    Adjacency
-    """
-    faces = np.asarray(faces)
-    if faces.ndim != 2 or faces.shape[1] != 3:
-        raise InputError(
-            f"faces must have shape (n_faces, 3); got {faces.shape} (in mesh_adjacency); "
-            "pass the triangle array of the surface"
-        )
-    faces = faces.astype(np.int64)
-    nv = int(faces.max()) + 1 if n_vertices is None else int(n_vertices)
-    u = np.concatenate([faces[:, 0], faces[:, 1], faces[:, 2]])
-    v = np.concatenate([faces[:, 1], faces[:, 2], faces[:, 0]])
-    if mask is not None:
-        mask = np.asarray(mask, dtype=bool)
-        if mask.shape != (nv,):
-            raise InputError(
-                f"the vertex mask must have shape ({nv},); got {mask.shape} (in mesh_adjacency); "
-                "pass one boolean per mesh vertex"
-            )
-        newid = np.full(nv, -1, dtype=np.int64)
-        newid[mask] = np.arange(int(mask.sum()))
-        u, v = newid[u], newid[v]
-        keep = (u >= 0) & (v >= 0)
-        return Adjacency.from_edges(int(mask.sum()), u[keep], v[keep])
-    return Adjacency.from_edges(nv, u, v)
 
 
 @dataclass(frozen=True)
@@ -465,178 +130,6 @@ def _prefix_weights(K: int, dh: float, H: float, rule: Rule) -> np.ndarray:
     return out
 
 
-def _table_pairs(
-    adjacency: Adjacency, signed: np.ndarray, act: np.ndarray, alev: np.ndarray, two_sided: bool
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Old and new neighbour pairs from the neighbour table (any graph), rows in entering order.
-
-    Parameters
-    ----------
-    adjacency : Adjacency
-    signed : ndarray of int, shape (n + 1,)
-        Signed level of each element; slot n (the table's sentinel) is 0.
-    act : ndarray of intp, shape (A,)
-        Active elements in entering order; ``alev`` their absolute levels.
-    two_sided : bool
-
-    Returns
-    -------
-    old_row, old_nb, new_row, new_nb : ndarray of intp
-        Row (position in ``act``) and neighbour element of each old pair (after skipping old
-        neighbours joined to the one before them) and of each equal-level pair (kept once), sorted
-        by row.
-    """
-    table, chains = adjacency.neighbour_table(), adjacency.neighbour_chain()
-    sign = np.sign(signed[act]).astype(signed.dtype) if two_sided else None
-    parts: list[tuple[np.ndarray, ...]] = []
-    # Row blocks keep the (rows, D) temporaries small (cache-resident, no fresh pages per call).
-    for r0 in range(0, act.size, _ROW_BLOCK):
-        rows = slice(r0, min(act.size, r0 + _ROW_BLOCK))
-        centre = act[rows]
-        nb = np.take(table, centre, axis=0, mode="clip")
-        nlev = np.take(signed, nb, mode="clip")
-        if sign is not None:
-            nlev *= sign[rows, None]
-        own = alev[rows, None]
-        is_old = nlev > own
-        # Of a run of old neighbours that are neighbours of each other only the first is needed.
-        is_old[:, 1:] &= ~(is_old[:, :-1] & np.take(chains, centre, axis=0)[:, 1:])
-        flat_old = is_old.ravel().nonzero()[0]
-        # Equal-level neighbours are rare: select them first, then keep each pair once.
-        flat_new = (nlev == own).ravel().nonzero()[0]
-        width = nb.shape[1]
-        later = np.take(nb.ravel(), flat_new, mode="clip") > np.take(centre, flat_new // width, mode="clip")
-        flat_new = flat_new[later]
-        old_nb, new_nb = np.take(nb.ravel(), flat_old, mode="clip"), np.take(nb.ravel(), flat_new, mode="clip")
-        parts.append((flat_old // width + r0, old_nb, flat_new // width + r0, new_nb))
-    old_row, old_nb, new_row, new_nb = (np.concatenate([p[i] for p in parts]) for i in range(4))
-    return old_row, old_nb, new_row, new_nb
-
-
-def _popcount(x: np.ndarray) -> np.ndarray:
-    """Number of set bits of each uint32 (``numpy.bitwise_count`` from numpy 2, else bit arithmetic)."""
-    if hasattr(np, "bitwise_count"):
-        return np.bitwise_count(x)
-    x = x - ((x >> np.uint32(1)) & np.uint32(0x55555555))
-    x = (x & np.uint32(0x33333333)) + ((x >> np.uint32(2)) & np.uint32(0x33333333))
-    x = (x + (x >> np.uint32(4))) & np.uint32(0x0F0F0F0F)
-    return ((x * np.uint32(0x01010101)) >> np.uint32(24)).astype(np.uint8)
-
-
-def _grid_pairs(
-    grid: _GridLayout, level_grid: np.ndarray, signed: np.ndarray, act: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """The pairs of :func:`_table_pairs` on a 3-D grid, found in element (grid) order.
-
-    Working in element order makes every neighbour read a forward walk through the padded level
-    grid (one ``take`` per offset, from a shifted view, no index arithmetic), instead of random
-    reads in entering order; the pairs are then moved to entering order by a counting scatter.
-    Equal-level pairs are kept from the element with the smaller index, which on the grid is the
-    element seen through a positive offset.
-
-    Parameters
-    ----------
-    grid : _GridLayout
-    level_grid : ndarray of int, shape (grid.size,)
-        Signed level of each padded-grid voxel (0 outside the mask).
-    signed : ndarray of int, shape (n,)
-        Signed level of each element (one-sided maps: levels >= 0).
-    act : ndarray of intp, shape (A,)
-        Active elements in entering order.
-
-    Returns
-    -------
-    old_row, old_nb, new_row, new_nb : ndarray of intp
-        As :func:`_table_pairs`.
-    """
-    n = signed.size
-    offsets = grid.offsets
-    D = offsets.size
-    lo = -int(offsets.min())
-    hi = int(offsets.max())
-    # level_grid[g + offsets[c]] is shifted[c][g - lo]: a view per offset, no index arrays per column.
-    shifted = [level_grid[lo + int(o) : level_grid.size - hi + int(o)] for o in offsets]
-    positive = np.flatnonzero(offsets > 0)
-    ltype = signed.dtype
-    below = (np.left_shift(np.uint32(1), np.arange(D, dtype=np.uint32)) - np.uint32(1)).astype(np.uint32)
-    parts: dict[str, list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = {"old": [], "new": []}
-    per = {"old": np.zeros(n, dtype=np.intp), "new": np.zeros(n, dtype=np.intp)}  # pairs per element
-    nl = np.empty((D, _ROW_BLOCK), dtype=ltype)
-    old = np.empty((D, _ROW_BLOCK), dtype=bool)
-    code = np.empty(_ROW_BLOCK, dtype=np.uint32)
-    scratch = np.empty(_ROW_BLOCK, dtype=np.uint32)
-    hit = np.empty(_ROW_BLOCK, dtype=bool)
-
-    def pack(bits: np.ndarray, out: np.ndarray) -> None:
-        """Bit c of out[e] = bits[c, e]."""
-        out.fill(0)
-        sw = scratch[: out.size]
-        for c in range(bits.shape[0]):
-            np.left_shift(bits[c], np.uint32(c), out=sw, dtype=np.uint32)
-            np.bitwise_or(out, sw, out=out)
-
-    def collect(kind: str, bits: np.ndarray, e0: int, cols: np.ndarray) -> None:
-        """Record the pairs marked in bits (C, w): element, rank among its pairs, neighbour."""
-        w = bits.shape[1]
-        cw = code[:w]
-        pack(bits, cw)
-        per[kind][e0 : e0 + w] = _popcount(cw)
-        # Pairs come in (column, element) order; an element's pairs are put back in column order
-        # by their rank among its set bits.
-        flat = bits.ravel().nonzero()[0]
-        col = flat // w
-        e_loc = flat - col * w
-        rank = _popcount(np.bitwise_and(cw[e_loc], below[col]))
-        centre = grid.gindex[e0 + e_loc]
-        parts[kind].append((e_loc + e0, rank, grid.element[centre + offsets[cols[col]]]))
-
-    every = np.arange(D)
-    for e0 in range(0, n, _ROW_BLOCK):
-        e1 = min(n, e0 + _ROW_BLOCK)
-        w = e1 - e0
-        g = grid.gindex[e0:e1] - lo
-        lev = signed[e0:e1]
-        own = np.abs(lev)
-        NL, OLD = nl[:, :w], old[:, :w]
-        for c in range(D):
-            np.take(shifted[c], g, out=NL[c])
-        # Relative to the element's sign; inactive elements (sign 0) get no pairs.
-        np.multiply(NL, np.sign(lev)[None, :], out=NL)
-        np.greater(NL, own[None, :], out=OLD)
-        # Skip an old neighbour when an earlier old neighbour (in path order) touches it: they are
-        # joined already.  The old pattern of each element as a bit mask, tested per column.
-        cw, sw, hw = code[:w], scratch[:w], hit[:w]
-        pack(OLD, cw)
-        for c in range(1, D):
-            np.bitwise_and(cw, grid.earlier[c], out=sw)
-            np.equal(sw, 0, out=hw)
-            np.logical_and(OLD[c], hw, out=OLD[c])
-        collect("old", OLD, e0, every)
-        # Equal-level pairs, each once: seen from the earlier element, i.e. through positive offsets.
-        eq = NL[positive] == own[None, :]
-        eq &= (own > 0)[None, :]
-        collect("new", eq, e0, positive)
-    # Position of each element in entering order; move the pairs there, keeping each element's
-    # pairs together and in column order (a counting scatter, no sort).
-    position = np.empty(n, dtype=np.intp)
-    position[act] = np.arange(act.size)
-    result = []
-    for kind in ("old", "new"):
-        el = np.concatenate([p[0] for p in parts[kind]])
-        per_act = per[kind][act]
-        first = np.zeros(n, dtype=np.intp)
-        first[act] = np.cumsum(per_act) - per_act  # start of each element's pairs in entering order
-        dest = first[el]
-        dest += np.concatenate([p[1] for p in parts[kind]])
-        row = np.empty(el.size, dtype=np.intp)
-        row[dest] = position[el]
-        nb = np.empty(el.size, dtype=np.intp)
-        nb[dest] = np.concatenate([p[2] for p in parts[kind]])
-        result += [row, nb]
-    old_row, old_nb, new_row, new_nb = result
-    return old_row, old_nb, new_row, new_nb
-
-
 def tfce(
     x: np.ndarray,
     adjacency: Adjacency,
@@ -683,155 +176,253 @@ def tfce(
     K = int(np.abs(levels).max()) if n else 0
     if K == 0:
         return out
+    order = _entering_order(levels, K)
+    pairs = _level_pairs(adjacency, order, levels, two_sided)
+    S = _prefix_weights(K, dh, H, rule)
+    forest = _Forest(n, K)
+    for k in range(K, 0, -1):
+        if order.row_hi[k] == order.row_lo[k]:
+            continue
+        new = order.act[order.row_lo[k] : order.row_hi[k]]
+        rows, roots_of, roots = _touched_roots(forest, pairs, k)
+        lab_new, lab_roots = _batch_union(forest, order.act, pairs, k, new, rows, roots_of, roots)
+        _merge(forest, k, new, roots, lab_new, lab_roots, S, E)
+    out = _element_values(forest, order.act, S, E, K)
+    if two_sided:
+        np.negative(out, out=out, where=order.signed[:n] < 0)
+    return out
+
+
+@dataclass(frozen=True)
+class _Order:
+    """Active elements in entering order: level descending, element index ascending within a level.
+
+    Attributes
+    ----------
+    signed : ndarray of int16 or int32, shape (n + 1,)
+        Signed level of each element; slot n is the sentinel that pads the neighbour table (0).
+    act, alev : ndarray
+        Active elements in entering order, and their absolute levels.
+    row_lo, row_hi : ndarray of int64, shape (K + 2,)
+        Rows of level k occupy ``act[row_lo[k]:row_hi[k]]``.
+    """
+
+    signed: np.ndarray
+    act: np.ndarray
+    alev: np.ndarray
+    row_lo: np.ndarray
+    row_hi: np.ndarray
+
+
+def _entering_order(levels: np.ndarray, K: int) -> _Order:
+    n = levels.size
     ltype = np.int16 if K < np.iinfo(np.int16).max else np.int32
     signed = np.zeros(n + 1, dtype=ltype)  # slot n: the sentinel that pads the neighbour table
     signed[:n] = levels
-    S = _prefix_weights(K, dh, H, rule)
-
-    # Entering order: level descending, element index ascending within a level.
     absolute = np.abs(signed[:n])
     active = np.flatnonzero(absolute)
     alev = absolute[active]
     order = np.argsort(-alev, kind="stable")
     act, alev = active[order], alev[order]
     counts = np.bincount(alev, minlength=K + 1)
-    # Rows of level k occupy act[row_lo[k]:row_hi[k]].
     row_hi = np.zeros(K + 2, dtype=np.int64)
     row_hi[1 : K + 1] = np.cumsum(counts[:0:-1])[::-1]
     row_lo = np.zeros(K + 2, dtype=np.int64)
     row_lo[1 : K + 1] = row_hi[1 : K + 1] - counts[1:]
+    return _Order(signed, act, alev, row_lo, row_hi)
 
-    # All neighbourhoods at once.  Relative to its row's sign, a neighbour is "old" (in an existing
-    # component) if its level is higher, and "new" if equal; an equal-level pair is kept once.
-    # An old neighbour that touches another old neighbour is already in the same component (their
-    # edge became active at a higher level), so one neighbour per touching group is enough.
+
+@dataclass(frozen=True)
+class _Pairs:
+    """The old and new neighbour pairs of every entering element, and where each level's pairs lie.
+
+    ``old_row``/``old_nb`` and ``new_row``/``new_nb`` as returned by :func:`table_pairs`; ``row_start``
+    marks where a row's run of old neighbours starts (for de-duplicating (row, root) pairs);
+    ``old_lo[k]:old_hi[k]`` and ``new_lo[k]:new_hi[k]`` are the pairs of level k.
+    """
+
+    old_row: np.ndarray
+    old_nb: np.ndarray
+    new_row: np.ndarray
+    new_nb: np.ndarray
+    row_start: np.ndarray
+    old_lo: np.ndarray
+    old_hi: np.ndarray
+    new_lo: np.ndarray
+    new_hi: np.ndarray
+
+
+def _level_pairs(adjacency: Adjacency, order: _Order, levels: np.ndarray, two_sided: bool) -> _Pairs:
+    """All neighbourhoods at once.
+
+    Relative to its row's sign, a neighbour is "old" (in an existing component) if its level is higher,
+    and "new" if equal; an equal-level pair is kept once.  An old neighbour that touches another old
+    neighbour is already in the same component (their edge became active at a higher level), so one
+    neighbour per touching group is enough.
+    """
+    n = adjacency.n
     grid = adjacency._cache.get("grid")
     if grid is not None:
-        level_grid = np.zeros(grid.size, dtype=ltype)
+        level_grid = np.zeros(grid.size, dtype=order.signed.dtype)
         level_grid[grid.gindex] = levels
-        old_row, old_nb, new_row, new_nb = _grid_pairs(grid, level_grid, signed[:n], act)
+        old_row, old_nb, new_row, new_nb = grid_pairs(grid, level_grid, order.signed[:n], order.act)
     else:
-        old_row, old_nb, new_row, new_nb = _table_pairs(adjacency, signed, act, alev, two_sided)
-    # Where a row's run of old neighbours starts (for de-duplicating (row, root) pairs below).
+        old_row, old_nb, new_row, new_nb = table_pairs(adjacency, order.signed, order.act, order.alev, two_sided)
     row_start = np.ones(old_row.size, dtype=bool)
     np.not_equal(old_row[1:], old_row[:-1], out=row_start[1:])
-    old_lo = np.searchsorted(old_row, row_lo)
-    old_hi = np.searchsorted(old_row, row_hi)
-    new_lo = np.searchsorted(new_row, row_lo)
-    new_hi = np.searchsorted(new_row, row_hi)
+    return _Pairs(
+        old_row, old_nb, new_row, new_nb, row_start,
+        np.searchsorted(old_row, order.row_lo), np.searchsorted(old_row, order.row_hi),
+        np.searchsorted(new_row, order.row_lo), np.searchsorted(new_row, order.row_hi),
+    )
 
-    # Union-find state, indexed by element (slot n unused).  A root is one of its elements.
-    ident = np.arange(n + 1, dtype=np.intp)
-    up = ident.copy()  # absorbed root -> its absorber or a later root of the same component
-    lab = ident.copy()  # scratch labels of one level's batch union (restored after each level)
-    slot = np.zeros(n + 1, dtype=np.intp)  # scratch
-    best = np.zeros(n + 1, dtype=np.int64)  # scratch
-    leaf = ident.copy()  # root the element joined (itself until it enters)
-    offset = np.zeros(n + 1)  # that root's accumulator when the element joined
-    acc = np.zeros(n + 1)  # lazy accumulators of roots
-    size = np.zeros(n + 1)
-    last = np.zeros(n + 1, dtype=np.int64)  # level of the last accumulator update
-    base = np.zeros(n + 1)  # absorber's accumulator at the absorption
-    absorber = np.full(n + 1, -1, dtype=np.intp)
-    absorbed_at: list[tuple[np.ndarray, np.ndarray] | None] = [None] * (K + 1)
-    n1 = np.int64(n + 1)
 
-    for k in range(K, 0, -1):
-        if row_hi[k] == row_lo[k]:
-            continue
-        new = act[row_lo[k] : row_hi[k]]
-        o0, o1 = old_lo[k], old_hi[k]
-        rows = old_row[o0:o1]
-        roots_of = leaf[old_nb[o0:o1]]
-        if roots_of.size:
-            # Keep one entry per (row, recorded root): neighbours of one element mostly share it.
-            keep = row_start[o0:o1].copy()
+class _Forest:
+    """Union-find state, indexed by element (slot n unused).  A root is one of its elements."""
+
+    def __init__(self, n: int, K: int) -> None:
+        ident = np.arange(n + 1, dtype=np.intp)
+        self.up = ident.copy()  # absorbed root -> its absorber or a later root of the same component
+        self.lab = ident.copy()  # scratch labels of one level's batch union (restored after each level)
+        self.slot = np.zeros(n + 1, dtype=np.intp)  # scratch
+        self.best = np.zeros(n + 1, dtype=np.int64)  # scratch
+        self.leaf = ident.copy()  # root the element joined (itself until it enters)
+        self.offset = np.zeros(n + 1)  # that root's accumulator when the element joined
+        self.acc = np.zeros(n + 1)  # lazy accumulators of roots
+        self.size = np.zeros(n + 1)
+        self.last = np.zeros(n + 1, dtype=np.int64)  # level of the last accumulator update
+        self.base = np.zeros(n + 1)  # absorber's accumulator at the absorption
+        self.absorbed_at: list[tuple[np.ndarray, np.ndarray] | None] = [None] * (K + 1)
+        self.n1 = np.int64(n + 1)
+
+
+def _touched_roots(f: _Forest, pairs: _Pairs, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The current roots the old neighbours of level k belong to: (row, root) pairs, and the distinct roots."""
+    up, slot = f.up, f.slot
+    o0, o1 = pairs.old_lo[k], pairs.old_hi[k]
+    rows = pairs.old_row[o0:o1]
+    roots_of = f.leaf[pairs.old_nb[o0:o1]]
+    if roots_of.size:
+        # Keep one entry per (row, recorded root): neighbours of one element mostly share it.
+        keep = pairs.row_start[o0:o1].copy()
+        keep[1:] |= roots_of[1:] != roots_of[:-1]
+        rows, roots_of = rows[keep], roots_of[keep]
+        # Follow absorptions to the current roots, then compress the paths looked up.
+        nxt = up[roots_of]
+        stale = (nxt != roots_of).nonzero()[0]
+        if stale.size:
+            looked_up, recorded = stale, roots_of[stale]
+            while stale.size:
+                roots_of[stale] = nxt[stale]
+                nxt[stale] = up[nxt[stale]]
+                stale = stale[nxt[stale] != roots_of[stale]]
+            up[recorded] = roots_of[looked_up]
+            # Absorbed roots recorded by different neighbours now coincide: de-duplicate again.
+            keep = pairs.row_start[o0:o1][keep]
             keep[1:] |= roots_of[1:] != roots_of[:-1]
             rows, roots_of = rows[keep], roots_of[keep]
-            # Follow absorptions to the current roots, then compress the paths looked up.
-            nxt = up[roots_of]
-            stale = (nxt != roots_of).nonzero()[0]
-            if stale.size:
-                looked_up, recorded = stale, roots_of[stale]
-                while stale.size:
-                    roots_of[stale] = nxt[stale]
-                    nxt[stale] = up[nxt[stale]]
-                    stale = stale[nxt[stale] != roots_of[stale]]
-                up[recorded] = roots_of[looked_up]
-                # Absorbed roots recorded by different neighbours now coincide: de-duplicate again.
-                keep = row_start[o0:o1][keep]
-                keep[1:] |= roots_of[1:] != roots_of[:-1]
-                rows, roots_of = rows[keep], roots_of[keep]
-        # Distinct roots touched at this level.
-        pos = np.arange(roots_of.size, dtype=np.intp)
-        slot[roots_of] = pos
-        roots = roots_of[slot[roots_of] == pos]
+    # Distinct roots touched at this level.
+    pos = np.arange(roots_of.size, dtype=np.intp)
+    slot[roots_of] = pos
+    roots = roots_of[slot[roots_of] == pos]
+    return rows, roots_of, roots
 
-        # Batch union: hook each entering element to one root it touches, then resolve the rest
-        # (elements touching several roots, and entering elements touching each other).
-        a_old = act[rows]
-        lab[a_old] = roots_of
-        n0, n1_ = new_lo[k], new_hi[k]
-        a = np.concatenate([a_old, act[new_row[n0:n1_]]])
-        b = np.concatenate([roots_of, new_nb[n0:n1_]])
-        nodes = np.concatenate([new, roots])
+
+def _batch_union(
+    f: _Forest,
+    act: np.ndarray,
+    pairs: _Pairs,
+    k: int,
+    new: np.ndarray,
+    rows: np.ndarray,
+    roots_of: np.ndarray,
+    roots: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Component labels of the entering elements and of the touched roots after the unions of level k.
+
+    Each entering element is hooked to one root it touches, then the rest (elements touching several
+    roots, and entering elements touching each other) is resolved by min-label hooking with pointer jumping.
+    """
+    lab = f.lab
+    a_old = act[rows]
+    lab[a_old] = roots_of
+    n0, n1_ = pairs.new_lo[k], pairs.new_hi[k]
+    a = np.concatenate([a_old, act[pairs.new_row[n0:n1_]]])
+    b = np.concatenate([roots_of, pairs.new_nb[n0:n1_]])
+    nodes = np.concatenate([new, roots])
+    la, lb = lab[a], lab[b]
+    cross = (la != lb).nonzero()[0]
+    while cross.size:
+        a, b, la, lb = a[cross], b[cross], la[cross], lb[cross]
+        np.minimum.at(lab, np.maximum(la, lb), np.minimum(la, lb))
+        while True:  # pointer jumping until every node points at a root
+            ln = lab[nodes]
+            lln = lab[ln]
+            if (ln == lln).all():
+                break
+            lab[nodes] = lln
         la, lb = lab[a], lab[b]
         cross = (la != lb).nonzero()[0]
-        while cross.size:
-            a, b, la, lb = a[cross], b[cross], la[cross], lb[cross]
-            np.minimum.at(lab, np.maximum(la, lb), np.minimum(la, lb))
-            while True:  # pointer jumping until every node points at a root
-                ln = lab[nodes]
-                lln = lab[ln]
-                if (ln == lln).all():
-                    break
-                lab[nodes] = lln
-            la, lb = lab[a], lab[b]
-            cross = (la != lb).nonzero()[0]
-        lab_new = lab[new]
-        lab_roots = lab[roots]
-        lab[nodes] = nodes
+    lab_new = lab[new]
+    lab_roots = lab[roots]
+    lab[nodes] = nodes
+    return lab_new, lab_roots
 
-        # Per component: the continuing root is its largest old root (union by size), else the
-        # entering element that labels it.
-        slot[lab_new] = lab_new
-        if roots.size:
-            acc[roots] += size[roots] ** E * (S[last[roots]] - S[k])
-            key = size[roots].astype(np.int64) * n1 + roots
-            best[lab_roots] = -1
-            np.maximum.at(best, lab_roots, key)
-            keeper = (best[lab_roots] % n1).astype(np.intp)
-            slot[lab_roots] = keeper
-            gone = (roots != keeper).nonzero()[0]
-            if gone.size:
-                g, t = roots[gone], keeper[gone]
-                np.add.at(size, t, size[g])
-                up[g] = t
-                absorber[g] = t
-                base[g] = acc[t]
-                absorbed_at[k] = (g, t)
-            last[keeper] = k
-        joined = slot[lab_new]
-        np.add.at(size, joined, 1.0)
-        last[joined] = k
-        leaf[new] = joined
-        offset[new] = acc[joined]  # 0 for roots born at this level
 
+def _merge(
+    f: _Forest,
+    k: int,
+    new: np.ndarray,
+    roots: np.ndarray,
+    lab_new: np.ndarray,
+    lab_roots: np.ndarray,
+    S: np.ndarray,
+    E: float,
+) -> None:
+    """Per component: the continuing root is its largest old root (union by size), else the entering
+    element that labels it; accumulators brought up to date, absorptions and joins recorded."""
+    slot, size, acc, last = f.slot, f.size, f.acc, f.last
+    slot[lab_new] = lab_new
+    if roots.size:
+        acc[roots] += size[roots] ** E * (S[last[roots]] - S[k])
+        key = size[roots].astype(np.int64) * f.n1 + roots
+        f.best[lab_roots] = -1
+        np.maximum.at(f.best, lab_roots, key)
+        keeper = (f.best[lab_roots] % f.n1).astype(np.intp)
+        slot[lab_roots] = keeper
+        gone = (roots != keeper).nonzero()[0]
+        if gone.size:
+            g, t = roots[gone], keeper[gone]
+            np.add.at(size, t, size[g])
+            f.up[g] = t
+            f.base[g] = acc[t]
+            f.absorbed_at[k] = (g, t)
+        last[keeper] = k
+    joined = slot[lab_new]
+    np.add.at(size, joined, 1.0)
+    last[joined] = k
+    f.leaf[new] = joined
+    f.offset[new] = acc[joined]  # 0 for roots born at this level
+
+
+def _element_values(f: _Forest, act: np.ndarray, S: np.ndarray, E: float, K: int) -> np.ndarray:
+    """Every element's TFCE from the final accumulators, offsets and inherited contributions."""
+    n = f.leaf.size - 1
+    acc, size = f.acc, f.size
     # Final update of the surviving roots down to level 0.
-    alive = act[(up[act] == act) & (size[act] > 0)]
-    acc[alive] += size[alive] ** E * (S[last[alive]] - S[0])
+    alive = act[(f.up[act] == act) & (size[act] > 0)]
+    acc[alive] += size[alive] ** E * (S[f.last[alive]] - S[0])
     # Contributions inherited through absorptions, from the latest (lowest level) upward.
     inherited = np.zeros(n + 1)
     for k in range(1, K + 1):
-        if absorbed_at[k] is not None:
-            g, t = absorbed_at[k]
-            inherited[g] = inherited[t] + acc[t] - base[g]
+        absorbed = f.absorbed_at[k]
+        if absorbed is not None:
+            g, t = absorbed
+            inherited[g] = inherited[t] + acc[t] - f.base[g]
     # All elements at once, in element order (reads walk forward through memory); an inactive
     # element is its own leaf with no accumulator, offset or inheritance, so it gets 0.
-    joined = leaf[:n]
+    joined = f.leaf[:n]
     out = acc[joined]
-    out -= offset[:n]
+    out -= f.offset[:n]
     out += inherited[joined]
-    if two_sided:
-        np.negative(out, out=out, where=signed[:n] < 0)
     return out

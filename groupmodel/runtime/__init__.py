@@ -1,1 +1,15 @@
-"""Where work runs: cores and CPU quotas, thread and process pools."""
+"""Where work runs: cores and CPU quotas, single-threaded BLAS, and executors (inline, threads, processes)."""
+
+from .cores import available_cores, cpu_quota, single_threaded_blas
+from .executors import Executor, InlineExecutor, ProcessExecutor, ThreadExecutor, thread_executor
+
+__all__ = [
+    "Executor",
+    "InlineExecutor",
+    "ProcessExecutor",
+    "ThreadExecutor",
+    "available_cores",
+    "cpu_quota",
+    "single_threaded_blas",
+    "thread_executor",
+]

@@ -17,10 +17,15 @@ from hypothesis import strategies as st
 from scipy import ndimage, stats
 
 from groupmodel.errors import InputError
-from groupmodel.inference.driver import MapWorkers, run_permutations, run_tests, tile_width, whole_map_batch
+from groupmodel.inference.driver import run_permutations, run_tests
+from groupmodel.inference.graph import grid_adjacency
+from groupmodel.inference.kernel import tile_width
 from groupmodel.inference.multiple import fdr_bh
 from groupmodel.inference.rearrangements import count_rearrangements, permutation_set
-from groupmodel.inference.tfce import TfceParams, grid_adjacency, tfce
+from groupmodel.inference.results import ClusterResult, TfceResult
+from groupmodel.inference.settings import ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
+from groupmodel.inference.tfce import TfceParams, tfce
+from groupmodel.inference.whole_maps import MapWorkers
 
 SETTINGS = settings(max_examples=40, deadline=None)
 
@@ -117,24 +122,39 @@ def _grid_study(seed=0, n=10):
     return X, Y, grid_adjacency(mask), V
 
 
+def _get(r, name):
+    """A field of a result by its name, the whole-map parts as tfce, p_tfce_fwe, tfce_max_null, tfce_params,
+    p_cluster_fwe, cluster_max_null."""
+    whole = {
+        "tfce": (TfceResult, "map"), "p_tfce_fwe": (TfceResult, "p_fwe"), "tfce_max_null": (TfceResult, "max_null"),
+        "tfce_params": (TfceResult, "params"), "p_cluster_fwe": (ClusterResult, "p_fwe"),
+        "cluster_max_null": (ClusterResult, "max_null"),
+    }
+    if name in whole:
+        kind, field = whole[name]
+        return getattr(r.whole_map(kind), field)
+    return getattr(r, name)
+
+
 def test_results_do_not_depend_on_chunk_size_or_memmap(tmp_path):
     X, Y, adj, V = _grid_study()
-    opts = dict(n_perm=120, seed=5, adjacency=adj, tfce_params=TfceParams(), cluster_z=2.0, batch_size=50)
-    results = [run_permutations(X, [0, 1, 0], Y, chunk_size=c, **opts) for c in (1, 37, None)]
+    test, perms = ContrastTest(X, [0, 1, 0]), Rearrangements(n_perm=120, seed=5)
+    maps = MapSettings(adjacency=adj, tfce=TfceParams(), cluster_z=2.0)
+    results = [run_permutations(test, Y, perms, maps, Execution(chunk_size=c, batch_size=50)) for c in (1, 37, None)]
     path = tmp_path / "data.dat"
     mm = np.memmap(path, dtype=np.float32, mode="w+", shape=Y.shape)
     mm[:] = Y
     mm.flush()
     mm = np.memmap(path, dtype=np.float32, mode="r", shape=Y.shape)
-    results.append(run_permutations(X, [0, 1, 0], mm, chunk_size=50, **opts))
+    results.append(run_permutations(test, mm, perms, maps, Execution(chunk_size=50, batch_size=50)))
     ref = results[0]
     for i, r in enumerate(results[1:]):
-        data_ref = ref if i < 2 else run_permutations(X, [0, 1, 0], Y.astype(np.float32), **opts)
+        data_ref = ref if i < 2 else run_permutations(test, Y.astype(np.float32), perms, maps, Execution(batch_size=50))
         for name in ("p_perm", "p_fwe", "p_tfce_fwe", "p_cluster_fwe", "cluster_max_null"):
-            np.testing.assert_array_equal(getattr(r, name), getattr(data_ref, name), err_msg=name)
+            np.testing.assert_array_equal(_get(r, name), _get(data_ref, name), err_msg=name)
         for name in ("stat", "max_null", "tfce", "tfce_max_null"):
-            np.testing.assert_allclose(getattr(r, name), getattr(data_ref, name), rtol=1e-12, err_msg=name)
-        assert r.tfce_params == data_ref.tfce_params
+            np.testing.assert_allclose(_get(r, name), _get(data_ref, name), rtol=1e-12, err_msg=name)
+        assert _get(r, "tfce_params") == _get(data_ref, "tfce_params")
 
 
 def test_results_do_not_depend_on_thread_count():
@@ -144,11 +164,11 @@ def test_results_do_not_depend_on_thread_count():
     X = np.column_stack([np.ones(n), np.r_[np.zeros(12), np.ones(12)], rng.standard_normal((n, 2))])
     Y = rng.standard_normal((n, V))
     Y[:, :300] += 0.8 * X[:, [1]]
-    opts = dict(n_perm=90, seed=4, batch_size=40)
-    ref = run_permutations(X, [0, 1, 0, 0], Y, threads=1, **opts)
+    test, perms = ContrastTest(X, [0, 1, 0, 0]), Rearrangements(n_perm=90, seed=4)
+    ref = run_permutations(test, Y, perms, execution=Execution(threads=1, batch_size=40))
     assert V > 4 * tile_width(3 * 40)  # m = 3 rows per rearrangement (interest + two covariates)
     for threads, chunk in ((2, None), (3, None), (4, 1000), (2, 333)):
-        r = run_permutations(X, [0, 1, 0, 0], Y, threads=threads, chunk_size=chunk, **opts)
+        r = run_permutations(test, Y, perms, execution=Execution(threads=threads, chunk_size=chunk, batch_size=40))
         for name in ("p_perm", "p_fwe"):
             np.testing.assert_array_equal(getattr(r, name), getattr(ref, name), err_msg=f"{name} {threads}")
         for name in ("stat", "max_null"):
@@ -158,14 +178,15 @@ def test_results_do_not_depend_on_thread_count():
 def test_results_do_not_depend_on_batch_size():
     # The batch size follows the memory budget for whole maps (whole_map_batch); the rearrangements do not.
     X, Y, adj, V = _grid_study(seed=4)
-    opts = dict(n_perm=75, seed=6, adjacency=adj, tfce_params=TfceParams(dh=0.05), cluster_z=2.0)
-    ref = run_permutations(X, [0, 1, 0], Y, batch_size=100, **opts)
+    test, perms = ContrastTest(X, [0, 1, 0]), Rearrangements(n_perm=75, seed=6)
+    maps = MapSettings(adjacency=adj, tfce=TfceParams(dh=0.05), cluster_z=2.0)
+    ref = run_permutations(test, Y, perms, maps, Execution(batch_size=100))
     for batch in (1, 8, 33):
-        r = run_permutations(X, [0, 1, 0], Y, batch_size=batch, **opts)
+        r = run_permutations(test, Y, perms, maps, Execution(batch_size=batch))
         for name in ("p_perm", "p_fwe", "p_tfce_fwe", "p_cluster_fwe", "cluster_max_null"):
-            np.testing.assert_array_equal(getattr(r, name), getattr(ref, name), err_msg=f"{name} batch {batch}")
+            np.testing.assert_array_equal(_get(r, name), _get(ref, name), err_msg=f"{name} batch {batch}")
         for name in ("max_null", "tfce_max_null"):
-            np.testing.assert_allclose(getattr(r, name), getattr(ref, name), rtol=1e-12, err_msg=f"{name} {batch}")
+            np.testing.assert_allclose(_get(r, name), _get(ref, name), rtol=1e-12, err_msg=f"{name} {batch}")
 
 
 def test_whole_map_batch_follows_the_budget():
@@ -179,41 +200,41 @@ def test_whole_map_batch_follows_the_budget():
 def test_zero_threads_is_refused():
     X, Y, _, _ = _grid_study(seed=3)
     with pytest.raises(InputError, match="threads must be >= 1"):
-        run_permutations(X, [0, 1, 0], Y, n_perm=10, threads=0)
+        run_permutations(ContrastTest(X, [0, 1, 0]), Y, Rearrangements(n_perm=10), execution=Execution(threads=0))
 
 
 @pytest.mark.slow  # starts worker processes
 def test_results_do_not_depend_on_worker_count():
     X, Y, adj, V = _grid_study(seed=1)
-    opts = dict(n_perm=80, seed=2, adjacency=adj, tfce_params=TfceParams(), cluster_z=2.3, batch_size=30)
-    one = run_permutations(X, [0, 1, 0], Y, n_jobs=1, **opts)
-    two = run_permutations(X, [0, 1, 0], Y, n_jobs=2, **opts)
-    np.testing.assert_array_equal(one.tfce_max_null, two.tfce_max_null)
-    np.testing.assert_array_equal(one.cluster_max_null, two.cluster_max_null)
-    np.testing.assert_array_equal(one.p_tfce_fwe, two.p_tfce_fwe)
+    test, perms = ContrastTest(X, [0, 1, 0]), Rearrangements(n_perm=80, seed=2)
+    maps = MapSettings(adjacency=adj, tfce=TfceParams(), cluster_z=2.3)
+    one = run_permutations(test, Y, perms, maps, Execution(n_jobs=1, batch_size=30))
+    two = run_permutations(test, Y, perms, maps, Execution(n_jobs=2, batch_size=30))
+    for name in ("tfce_max_null", "cluster_max_null", "p_tfce_fwe"):
+        np.testing.assert_array_equal(_get(one, name), _get(two, name))
     # One set of workers shared by several tests (t two-sided, t "less", F) gives the same as inline.
     tests = [
         SimpleNamespace(name="group", weights=np.array([0, 1, 0.0]), kind="t", tail="two-sided"),
         SimpleNamespace(name="group_less", weights=np.array([0, 1, 0.0]), kind="t", tail="less"),
         SimpleNamespace(name="both", weights=np.array([[0, 1, 0], [0, 0, 1.0]]), kind="F", tail="two-sided"),
     ]
-    inline = run_tests(X, tests, Y, n_jobs=1, **opts)
-    shared = run_tests(X, tests, Y, n_jobs=2, **opts)
+    inline = run_tests(X, tests, Y, perms, maps, Execution(n_jobs=1, batch_size=30))
+    shared = run_tests(X, tests, Y, perms, maps, Execution(n_jobs=2, batch_size=30))
     for a, b in zip(inline, shared, strict=True):
         for name in ("tfce_max_null", "cluster_max_null", "p_tfce_fwe", "p_cluster_fwe"):
-            np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=f"{a.name} {name}")
+            np.testing.assert_array_equal(_get(a, name), _get(b, name), err_msg=f"{a.name} {name}")
     other = MapWorkers(2, grid_adjacency(np.ones((3, 3, 3), bool)))
     try:
         with pytest.raises(InputError, match="another adjacency"):
-            run_permutations(X, [0, 1, 0], Y, workers=other, **opts)
+            run_permutations(test, Y, perms, maps, Execution(workers=other, batch_size=30))
     finally:
         other.close()
 
 
 def test_different_seed_gives_different_null():
     X, Y, _, _ = _grid_study(seed=2)
-    a = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=1)
-    b = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=2)
+    a = run_permutations(ContrastTest(X, [0, 1, 0]), Y, Rearrangements(n_perm=60, seed=1))
+    b = run_permutations(ContrastTest(X, [0, 1, 0]), Y, Rearrangements(n_perm=60, seed=2))
     assert not np.array_equal(a.max_null, b.max_null)
     assert a.max_null[0] == b.max_null[0]  # the identity is the same
 
@@ -250,15 +271,18 @@ def test_two_sided_tfce_p_uses_absolute_values():
     X, Y, adj, V = _grid_study(seed=3)
     Y = Y.copy()
     Y[:, 40:80] -= 3.0 * X[:, [1]]  # a strong negative effect as well
-    r = run_permutations(X, [0, 1, 0], Y, n_perm=60, seed=1, adjacency=adj, tfce_params=TfceParams(dh=0.1))
-    assert r.tfce.min() < 0 < r.tfce.max()  # sign kept
-    assert np.all(r.tfce_max_null >= 0)
-    neg = r.tfce[40:80]
+    res = run_permutations(
+        ContrastTest(X, [0, 1, 0]), Y, Rearrangements(n_perm=60, seed=1), MapSettings(adj, TfceParams(dh=0.1))
+    )
+    r = res.whole_map(TfceResult)
+    assert r.map.min() < 0 < r.map.max()  # sign kept
+    assert np.all(r.max_null >= 0)
+    neg = r.map[40:80]
     assert np.all(neg <= 0)
     # FWE p of a negative element compares |TFCE| with the null of max |TFCE| (common practice).
-    expected = (r.tfce_max_null[:, None] >= np.abs(neg)[None, :] * (1 - 1e-12)).mean(axis=0)
-    np.testing.assert_array_equal(r.p_tfce_fwe[40:80], expected)
-    assert np.min(r.p_tfce_fwe[40:80]) <= 0.1
+    expected = (r.max_null[:, None] >= np.abs(neg)[None, :] * (1 - 1e-12)).mean(axis=0)
+    np.testing.assert_array_equal(r.p_fwe[40:80], expected)
+    assert np.min(r.p_fwe[40:80]) <= 0.1
 
 
 def test_run_tests_accepts_ols_tests():
@@ -266,8 +290,8 @@ def test_run_tests_accepts_ols_tests():
 
     X, Y, _, _ = _grid_study(seed=4)
     tests = [Test("group", [0, 1, 0], "t", "greater"), Test("both", [[0, 1, 0], [0, 0, 1]], "F")]
-    results = run_tests(X, tests, Y, n_perm=40, seed=3)
+    results = run_tests(X, tests, Y, Rearrangements(n_perm=40, seed=3))
     assert [r.name for r in results] == ["group", "both"]
-    one = run_permutations(X, [0, 1, 0], Y, tail="greater", n_perm=40, seed=3)
+    one = run_permutations(ContrastTest(X, [0, 1, 0], tail="greater"), Y, Rearrangements(n_perm=40, seed=3))
     np.testing.assert_array_equal(results[0].p_perm, one.p_perm)
     assert results[1].kind == "F" and results[1].q == 2

@@ -14,6 +14,7 @@ import pytest
 from scipy import stats
 
 from groupmodel.inference.driver import run_permutations
+from groupmodel.inference.settings import ContrastTest, Rearrangements
 
 N_SIM = 1000
 N_PERM = 200  # p <= 0.05 means at most 10 of 200: a size of exactly 0.05 for continuous data
@@ -66,7 +67,7 @@ def test_fwe_rate_is_nominal(name):
     method = None
     for i in range(N_SIM):
         X, L, Y = _scenario(name, rng)
-        res = run_permutations(X, L, Y, n_perm=N_PERM, seed=1000 + i, tail="two-sided")
+        res = run_permutations(ContrastTest(X, L, tail="two-sided"), Y, Rearrangements(n_perm=N_PERM, seed=1000 + i))
         method = res.method
         hits += bool(np.nanmin(res.p_fwe) <= 0.05)
     lo, hi = stats.binom.interval(0.99, N_SIM, 0.05)  # scipy.stats.binom 99% interval

@@ -17,9 +17,12 @@ import statsmodels.api as sm
 from scipy import linalg, stats
 
 from groupmodel.errors import EstimabilityError, InputError, ModelError
-from groupmodel.inference.driver import chunk_statistics, plan_contrast, run_permutations
+from groupmodel.inference.driver import run_permutations
+from groupmodel.inference.freedman_lane import plan_contrast
+from groupmodel.inference.kernel import chunk_statistics
 from groupmodel.inference.multiple import bonferroni, fdr_bh, reject
 from groupmodel.inference.rearrangements import count_rearrangements, permutation_set
+from groupmodel.inference.settings import ContrastTest, MapSettings, Rearrangements
 
 A = [12.1, 14.3, 13.8, 15.2, 16.0]
 B = [10.2, 11.5, 12.9, 11.1, 10.8, 12.0]
@@ -37,7 +40,8 @@ def _two_group_design(na: int, nb: int) -> np.ndarray:
 
 def test_two_sample_exact_enumeration_matches_scipy():
     y = np.array(A + B)[:, None]
-    res = run_permutations(_two_group_design(5, 6), [0, 1], y, tail="greater", n_perm=5000)
+    test = ContrastTest(_two_group_design(5, 6), [0, 1], tail="greater")
+    res = run_permutations(test, y, Rearrangements(n_perm=5000))
     # scipy.stats.permutation_test, exact (all 462 partitions), recomputed here.
     ref = stats.permutation_test(
         (A, B),
@@ -64,7 +68,9 @@ def test_two_sample_enumeration_by_itertools():
         mask[list(idx)] = True
         ts.append(stats.ttest_ind(y[mask], y[~mask]).statistic)
     ts = np.array(ts)
-    res = run_permutations(_two_group_design(5, 6), [0, 1], y[:, None], tail="two-sided", n_perm=1000)
+    res = run_permutations(
+        ContrastTest(_two_group_design(5, 6), [0, 1], tail="two-sided"), y[:, None], Rearrangements(n_perm=1000)
+    )
     expected = np.mean(np.abs(ts) >= abs(t_obs) * (1 - 1e-12))
     assert res.p_perm[0] == pytest.approx(expected, rel=1e-12)
     # Sorted null of |t| equals the enumeration's (the identity is one of the 462).
@@ -73,7 +79,7 @@ def test_two_sample_enumeration_by_itertools():
 
 def test_sign_flip_exact_matches_scipy():
     d = np.array(D)
-    res = run_permutations(np.ones((8, 1)), [1], d[:, None], tail="greater", n_perm=5000)
+    res = run_permutations(ContrastTest(np.ones((8, 1)), [1], tail="greater"), d[:, None], Rearrangements(n_perm=5000))
     # scipy.stats.permutation_test with permutation_type="samples" on one sample = sign flips.
     ref = stats.permutation_test(
         (d,),
@@ -94,7 +100,7 @@ def test_random_draws_when_too_many_and_p_floor():
     X = _two_group_design(15, 15)
     y = rng.standard_normal((n, 4))
     y[:15, 0] += 10.0  # a huge effect: only the identity reaches it
-    res = run_permutations(X, [0, 1], y, n_perm=200, seed=11)
+    res = run_permutations(ContrastTest(X, [0, 1]), y, Rearrangements(n_perm=200, seed=11))
     assert not res.exhaustive and res.n_perm == 200 and res.seed == 11
     assert res.n_possible == math.comb(30, 15)
     # p = count / J with the identity counted, so never below 1/J (Winkler et al. 2014).
@@ -122,7 +128,7 @@ def _study(seed: int, n: int = 14, v: int = 5):
 def test_identity_reproduces_statsmodels_t(tail):
     X, Y = _study(1)
     L = np.array([[0, 1, 0, 0.0]])
-    res = run_permutations(X, L, Y, tail=tail, n_perm=50, seed=2)
+    res = run_permutations(ContrastTest(X, L, tail=tail), Y, Rearrangements(n_perm=50, seed=2))
     for j in range(Y.shape[1]):
         # statsmodels OLS t_test
         t_ref = sm.OLS(Y[:, j], X).fit().t_test(L).tvalue.item()
@@ -132,7 +138,7 @@ def test_identity_reproduces_statsmodels_t(tail):
 def test_identity_reproduces_statsmodels_f():
     X, Y = _study(2)
     L = np.array([[0, 1, 0, 0.0], [0, 0, 0, 1.0]])
-    res = run_permutations(X, L, Y, kind="F", n_perm=50, seed=2)
+    res = run_permutations(ContrastTest(X, L, kind="F"), Y, Rearrangements(n_perm=50, seed=2))
     for j in range(Y.shape[1]):
         f_ref = float(np.squeeze(sm.OLS(Y[:, j], X).fit().f_test(L).fvalue))  # statsmodels OLS f_test
         assert res.stat[j] == pytest.approx(f_ref, rel=1e-10)
@@ -198,7 +204,7 @@ def test_freedman_lane_equals_brute_force(method, kind, blocks, whole):
 def test_freedman_lane_p_values_from_brute_force_distribution():
     X, Y = _study(7, n=16, v=6)
     L = np.array([[0, 1, 0, 0.0]])
-    res = run_permutations(X, L, Y, n_perm=400, seed=9, tail="two-sided")
+    res = run_permutations(ContrastTest(X, L, tail="two-sided"), Y, Rearrangements(n_perm=400, seed=9))
     plan = plan_contrast(X, L)
     pset = permutation_set(16, 400, "permute", seed=9, classes=plan.classes)
     null = np.abs(_brute_force_fl(X, L, Y, pset, "t"))
@@ -236,16 +242,16 @@ def test_errors():
     with pytest.raises(ModelError):
         plan_contrast(np.eye(3), [1, 0, 0])  # no residual df
     with pytest.raises(InputError):
-        run_permutations(X, [0, 1], np.zeros((7, 3)))
+        run_permutations(ContrastTest(X, [0, 1]), np.zeros((7, 3)))
     with pytest.raises(InputError):
-        run_permutations(X, [0, 1], np.zeros((8, 3)), tfce_params=None, cluster_z=3.1)
+        run_permutations(ContrastTest(X, [0, 1]), np.zeros((8, 3)), maps=MapSettings(tfce=None, cluster_z=3.1))
 
 
 def test_constant_voxel_gives_nan():
     X = _two_group_design(4, 4)
     Y = np.random.default_rng(0).standard_normal((8, 3))
     Y[:, 1] = 5.0
-    res = run_permutations(X, [0, 1], Y, n_perm=30, seed=1)
+    res = run_permutations(ContrastTest(X, [0, 1]), Y, Rearrangements(n_perm=30, seed=1))
     assert np.isnan(res.stat[1]) and np.isnan(res.p_perm[1]) and np.isnan(res.p_fwe[1])
     assert np.all(np.isfinite(res.p_perm[[0, 2]]))
 

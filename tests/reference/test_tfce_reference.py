@@ -15,9 +15,14 @@ from scipy import ndimage, sparse, stats
 from scipy.sparse import csgraph
 
 from groupmodel.inference.clusters import cluster_table, label_clusters, stat_threshold
-from groupmodel.inference.driver import chunk_statistics, plan_contrast, run_permutations
+from groupmodel.inference.driver import run_permutations
+from groupmodel.inference.freedman_lane import plan_contrast
+from groupmodel.inference.graph import Adjacency, grid_adjacency, mesh_adjacency
+from groupmodel.inference.kernel import chunk_statistics
 from groupmodel.inference.rearrangements import permutation_set
-from groupmodel.inference.tfce import Adjacency, TfceParams, grid_adjacency, mesh_adjacency, tfce
+from groupmodel.inference.results import ClusterResult, TfceResult
+from groupmodel.inference.settings import ContrastTest, MapSettings, Rearrangements
+from groupmodel.inference.tfce import TfceParams, tfce
 
 STRUCT = {c: ndimage.generate_binary_structure(3, r) for c, r in ((6, 1), (18, 2), (26, 3))}
 
@@ -197,8 +202,10 @@ def test_engine_tfce_and_cluster_p_against_brute_force():
     Y = smooth / smooth.std() + 0.8 * X[:, [1]] * (np.arange(V) < 25)
     adj = grid_adjacency(mask)
     res = run_permutations(
-        X, [0, 1, 0], Y, n_perm=60, seed=3, adjacency=adj, tfce_params=TfceParams(dh=0.1), cluster_z=1.5
+        ContrastTest(X, [0, 1, 0]), Y, Rearrangements(n_perm=60, seed=3),
+        MapSettings(adjacency=adj, tfce=TfceParams(dh=0.1), cluster_z=1.5),
     )
+    tf, cl = res.whole_map(TfceResult), res.whole_map(ClusterResult)
     plan = plan_contrast(X, [0, 1, 0])
     pset = permutation_set(n, 60, "permute", seed=3, classes=plan.classes)
     maps = chunk_statistics(plan, pset.perm, pset.flips, Y)
@@ -214,17 +221,17 @@ def test_engine_tfce_and_cluster_p_against_brute_force():
         sizes = [np.bincount(ndimage.label(mask & (s * img >= thr), structure=STRUCT[26])[0].ravel())[1:]
                  for s in (1, -1)]
         cmax.append(max([0] + [int(z.max()) for z in sizes if z.size]))
-    np.testing.assert_allclose(res.tfce_max_null, tmax, rtol=1e-10)
-    np.testing.assert_array_equal(res.cluster_max_null, cmax)
+    np.testing.assert_allclose(tf.max_null, tmax, rtol=1e-10)
+    np.testing.assert_array_equal(cl.max_null, cmax)
     img[mask] = maps[0]
     obs = brute_tfce_grid(img, mask, 0.1) - brute_tfce_grid(-img, mask, 0.1)
-    np.testing.assert_allclose(res.tfce, obs, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(tf.map, obs, rtol=1e-10, atol=1e-12)
     expected = (np.array(tmax)[:, None] >= np.abs(obs)[None, :] * (1 - 1e-12)).mean(axis=0)
-    np.testing.assert_array_equal(res.p_tfce_fwe, expected)
+    np.testing.assert_array_equal(tf.p_fwe, expected)
     # Cluster FWE p: fraction of null maxima at least the observed cluster size.
-    for c, size in enumerate(res.clusters.sizes, start=1):
+    for c, size in enumerate(cl.clusters.sizes, start=1):
         p = np.mean(np.array(cmax) >= size)
-        assert res.cluster_p_fwe[c - 1] == p
-        assert np.all(res.p_cluster_fwe[res.clusters.labels == c] == p)
-    assert np.all(res.p_cluster_fwe[res.clusters.labels == 0] == 1.0)
-    assert res.tfce_params.dh == 0.1 and res.tfce_params.E == 0.5 and res.tfce_params.H == 2.0
+        assert cl.cluster_p_fwe[c - 1] == p
+        assert np.all(cl.p_fwe[cl.clusters.labels == c] == p)
+    assert np.all(cl.p_fwe[cl.clusters.labels == 0] == 1.0)
+    assert tf.params.dh == 0.1 and tf.params.E == 0.5 and tf.params.H == 2.0

@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from groupmodel.inference import driver as inference
-from groupmodel.inference.driver import available_cores, cpu_quota
+from groupmodel.runtime import cores
+from groupmodel.runtime.cores import available_cores, cpu_quota
 
 
 def _v2(root: Path, text: str) -> Path:
@@ -44,10 +44,22 @@ def test_no_cgroup_files_or_unreadable_ones(tmp_path: Path) -> None:
 
 
 def test_available_cores_is_capped_by_the_quota(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(inference.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
-    monkeypatch.setattr(inference, "cpu_quota", lambda: 2.5)
+    monkeypatch.setattr(cores.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
+    monkeypatch.setattr(cores, "cpu_quota", lambda: 2.5)
     assert available_cores() == 3  # a fraction of a core still gets a thread
-    monkeypatch.setattr(inference, "cpu_quota", lambda: None)
+    monkeypatch.setattr(cores, "cpu_quota", lambda: None)
     assert available_cores() == 8
-    monkeypatch.setattr(inference, "cpu_quota", lambda: 0.2)
+    monkeypatch.setattr(cores, "cpu_quota", lambda: 0.2)
     assert available_cores() == 1
+
+
+def test_executors_return_results_in_order_and_hand_back_failures() -> None:
+    from groupmodel.runtime.executors import InlineExecutor, ThreadExecutor, thread_executor
+
+    assert isinstance(thread_executor(1), InlineExecutor)
+    for executor in (InlineExecutor(), ThreadExecutor(2)):
+        with executor:
+            assert executor.map(pow, [2, 3, 4], [3, 2, 1]) == [8, 9, 4]
+            failed = executor.submit(divmod, 1, 0)
+            with pytest.raises(ZeroDivisionError):
+                failed.result()

@@ -3,15 +3,8 @@
 The public face of :mod:`groupmodel.analysis` (and of the writers in :mod:`groupmodel.outputs.fit_files`).
 """
 
-from .analysis.voxel_fit import (
-    F_MAPS,
-    T_MAPS,
-    TableFit,
-    VoxelFit,
-    fit_images,
-    fit_table,
-    results_table,
-)
+from .analysis.table_fit import TableFit, fit_table, results_table
+from .analysis.voxel_fit import F_MAPS, T_MAPS, VoxelFit, fit_images
 from .outputs.fit_files import write_table_fit, write_voxel_fit
 
 __all__ = ["F_MAPS", "T_MAPS", "TableFit", "VoxelFit", "fit_images", "fit_table", "results_table",

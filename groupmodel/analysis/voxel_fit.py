@@ -1,7 +1,7 @@
-"""Run the OLS engine over a table column (ROI analysis) or over all chunks of the images.
+"""Fit every hypothesis at every voxel (or vertex) of the images, with corrected inference.
 
-The engine (:mod:`groupmodel.ols`) is a pure function of (design, tests, chunk of data); this module only
-feeds it and collects what it returns.
+The engine (:func:`groupmodel.engine.ols.fit_chunk`) is a pure function of (prepared design, chunk of data);
+this module feeds it the chunks of the loaded images and collects the maps, then runs the corrections.
 """
 
 from __future__ import annotations
@@ -13,87 +13,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..engine.ols import ChunkResult, fit_chunk, prepare
-from ..errors import InputError, ModelError
+from ..engine.ols import Prepared, fit_chunk, prepare
+from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
-from ..text import DISCLAIMER
-from .corrections import InferenceOptions, parametric_corrections, permutation_inference
+from ..runtime.memory import DATA_SHARE, MemoryBudget
+from ..runtime.progress import progress_bar
+from .corrections import HypothesisInference, InferenceOptions, parametric_corrections, permutation_inference
+from .table_fit import require_fittable
 
-
-@dataclass
-class TableFit:
-    """The table-level fit of every hypothesis to one outcome column."""
-
-    model: Model
-    outcome: str
-    result: ChunkResult
-    table: pd.DataFrame
-
-    def format(self) -> str:
-        """The results table for a terminal."""
-        lines = [
-            f"outcome {self.outcome}: {self.model.design.n_observations} observations, "
-            f"{self.result.df_resid} residual df, residual SD {float(np.sqrt(self.result.residual_variance[0])):.6g}",
-        ]
-        frame = self.table.copy()
-        for col in ("estimate", "se", "statistic", "z"):
-            frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
-        frame["p"] = frame["p"].map(lambda v: f"{v:.4g}")
-        lines.append(frame.to_string(index=False))
-        lines.append(DISCLAIMER)
-        return "\n".join(lines)
-
-
-def results_table(model: Model, result: ChunkResult, voxel: int = 0) -> pd.DataFrame:
-    """One row per hypothesis: test, estimate, se, statistic, df1, df2, p (for its tail), z of equal p."""
-    records = []
-    for h in model.hypotheses.values():
-        r = result[h.name]
-        t = h.test == "t"
-        records.append({
-            "hypothesis": h.name,
-            "test": h.test,
-            "tail": h.tail,
-            "estimate": float(r.effect[voxel]) if t else np.nan,
-            "se": float(r.se[voxel]) if t and r.se is not None else np.nan,
-            "statistic": float(r.statistic[voxel]),
-            "df1": r.df1,
-            "df2": r.df2,
-            "p": float(r.p[voxel]),
-            "z": float(r.z[voxel]),
-        })
-    return pd.DataFrame.from_records(
-        records, columns=["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
-    )
-
-
-def _require_fittable(model: Model) -> None:
-    model.raise_for_errors()
-    if not model.hypotheses:
-        raise ModelError(f"{model.spec.name}: the spec has no hypotheses to test; add a 'hypotheses' object")
-
-
-def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
-    """Fit every hypothesis of ``spec`` to the numeric table column ``outcome``.
-
-    Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.
-    """
-    if not isinstance(spec, ModelSpec):
-        spec = load_spec(spec)
-    model = build(spec, numeric_columns=[outcome])
-    _require_fittable(model)
-    y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
-    prepared = prepare(model.design.matrix, model.tests())
-    result = fit_chunk(prepared, y)
-    return TableFit(model, outcome, result, results_table(model, result))
-
-
-# --------------------------------------------------------------------------------------------------
-# Voxelwise fit
-# --------------------------------------------------------------------------------------------------
-#: Share of --memory given to the image data matrix; the rest is for one chunk's work and the result maps.
-DATA_SHARE = 0.6
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -162,17 +90,6 @@ class VoxelFit:
         return pd.DataFrame(rows)
 
 
-def _progress(total: int, desc: str, unit: str = "vox") -> Any:
-    """A tqdm bar on a terminal, nothing otherwise."""
-    import sys
-
-    if not sys.stderr.isatty():
-        return None
-    from tqdm import tqdm
-
-    return tqdm(total=total, desc=desc, unit=unit, leave=False)
-
-
 def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, list[tuple[str, str]]]:
     """Resolve and check the images of a model's observations; rebuild the model if some are dropped.
 
@@ -238,48 +155,73 @@ def fit_images(
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
     """
-    from ..images import chunk_size_for, load_masked
+    from ..images import chunk_size_for
 
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
         inference = InferenceOptions.from_spec(spec)
+    budget = MemoryBudget(memory_bytes)
     model = build(spec)
-    _require_fittable(model)
+    require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
-    _require_fittable(model)
-    tests = model.tests()
-    prepared = prepare(model.design.matrix, tests)
-    mask_path = mask if mask is not None else spec.mask
-    # Reading (decompressing) the images is usually the longest step: it gets its own bar.
-    read_bar = _progress(len(source), "reading images", unit="image") if progress else None
-
-    def images_read(done: int, total: int) -> None:
-        read_bar.update(done - read_bar.n)
-
-    try:
-        data = load_masked(source, mask_path, int(memory_bytes * DATA_SHARE),
-                           progress=None if read_bar is None else images_read)
-    finally:
-        if read_bar is not None:
-            read_bar.close()
-    bar = None
+    require_fittable(model)
+    prepared = prepare(model.design.matrix, model.tests())
+    data = _load(source, mask if mask is not None else spec.mask, budget, progress)
     try:
         n_vox = data.n_in_mask
-        maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
-                for h in model.hypotheses.values()}
-        resid_var = np.empty(n_vox)
         if chunk_voxels is None:
-            n_maps = sum(len(m) for m in maps.values()) + 1
-            work = max(memory_bytes * (1 - DATA_SHARE) - n_maps * n_vox * 8, memory_bytes * 0.1)
-            chunk_voxels = chunk_size_for(model.design.n_observations, len(tests), int(work))
-        bar = _progress(n_vox, "fitting") if progress else None
+            n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
+            chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
+                                          budget.chunk_work_bytes(n_maps, n_vox))
+        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        warnings = list(data.warnings) + _flat_warnings(maps, n_vox)
+        for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
+            maps[name].update(extra)
+        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
+        for name, res in permuted.items():
+            maps[name].update(res.maps)
+        report = {
+            "voxels_in_mask": int(n_vox),
+            "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
+            "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
+            "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
+        }
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
+                        warnings, inference=inference.as_dict(),
+                        records={n: r.record for n, r in permuted.items()},
+                        tables={n: r.tables for n, r in permuted.items()})
+    finally:
+        data.close()
+
+
+def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool) -> Any:
+    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar."""
+    from ..images import load_masked
+
+    bar = progress_bar(len(source), "reading images", unit="image", enabled=progress)
+    try:
+        return load_masked(source, mask, budget.data_bytes,
+                           progress=(lambda done, total: bar.update_to(done)) if bar.shown else None)
+    finally:
+        bar.close()
+
+
+def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int,
+                     progress: bool) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
+    """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
+    chunk (the corrected p maps are allocated here and filled by the corrections)."""
+    n_vox = data.n_in_mask
+    maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
+            for h in model.hypotheses.values()}
+    resid_var = np.empty(n_vox)
+    bar = progress_bar(n_vox, "fitting", enabled=progress)
+    try:
         for cols, y in data.chunks(chunk_voxels):
             res = fit_chunk(prepared, y)
             resid_var[cols] = res.residual_variance
             for h in model.hypotheses.values():
-                r = res[h.name]
-                m = maps[h.name]
+                r, m = res[h.name], maps[h.name]
                 if h.test == "t":
                     m["effect"][cols] = r.effect
                     m["se"][cols] = r.se
@@ -289,59 +231,43 @@ def fit_images(
                 m["z"][cols] = r.z
                 m["p"][cols] = r.p
                 m["mlog10p"][cols] = r.mlog10p
-            if bar is not None:
-                bar.update(cols.stop - cols.start)
-        warnings = list(data.warnings)
-        if maps:
-            first = next(iter(maps.values()))
-            n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
-            if n_flat:
-                warnings.append(
-                    f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
-                    "value in every image: their t, F, z and p are NaN (not tested)"
-                )
-        for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
-            maps[name].update(extra)
-        records: dict[str, dict[str, Any]] = {}
-        tables: dict[str, dict[str, pd.DataFrame]] = {}
-        if inference.active:
-            if bar is not None:
-                bar.close()
-            perm_bar = _progress(inference.permutations * len(maps), "permutations", unit="perm") \
-                if progress else None
-            done_before: dict[str, int] = {}
-
-            def perm_progress(name: str, done: int, total: int) -> None:
-                if perm_bar is not None:
-                    perm_bar.update(done - done_before.get(name, 0))
-                    done_before[name] = done
-
-            # Half of the working share each (a fifth of the budget) for residualised data and whole maps.
-            share = int(memory_bytes * (1 - DATA_SHARE) * 0.5)
-            try:
-                results = permutation_inference(
-                    model, data, inference, cache_bytes=share, maps_bytes=share,
-                    chunk_voxels=chunk_voxels, progress=perm_progress,
-                )
-            finally:
-                if perm_bar is not None:
-                    perm_bar.close()
-            for name, res in results.items():
-                maps[name].update(res.maps)
-                records[name] = res.record
-                tables[name] = res.tables
-        report = {
-            "voxels_in_mask": int(n_vox),
-            "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
-            "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
-            "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
-        }
-        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
-                        warnings, inference=inference.as_dict(), records=records, tables=tables)
+            bar.update(cols.stop - cols.start)
     finally:
-        if bar is not None:
-            bar.close()
-        data.close()
+        bar.close()
+    return maps, resid_var
 
 
-__all__ = ["TableFit", "VoxelFit", "fit_table", "fit_images", "results_table", "InputError"]
+def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int) -> list[str]:
+    """A warning for voxels with (numerically) zero residual variance: their statistics are NaN."""
+    if not maps:
+        return []
+    first = next(iter(maps.values()))
+    n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+    if not n_flat:
+        return []
+    return [f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
+            "value in every image: their t, F, z and p are NaN (not tested)"]
+
+
+def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
+                      chunk_voxels: int, progress: bool) -> dict[str, HypothesisInference]:
+    """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
+    if not options.active:
+        return {}
+    bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
+                       enabled=progress)
+    done_before: dict[str, int] = {}
+
+    def report(name: str, done: int, total: int) -> None:
+        bar.update(done - done_before.get(name, 0))
+        done_before[name] = done
+
+    try:
+        return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
+                                     maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
+                                     progress=report)
+    finally:
+        bar.close()
+
+
+__all__ = ["DATA_SHARE", "F_MAPS", "T_MAPS", "VoxelFit", "fit_images", "open_images"]

@@ -37,7 +37,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
 
 def _fit_table(args: argparse.Namespace) -> int:
-    from ..analysis.voxel_fit import fit_table
+    from ..analysis.table_fit import fit_table
     from ..outputs.fit_files import write_table_fit
 
     fit = fit_table(args.spec, args.outcome)

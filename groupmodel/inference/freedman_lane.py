@@ -43,6 +43,7 @@ from typing import Literal
 
 import numpy as np
 
+from ..engine.linalg import ESTIMABILITY_TOL, rank_tolerance
 from ..errors import EstimabilityError, InputError, ModelError
 from .rearrangements import default_method
 
@@ -61,8 +62,6 @@ Tail = Literal["two-sided", "greater", "less"]
 Kind = Literal["t", "F"]
 
 _EPS = float(np.finfo(np.float64).eps)
-#: Relative tolerance of the estimability check, as in :mod:`groupmodel.ols`.
-ESTIMABILITY_RTOL = 1e-8
 #: Singular values of the contrast in design coordinates below this fraction of the largest are 0.
 _CONTRAST_RANK_RTOL = 1e-10
 #: Interest rows equal to this relative precision are the same class (indistinguishable).
@@ -148,13 +147,12 @@ def partition(design: np.ndarray, weights: np.ndarray, kind: Kind = "t") -> Part
     L = _as_weights(weights, X.shape[1])
     n, p = X.shape
     U, s, Vt = np.linalg.svd(X, full_matrices=False)
-    tol = s.max() * max(n, p) * _EPS if s.size else 0.0
-    r = int(np.sum(s > tol))
+    r = int(np.sum(s > rank_tolerance(X, s)))
     if r == 0:
         raise ModelError("the design is all zeros (in permutation inference); check the design matrix")
     Ur, sr, Vr = U[:, :r], s[:r], Vt[:r].T
     resid = L - (L @ Vr) @ Vr.T
-    bad = np.linalg.norm(resid, axis=1) > ESTIMABILITY_RTOL * np.maximum(np.linalg.norm(L, axis=1), 1e-300)
+    bad = np.linalg.norm(resid, axis=1) > ESTIMABILITY_TOL * np.maximum(np.linalg.norm(L, axis=1), 1e-300)
     if bad.any():
         raise EstimabilityError(
             f"contrast rows {np.flatnonzero(bad).tolist()} are not estimable in this design: they are "

@@ -14,7 +14,8 @@ from .folder import OutputFolder
 from .provenance import provenance
 
 if TYPE_CHECKING:
-    from ..analysis.voxel_fit import TableFit, VoxelFit
+    from ..analysis.table_fit import TableFit
+    from ..analysis.voxel_fit import VoxelFit
     from ..model.hypotheses import Hypothesis
 
 

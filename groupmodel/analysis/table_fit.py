@@ -1,0 +1,85 @@
+"""Fit every hypothesis to one numeric column of the participants table (an ROI value, a score)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..engine.ols import ChunkResult, fit_chunk, prepare
+from ..errors import ModelError
+from ..model.assembly import Model, build
+from ..model.spec import ModelSpec, load_spec
+from ..text import DISCLAIMER
+
+#: Columns of results.tsv, in order.
+RESULT_COLUMNS = ["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
+
+
+@dataclass
+class TableFit:
+    """The table-level fit of every hypothesis to one outcome column."""
+
+    model: Model
+    outcome: str
+    result: ChunkResult
+    table: pd.DataFrame
+
+    def format(self) -> str:
+        """The results table for a terminal."""
+        lines = [
+            f"outcome {self.outcome}: {self.model.design.n_observations} observations, "
+            f"{self.result.df_resid} residual df, residual SD {float(np.sqrt(self.result.residual_variance[0])):.6g}",
+        ]
+        frame = self.table.copy()
+        for col in ("estimate", "se", "statistic", "z"):
+            frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
+        frame["p"] = frame["p"].map(lambda v: f"{v:.4g}")
+        lines.append(frame.to_string(index=False))
+        lines.append(DISCLAIMER)
+        return "\n".join(lines)
+
+
+def results_table(model: Model, result: ChunkResult, voxel: int = 0) -> pd.DataFrame:
+    """One row per hypothesis: test, estimate, se, statistic, df1, df2, p (for its tail), z of equal p."""
+    records = []
+    for h in model.hypotheses.values():
+        r = result[h.name]
+        t = h.test == "t"
+        records.append({
+            "hypothesis": h.name,
+            "test": h.test,
+            "tail": h.tail,
+            "estimate": float(r.effect[voxel]) if t else np.nan,
+            "se": float(r.se[voxel]) if t and r.se is not None else np.nan,
+            "statistic": float(r.statistic[voxel]),
+            "df1": r.df1,
+            "df2": r.df2,
+            "p": float(r.p[voxel]),
+            "z": float(r.z[voxel]),
+        })
+    return pd.DataFrame.from_records(records, columns=RESULT_COLUMNS)
+
+
+def require_fittable(model: Model) -> None:
+    """Raise a ModelError for a model with errors or without hypotheses (exit code 1)."""
+    model.raise_for_errors()
+    if not model.hypotheses:
+        raise ModelError(f"{model.spec.name}: the spec has no hypotheses to test; add a 'hypotheses' object")
+
+
+def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
+    """Fit every hypothesis of ``spec`` to the numeric table column ``outcome``.
+
+    Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.
+    """
+    if not isinstance(spec, ModelSpec):
+        spec = load_spec(spec)
+    model = build(spec, numeric_columns=[outcome])
+    require_fittable(model)
+    y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
+    prepared = prepare(model.design.matrix, model.tests())
+    result = fit_chunk(prepared, y)
+    return TableFit(model, outcome, result, results_table(model, result))

@@ -1,0 +1,40 @@
+"""How a fit divides its memory budget (``--memory``): one definition of every share.
+
+The image data matrix gets :data:`DATA_SHARE` of the budget; the rest is working memory: one chunk's
+arrays and the result maps of the parametric pass, and, during permutations, half of it each for the
+residualised data the engine keeps and for the whole statistic maps of TFCE and cluster batches.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+#: Share of the budget given to the image data matrix.
+DATA_SHARE = 0.6
+#: The least working memory a chunk is given, as a share of the budget, however many maps are kept.
+MIN_WORK_SHARE = 0.1
+#: Bytes of one float64 value of a result map.
+MAP_VALUE_BYTES = 8
+
+
+@dataclass(frozen=True)
+class MemoryBudget:
+    """A memory budget in bytes and its shares."""
+
+    total: int
+
+    @property
+    def data_bytes(self) -> int:
+        """For the image data matrix (loaded, or spilled to disk beyond this)."""
+        return int(self.total * DATA_SHARE)
+
+    def chunk_work_bytes(self, n_maps: int, n_elements: int) -> int:
+        """For one chunk's work, after ``n_maps`` float64 maps of ``n_elements`` values are kept."""
+        return int(max(self.total * (1 - DATA_SHARE) - n_maps * n_elements * MAP_VALUE_BYTES,
+                       self.total * MIN_WORK_SHARE))
+
+    @property
+    def permutation_bytes(self) -> int:
+        """For each of: the residualised data the permutation engine caches, and the whole maps of
+        TFCE and cluster batches (half of the working share each, a fifth of the budget)."""
+        return int(self.total * (1 - DATA_SHARE) * 0.5)

@@ -8,7 +8,7 @@ maps come out, what their sidecars record, and the cluster tables.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -23,6 +23,32 @@ METHODS = {"auto": "auto", "permutation": "permute", "sign_flip": "flip", "both"
 _METHOD_NAMES = {"permute": "permutation", "flip": "sign_flip", "both": "both"}
 #: Level at which corrected maps are summarised in cluster tables.
 TABLE_ALPHA = 0.05
+#: Relative size (of the largest weight) under which a row of cell weights counts as summing to zero.
+WEIGHT_SUM_TOL = 1e-8
+#: The rule of ``method: auto``, as recorded in summary.json.
+AUTO_RULE = ("auto: sign_flip for a hypothesis whose weights over cell means do not sum to zero (a mean or a "
+             "combination of means), permutation when they sum to zero (differences, interactions, slopes)")
+
+
+def hypothesis_method(h: Any, method: str) -> str:
+    """The inference engine's method for one hypothesis under the user's ``method`` setting.
+
+    ``auto``: sign flips (``flip``) when some row of the hypothesis's weights over cell means does not sum
+    to zero, since row permutation leaves the mean of the data, and so a mean or a combination of means,
+    unchanged; permutation (``permute``) when every row sums to zero (differences, interactions, trends)
+    and for slopes (weights over cell slopes).  Raw weights that no combination of cell means reproduces
+    are left to the engine's rule (``auto``: the same question asked of the design, whether the contrast
+    moves when a constant is added to every observation).  Any other setting is used as given.
+    """
+    if method != "auto":
+        return METHODS[method]
+    if h.on_slopes:
+        return "permute"
+    if h.cell_weights is None:
+        return "auto"
+    w = np.asarray(h.cell_weights, dtype=float)
+    sums = np.abs(w.sum(axis=1))
+    return "flip" if bool(np.any(sums > WEIGHT_SUM_TOL * np.abs(w).max(axis=1))) else "permute"
 
 
 def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str, np.ndarray]]:
@@ -131,7 +157,7 @@ def permutation_inference(
     n_elements = int(data.data.shape[1])
     batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
     rearrangements = Rearrangements(
-        n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
+        n_perm=options.permutations, method="auto", blocks=blocks,
         whole_blocks=options.whole_blocks, seed=options.seed,
     )
     map_settings = MapSettings(
@@ -148,7 +174,8 @@ def permutation_inference(
                     progress(_name, done, total)
 
             test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.tail, name=h.name)
-            res = run_permutations(test, data.columns(), rearrangements, map_settings, execution, progress=report)
+            chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
+            res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
             out[h.name] = _hypothesis_inference(res, h, options, adjacency, ijk, data.grid)
     return out
 

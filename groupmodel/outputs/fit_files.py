@@ -171,9 +171,24 @@ def _write_summary(o: OutputFolder, fit: VoxelFit) -> list[str]:
         "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
         "df_resid": fit.df_resid, "mask": fit.mask_report,
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
-        "warnings": fit.warnings, "inference": fit.inference,
+        "warnings": fit.warnings, "inference": _inference_record(fit),
     })
     return ["summary.tsv", "summary.json"]
+
+
+def _inference_record(fit: VoxelFit) -> dict[str, Any] | None:
+    """The inference settings, with the method each hypothesis was tested with (never ``auto``) when
+    permutations ran; the setting asked for is kept as ``method_setting``."""
+    if fit.inference is None or not fit.records:
+        return fit.inference
+    out: dict[str, Any] = {}
+    for key, value in fit.inference.items():
+        if key == "method":
+            out["method"] = {name: rec["method"] for name, rec in fit.records.items()}
+            out["method_setting"] = value
+        else:
+            out[key] = value
+    return out
 
 
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,

@@ -107,7 +107,8 @@ def test_cli_writes_permutation_maps_sidecars_and_cluster_tables(study, tmp_path
     code = main(["fit", str(study), "--out", str(out), "--permutations", "30", "--seed", "7", "--tfce",
                  "--cluster-threshold", "2.3"])
     assert code == 0
-    assert "permutation inference: 30 rearrangements" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert "permutation inference: seed 7, Freedman-Lane" in printed and "  group: row permutation, 30 rearrangements" in printed
     side = json.loads((out / "group_p_tfce_fwe.json").read_text())
     for key in ("hypothesis", "statistic", "method", "permutations", "exhaustive", "seed", "tfce", "df1", "df2"):
         assert key in side, key

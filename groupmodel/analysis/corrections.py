@@ -184,6 +184,7 @@ def _hypothesis_inference(res: Any, h: Any, options: InferenceOptions, adjacency
                           grid: Any) -> HypothesisInference:
     """The maps, record and tables of one hypothesis's permutation result (TFCE, then clusters)."""
     from ..inference.results import TfceResult
+    from ..inference.tfce import DH_RULE
 
     record = {
         "method": _METHOD_NAMES.get(res.method, res.method),
@@ -202,6 +203,7 @@ def _hypothesis_inference(res: Any, h: Any, options: InferenceOptions, adjacency
             maps["tfce"] = part.map
             maps["p_tfce_fwe"] = part.p_fwe
             record["tfce"] = {"E": part.params.E, "H": part.params.H, "dh": part.params.dh,
+                              "dh_from": "tfce_step (given)" if options.tfce_step is not None else DH_RULE,
                               "rule": part.params.rule, "connectivity": options.connectivity}
             tables["tfce_fwe"] = _significant_table(res.stat, part.p_fwe, h, adjacency, ijk, grid)
         else:

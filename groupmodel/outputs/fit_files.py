@@ -93,7 +93,15 @@ _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effec
 
 
 def _map_name(grid: Any, stem: str) -> str:
-    return stem + (".gii" if grid.kind == "gifti" else ".nii.gz")
+    """``stem.nii.gz`` for volumes; ``stem.func.gii`` for surface data (the GIFTI name of data over vertices)."""
+    return stem + (".func.gii" if grid.kind == "gifti" else ".nii.gz")
+
+
+def _in_words_of(grid: Any, text: str) -> str:
+    """A note about voxels said of vertices for surface data."""
+    if grid.kind != "gifti":
+        return text
+    return text.replace("voxels", "vertices").replace("voxel's", "vertex's").replace("voxel", "vertex")
 
 
 def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
@@ -139,7 +147,7 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str
         # the sidecar is named after the map's stem: hypothesis names may contain dots
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
-            extra["correction"] = CORRECTION_NOTES[stat]
+            extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
         o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
         written.append(fname)
     for kind, table in fit.tables.get(h.name, {}).items():
@@ -147,7 +155,7 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str
         o.write_tsv(tname, table)
         o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
             fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
-            clusters=CLUSTER_KINDS[kind]))
+            clusters=_in_words_of(fit.grid, CLUSTER_KINDS[kind])))
         written.append(tname)
     return written
 

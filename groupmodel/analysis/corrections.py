@@ -112,6 +112,7 @@ def read_mesh_faces(path: Path, n_vertices: int) -> np.ndarray:
     """
     import nibabel as nib
 
+    path = Path(path)
     where = f"inference.mesh {path}"
     if not path.is_file():
         raise InputError(f"{where}: expected a GIFTI surface file; found no file there; fix the path "

@@ -115,7 +115,8 @@ def _add_inference_options(f: argparse.ArgumentParser) -> None:
                    help="random seed for permutations (default 0; recorded in every sidecar)")
     f.add_argument("--method", choices=["auto", "permutation", "sign_flip", "both"], default="auto",
                    help="how to rearrange the data: row permutation, sign flips, or both (default auto: "
-                   "sign flips for one-sample hypotheses, permutation otherwise)")
+                   "sign flips for a hypothesis about a mean, i.e. weights over cell means that do not sum to zero; "
+                   "permutation for differences, interactions and slopes)")
     f.add_argument("--blocks", help="table column of exchangeability blocks (e.g. --blocks family_id)")
     f.add_argument("--whole-blocks", action="store_true", help="permute blocks as wholes instead of within")
     f.add_argument("--tfce", action="store_true", help="threshold-free cluster enhancement (E=0.5, H=2)")

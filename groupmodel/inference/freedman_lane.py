@@ -45,10 +45,10 @@ import numpy as np
 
 from ..engine.linalg import ESTIMABILITY_TOL, rank_tolerance
 from ..errors import EstimabilityError, InputError, ModelError
-from .rearrangements import default_method
 
 __all__ = [
     "ContrastPlan",
+    "MEAN_SHIFT_TOL",
     "Kind",
     "Partition",
     "Tail",
@@ -214,6 +214,24 @@ def _moving_nuisance(nuisance: np.ndarray, invariant: np.ndarray | None) -> np.n
     return nuisance @ A[:, ~shared]
 
 
+#: Relative size (of sqrt(n)) under which the interest space counts as orthogonal to the constant vector.
+MEAN_SHIFT_TOL = 1e-8
+
+
+def moves_with_mean(part: Partition) -> bool:
+    """True when adding a constant to every observation changes the contrast ``L b``.
+
+    ``L b`` changes by ``c M U' 1`` when ``c`` is added to every observation, which is non-zero exactly when
+    the constant vector has a component in the interest space: ``||U_i' 1|| > 0`` (to ``MEAN_SHIFT_TOL``
+    of ``sqrt(n)``, its largest value).  In a model that contains the grand mean, this is the case when the
+    contrast's weights over cell means do not sum to zero: a mean or a combination of means, which row
+    permutation cannot move (it leaves the mean of the data unchanged), but sign flips can.  Differences,
+    interactions and slopes do not move with the mean: permutation tests them.
+    """
+    shift = np.linalg.norm(part.interest.sum(axis=0))
+    return bool(shift > MEAN_SHIFT_TOL * math.sqrt(part.n))
+
+
 def _row_classes(rows: np.ndarray) -> np.ndarray:
     """Class per observation: observations whose design-side columns are equal share a class."""
     scale = np.abs(rows).max()
@@ -275,8 +293,8 @@ def plan_contrast(
 ) -> ContrastPlan:
     """Prepare one contrast for permutation inference (see the module docstring).
 
-    ``method="auto"`` chooses sign flips when the interest part is the same on every row (the
-    one-sample case), else permutation.
+    ``method="auto"`` chooses sign flips when the contrast concerns a mean (:func:`moves_with_mean`),
+    else permutation.
     """
     if kind not in ("t", "F"):
         raise InputError(f"kind must be 't' or 'F'; got {kind!r} (in {name or 'contrast'})")
@@ -293,7 +311,7 @@ def plan_contrast(
                 f"one block label per row was expected ({n}); got shape {blocks.shape} (in {name or 'contrast'})"
             )
     if method == "auto":
-        method = default_method(_row_classes(part.interest.T))
+        method = "flip" if moves_with_mean(part) else "permute"
     if method not in ("permute", "flip", "both"):
         raise InputError(f"method must be 'auto', 'permute', 'flip' or 'both'; got {method!r}")
     moving = _moving_nuisance(part.nuisance, _invariant_basis(n, method, blocks, whole_blocks))

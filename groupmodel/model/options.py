@@ -27,8 +27,8 @@ class InferenceOptions:
     seed : int
         Seed of the random rearrangements (default 0, always recorded).
     method : {"auto", "permutation", "sign_flip", "both"}
-        ``auto``: sign flips when a hypothesis's effect of interest is constant over rows (one-sample),
-        row permutation otherwise.
+        ``auto``: per hypothesis, sign flips when its weights over cell means do not sum to zero (a mean
+        or a combination of means), row permutation when they do (differences, interactions, slopes).
     blocks : str or None
         Table column of exchangeability blocks.
     whole_blocks : bool

@@ -59,6 +59,9 @@ def _claimed_ids(ctx: AuditContext) -> list[str] | None:
     x = ctx.files.x
     if x.ids is not None:
         return list(x.ids)
+    if ctx.columns is not None and ctx.columns.follows_images:
+        ids = ctx.columns.table.ids
+        return [ids[t] for t in ctx.columns.align]
     if ctx.alignment is not None and ctx.alignment.claimed is not None:
         ids = ctx.alignment.table.ids
         return [ids[t] if t >= 0 else "?" for t in ctx.alignment.claimed]

@@ -1,0 +1,357 @@
+"""Which participant every design row is, found without trusting the rows' order (part of ``groupmodel check``).
+
+A design file without a ``participant_id`` column is read as following the participants table.  When it does
+not (rows sorted by group, a block of rows moved), the columns cannot be read in table order.  This module
+finds the rows' participants from the rows themselves:
+
+* the factor columns of a correct design carry one coding per cell, so the design rows fall into groups of
+  equal coding whose sizes must be the numbers of participants per cell in the table; each group is matched
+  to a cell (the matching under which the columns are the simplest codings of the factors, then the one that
+  keeps most rows where the table has them, then the conventional codings and level order);
+* a covariate column (``a + b x covariate``) carries every participant's own value, whatever the order: where
+  the values are distinct it says which participant each row is, also within a cell;
+* the reordering is then recognised as one simple permutation where it is one (see
+  :mod:`groupmodel.audit.reorder_words`).
+
+Rows of one cell with no covariate column to tell them apart stay interchangeable: within a cell the table
+order is assumed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from itertools import combinations, permutations, product
+
+import numpy as np
+
+from ..model.coding import make_coding
+from .context import Files
+from .reorder_words import Family, simplest_family
+from .table_view import PreparedTable, TableView
+
+#: At most this many matchings of coding groups to cells are compared (beyond it: the best by agreement only).
+MAX_MATCHINGS = 5040
+
+
+@dataclass(frozen=True)
+class Matched:
+    """The result of matching design rows to participants without trusting their order.
+
+    Attributes
+    ----------
+    order : ndarray of int, shape (n,)
+        For every design row, its position in the expected participant order (0-based).
+    row_codes : dict
+        Factor -> (n,) level index of every design row (as its coding says).
+    factors : tuple of str
+        The factors whose cells the factor columns encode.
+    covariate : str or None
+        The covariate whose column told rows apart (None: the factor columns only).
+    exact : bool
+        True when every row's participant is certain (no two interchangeable rows were moved).
+    """
+
+    order: np.ndarray
+    row_codes: dict[str, np.ndarray]
+    factors: tuple[str, ...]
+    covariate: str | None
+    exact: bool
+    family: Family
+
+
+@dataclass(frozen=True)
+class _Labels:
+    """Integer labels of the expected positions and of the design rows (equal labels: indistinguishable)."""
+
+    pos: np.ndarray
+    row: np.ndarray
+    row_codes: dict[str, np.ndarray]
+    factors: tuple[str, ...]
+    covariate: str | None
+
+
+def discrete_columns(files: Files, n_cells: int) -> list[int]:
+    """Columns taking 2 to ``n_cells`` distinct values (up to their typed precision): codings of the factors."""
+    x = files.x
+    out = []
+    for j in range(x.n_columns):
+        vals = np.round(x.values[:, j] / (2 * x.tolerance(j)))
+        k = len(np.unique(vals))
+        if 2 <= k <= max(2, n_cells):
+            out.append(j)
+    return out
+
+
+def match_rows(files: Files, table: PreparedTable, expected: np.ndarray) -> Matched | None:
+    """Every design row's position in ``expected`` (table rows in the order the design claims), or None.
+
+    None when the rows cannot be matched to the cells (or the covariate values) of the expected participants.
+    """
+    view = table.view(np.asarray(expected, dtype=int))
+    if any((c < 0).any() for c in view.codes.values()):
+        return None
+    labels = _labels(files, view)
+    if labels is None:
+        return None
+    keys = {f: (labels.row_codes[f], view.codes[f]) for f in labels.factors}
+    order, family = simplest_family(labels.row, labels.pos, keys)
+    counts = np.bincount(labels.pos)
+    moved = order != np.arange(order.size)
+    exact = bool((counts[labels.pos[order[moved]]] == 1).all()) if moved.any() else True
+    return Matched(order, labels.row_codes, labels.factors, labels.covariate, exact, family)
+
+
+def _labels(files: Files, view: TableView) -> _Labels | None:
+    """Cells (and covariate values, where a column carries them) of expected positions and of design rows."""
+    names = tuple(view.factors)
+    full = view.key(names)
+    n_cells = len(np.unique(full))
+    discrete = discrete_columns(files, n_cells) if names else []
+    cov = _covariate_classes(files, view, discrete)
+    if not discrete:
+        if cov is None:
+            return None
+        pos, row, c = cov
+        return _Labels(pos, row, {}, (), c)
+    x = files.x
+    pats = np.array([np.round(x.values[:, j] / (2 * x.tolerance(j))) for j in discrete]).T
+    _, pid = np.unique(pats, axis=0, return_inverse=True)
+    pid = pid.ravel()
+    best: tuple[tuple, tuple[str, ...], dict[int, int]] | None = None
+    for k in range(1, len(names) + 1):
+        for s in combinations(names, k):
+            found = _match_cells(pid, view, s, (files, discrete, cov))
+            if found is not None and (best is None or found[0] < best[0]):
+                best = (found[0], s, found[1])
+    if best is None:
+        return None
+    _, s, bij = best
+    cell_pos = view.key(s)
+    cell_row = np.array([bij[int(p)] for p in pid])
+    dims = view.dims(s)
+    idx = np.unravel_index(cell_row, dims)
+    row_codes = {f: np.asarray(idx[a], dtype=int) for a, f in enumerate(s)}
+    if cov is not None:
+        cpos, crow, c = cov
+        pos_l, row_l = _combine(cell_pos, cpos), _combine(cell_row, crow)
+        if sorted(pos_l.tolist()) == sorted(row_l.tolist()):
+            return _Labels(*_relabel(pos_l, row_l), row_codes, s, c)
+    return _Labels(*_relabel(cell_pos, cell_row), row_codes, s, None)
+
+
+def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    return a.astype(np.int64) * (int(b.max()) + 1) + b
+
+
+def _relabel(pos: np.ndarray, row: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    _, inv = np.unique(np.concatenate([pos, row]), return_inverse=True)
+    inv = inv.ravel()
+    return inv[: pos.size], inv[pos.size:]
+
+
+def _covariate_classes(files: Files, view: TableView, discrete: list[int]
+                       ) -> tuple[np.ndarray, np.ndarray, str] | None:
+    """A column equal to ``a + b x covariate`` in some order: the covariate value of every row.
+
+    Returns value classes of the expected positions and of the design rows (equal values: one class), and the
+    covariate, or None when no column carries a covariate of the table.
+    """
+    x = files.x
+    for j in range(x.n_columns):
+        if j in discrete:
+            continue
+        col, tol = x.values[:, j], 2 * x.tolerance(j)
+        for c, vals in view.covariates.items():
+            if not np.isfinite(vals).all() or np.ptp(vals) == 0 or len(np.unique(vals)) < 3:
+                continue
+            found = _sorted_fit(col, vals, tol)
+            if found is None:
+                continue
+            a, b = found
+            guess = (col - a) / b
+            uniq = np.unique(vals)
+            near = np.abs(guess[:, None] - uniq[None, :])
+            cls_row = near.argmin(axis=1)
+            if near[np.arange(col.size), cls_row].max() * abs(b) > tol + 1e-9:
+                continue
+            cls_pos = np.searchsorted(uniq, vals)
+            if sorted(cls_row.tolist()) != sorted(cls_pos.tolist()):
+                continue
+            return cls_pos, cls_row, c
+    return None
+
+
+def _sorted_fit(col: np.ndarray, vals: np.ndarray, tol: float) -> tuple[float, float] | None:
+    """``col`` as a permutation of ``a + b * vals`` (exact up to ``tol``): (a, b), or None."""
+    xs = np.sort(col)
+    for cs in (np.sort(vals), np.sort(vals)[::-1]):
+        design = np.column_stack([np.ones(cs.size), cs])
+        coef, *_ = np.linalg.lstsq(design, xs, rcond=None)
+        if abs(coef[1]) > 0 and np.abs(design @ coef - xs).max() <= tol:
+            return float(coef[0]), float(coef[1])
+    return None
+
+
+def _match_cells(pid: np.ndarray, view: TableView, s: tuple[str, ...],
+                 extra: tuple[Files, list[int], tuple[np.ndarray, np.ndarray, str] | None]
+                 ) -> tuple[tuple, dict[int, int]] | None:
+    """The best matching of coding groups to the cells of ``s`` (equal sizes), with its sort key (lower better)."""
+    files, discrete, cov = extra
+    cell_pos = view.key(s)
+    n = pid.size
+    n_pat = int(pid.max()) + 1
+    pat_count = np.bincount(pid, minlength=n_pat)
+    cells, cell_count = np.unique(cell_pos, return_counts=True)
+    if len(cells) != n_pat or sorted(pat_count.tolist()) != sorted(cell_count.tolist()):
+        return None
+    agree = _agreement(pid, cell_pos, cells, cov)
+    groups: dict[int, tuple[list[int], list[int]]] = {}
+    for p in range(n_pat):
+        groups.setdefault(int(pat_count[p]), ([], []))[0].append(p)
+    for ci, k in zip(cells, cell_count, strict=True):
+        groups[int(k)][1].append(int(ci))
+    options = []
+    total = 1
+    for pats, cs in groups.values():
+        total *= _factorial(len(pats))
+    for pats, cs in groups.values():
+        if total <= MAX_MATCHINGS:
+            options.append([dict(zip(pats, perm, strict=True)) for perm in permutations(cs)])
+        else:
+            options.append([_best_by_agreement(pats, cs, agree, cells)])
+    means = _pattern_means(files, discrete, pid, n_pat)
+    best = None
+    for combo in product(*options):
+        bij = {p: c for part in combo for p, c in part.items()}
+        key = _matching_key(bij, means, view, s, (agree, cells, n, cov is not None, pid))
+        if best is None or key < best[0]:
+            best = (key, bij)
+    return best
+
+
+def _factorial(k: int) -> int:
+    out = 1
+    for i in range(2, k + 1):
+        out *= i
+    return out
+
+
+def _agreement(pid: np.ndarray, cell_pos: np.ndarray, cells: np.ndarray,
+               cov: tuple[np.ndarray, np.ndarray, str] | None) -> np.ndarray:
+    """(patterns, cells): how many rows of each coding group the claimed order (or the covariate) puts there."""
+    n_pat = int(pid.max()) + 1
+    index = {int(c): a for a, c in enumerate(cells)}
+    agree = np.zeros((n_pat, len(cells)))
+    if cov is None:
+        for i, p in enumerate(pid):
+            agree[p, index[int(cell_pos[i])]] += 1
+        return agree
+    cls_pos, cls_row, _ = cov
+    for i, p in enumerate(pid):
+        members = cell_pos[cls_pos == cls_row[i]]
+        for c in members:
+            agree[p, index[int(c)]] += 1.0 / members.size
+    return agree
+
+
+def _best_by_agreement(pats: list[int], cs: list[int], agree: np.ndarray, cells: np.ndarray) -> dict[int, int]:
+    from scipy.optimize import linear_sum_assignment
+
+    index = {int(c): a for a, c in enumerate(cells)}
+    w = agree[np.ix_(pats, [index[c] for c in cs])]
+    r, c = linear_sum_assignment(-w)
+    return {pats[a]: cs[b] for a, b in zip(r, c, strict=True)}
+
+
+def _pattern_means(files: Files, discrete: list[int], pid: np.ndarray, n_pat: int) -> np.ndarray:
+    """(patterns, discrete columns): the column values of every coding group."""
+    x = files.x.values[:, discrete]
+    out = np.zeros((n_pat, len(discrete)))
+    for p in range(n_pat):
+        out[p] = x[pid == p].mean(axis=0)
+    return out
+
+
+def _matching_key(bij: dict[int, int], means: np.ndarray, view: TableView, s: tuple[str, ...],
+                  more: tuple[np.ndarray, np.ndarray, int, bool, np.ndarray]) -> tuple:
+    """Sort key of a matching: covariate agreement, simplest codings, rows kept in place, conventions."""
+    agree, cells, n, by_cov, pid = more
+    index = {int(c): a for a, c in enumerate(cells)}
+    got = float(sum(agree[p, index[c]] for p, c in bij.items()))
+    dims = view.dims(s)
+    cell_levels = np.array(np.unravel_index(np.array([bij[p] for p in range(len(bij))]), dims)).T
+    structure, canon = _structure(means, cell_levels, s, view)
+    order = _level_order_score(pid, bij, dims)
+    return (-(got if by_cov else 0.0), structure, -(got if 2 * got > n else 0.0), -canon, -order, -got)
+
+
+def _structure(means: np.ndarray, cell_levels: np.ndarray, s: tuple[str, ...], view: TableView
+               ) -> tuple[int, int]:
+    """Sum over columns of the size of the smallest factor set each is a function of; conventional codings."""
+    tol = 1e-9 * (np.abs(means).max() + 1.0)
+    subsets = [a for k in range(len(s) + 1) for a in combinations(range(len(s)), k)]
+    total = 0
+    single: dict[int, list[int]] = {}
+    for j in range(means.shape[1]):
+        v = means[:, j]
+        for a in subsets:
+            if _is_function(v, cell_levels[:, list(a)], tol):
+                total += len(a)
+                if len(a) == 1:
+                    single.setdefault(a[0], []).append(j)
+                break
+    canon = 0
+    for ax, cols in single.items():
+        f = s[ax]
+        k = len(view.factors[f])
+        u = np.full((k, len(cols)), np.nan)
+        for p in range(means.shape[0]):
+            u[cell_levels[p, ax]] = means[p, cols]
+        canon += int(_conventional(u, f, view))
+    return total, canon
+
+
+def _is_function(v: np.ndarray, keys: np.ndarray, tol: float) -> bool:
+    if keys.shape[1] == 0:
+        return bool(np.ptp(v) <= tol)
+    seen: dict[tuple[int, ...], float] = {}
+    for val, key in zip(v, map(tuple, keys.tolist()), strict=True):
+        if key in seen and abs(seen[key] - val) > tol:
+            return False
+        seen.setdefault(key, float(val))
+    return True
+
+
+def _conventional(u: np.ndarray, f: str, view: TableView) -> bool:
+    """Do one factor's columns (values at its levels, in column order) follow a coding's usual layout?"""
+    if not np.isfinite(u).all():
+        return False
+    levels, scores = view.factors[f], view.scores[f]
+    for scheme in ("treatment", "effect", "indicator", "polynomial"):
+        mat = make_coding(f, levels, scheme, None, scores).matrix  # type: ignore[arg-type]
+        if mat.shape[1] < u.shape[1]:
+            continue
+        for start in range(mat.shape[1] - u.shape[1] + 1):
+            ref = mat[:, start:start + u.shape[1]]
+            if all(_proportional(u[:, j], ref[:, j]) for j in range(u.shape[1])):
+                return True
+    return False
+
+
+def _proportional(a: np.ndarray, b: np.ndarray) -> bool:
+    nb = float(b @ b)
+    if nb == 0:
+        return False
+    s = float(a @ b) / nb
+    return s > 0 and bool(np.abs(a - s * b).max() <= 1e-6 * (np.abs(a).max() + 1.0))
+
+
+def _level_order_score(pid: np.ndarray, bij: dict[int, int], dims: tuple[int, ...]) -> int:
+    """How many factors' levels first appear down the design in their declared order (sorted rows)."""
+    cells = np.array([bij[int(p)] for p in pid])
+    idx = np.unravel_index(cells, dims)
+    score = 0
+    for codes in idx:
+        first = list(dict.fromkeys(np.asarray(codes).tolist()))
+        score += int(first == sorted(first))
+    return score

@@ -56,7 +56,8 @@ def simplest_family(row: np.ndarray, pos: np.ndarray, keys: dict[str, tuple[np.n
         pairs = tuple(sorted((min(c), max(c)) for c in cycles))
         cands.append((_moved(general), 2, general, Family("swaps", pairs=pairs)))
     cands.append((_moved(general), 3, general, Family("other")))
-    best = min(cands, key=lambda c: (c[0], c[1]))
+    # A named family (a swap, a moved or reversed block, a sort) before a list of rows, then the fewest rows moved.
+    best = min(cands, key=lambda c: (c[1] >= 2, c[0], c[1]))
     return best[2], best[3]
 
 

@@ -16,8 +16,8 @@ from .cells import HandDesign, fill_cells
 from .columns import ColumnRole, identify_column
 from .context import Files, Request
 from .order import row_order
-from .reorder import reorder_rows
 from .read import AuditFinding
+from .reorder import reorder_rows
 from .table_view import PreparedTable, TableView
 from .words import describe_roles, summarise_factors
 

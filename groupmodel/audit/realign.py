@@ -19,6 +19,7 @@ order is assumed.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from itertools import combinations, permutations, product
 
@@ -212,8 +213,8 @@ def _match_cells(pid: np.ndarray, view: TableView, s: tuple[str, ...],
         groups[int(k)][1].append(int(ci))
     options = []
     total = 1
-    for pats, cs in groups.values():
-        total *= _factorial(len(pats))
+    for pats, _ in groups.values():
+        total *= math.factorial(len(pats))
     for pats, cs in groups.values():
         if total <= MAX_MATCHINGS:
             options.append([dict(zip(pats, perm, strict=True)) for perm in permutations(cs)])
@@ -227,13 +228,6 @@ def _match_cells(pid: np.ndarray, view: TableView, s: tuple[str, ...],
         if best is None or key < best[0]:
             best = (key, bij)
     return best
-
-
-def _factorial(k: int) -> int:
-    out = 1
-    for i in range(2, k + 1):
-        out *= i
-    return out
 
 
 def _agreement(pid: np.ndarray, cell_pos: np.ndarray, cells: np.ndarray,

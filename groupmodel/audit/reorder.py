@@ -15,7 +15,7 @@ from .order import RowOrder
 from .read import AuditFinding, listing, participant_in_path, read_image_list
 from .realign import Matched, match_rows
 from .reorder_words import Family, family_text, runs_text, simplest_family
-from .table_view import PreparedTable
+from .table_view import PreparedTable, TableView
 
 
 def columns_explained(files: Files, table: PreparedTable, align: np.ndarray) -> int:
@@ -93,8 +93,10 @@ def _follows_images(req: Request, table: PreparedTable, claimed: np.ndarray, ima
         "another order (the rest of this report reads the rows in the images' order)", "rows")
 
 
-def _basis(matched: Matched) -> str:
-    if matched.covariate and matched.factors:
+def _basis(matched: Matched, view: TableView) -> str:
+    moved = np.flatnonzero(matched.order != np.arange(matched.order.size))
+    cells_differ = any((view.codes[f][moved] != matched.row_codes[f][moved]).any() for f in matched.factors)
+    if matched.covariate and cells_differ:
         return f"factor levels and {matched.covariate} values"
     if matched.covariate:
         return f"{matched.covariate} values"
@@ -108,7 +110,7 @@ def _out_of_place(req: Request, table: PreparedTable, claimed: np.ndarray, match
     view = table.view(claimed)
     ids_at = [table.ids[t] for t in claimed]
     fam, order = matched.family, matched.order
-    lead = f"{req.design.name}: the rows match the participants' {_basis(matched)} only after reordering"
+    lead = f"{req.design.name}: the rows match the participants' {_basis(matched, view)} only after reordering"
     tail = f"put the rows in {tname} order or add a participant_id column (the rest of this report reads them " \
            "reordered)"
     if fam.kind in ("swap", "swaps") and len(fam.pairs) <= 3:
@@ -131,7 +133,7 @@ def _out_of_place(req: Request, table: PreparedTable, claimed: np.ndarray, match
     return AuditFinding("error", "rows_out_of_place", "; ".join(parts + [tail]), "rows")
 
 
-def _coded_as(fam: Family, matched: Matched, view, ids_at: list[str]) -> str:  # type: ignore[no-untyped-def]
+def _coded_as(fam: Family, matched: Matched, view: TableView, ids_at: list[str]) -> str:
     """For a few swapped rows: each row's participant and cell, and the cell its coding says."""
     texts = []
     fs = matched.factors

@@ -14,6 +14,8 @@ from itertools import permutations
 
 import numpy as np
 
+__all__ = ["Family", "cycles_of", "family_text", "ids_span", "runs_text", "simplest_family", "span"]
+
 #: How far beyond the first and last misplaced row a moved or reversed block is looked for.
 BLOCK_SLACK = 6
 #: At most this many numbers are printed when the reordering is listed row by row.
@@ -237,5 +239,3 @@ def cycles_of(order: np.ndarray) -> list[list[int]]:
     """The cycles of a permutation (rows that stay are left out)."""
     return _cycles(order)
 
-
-__all__ = ["Family", "cycles_of", "family_text", "ids_span", "runs_text", "simplest_family", "span"]

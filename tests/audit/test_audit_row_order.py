@@ -1,0 +1,115 @@
+"""``groupmodel check`` with design rows in another order than the participants table.
+
+The permutation families (a swap, a moved block, a block shifted by one, a reversed block, a stable sort by
+factors) are the elementary rearrangements of a sequence (common practice; a moved block is a rotation of the
+stretch of rows it crosses).  The gallery (tests/audit/gallery/rows_*) holds whole file sets; these tests
+check the pieces and the cases the gallery does not hold (the example study sorted by training with a spec, a
+swap inside one cell told apart by a covariate, and one that cannot be told apart).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from groupmodel.audit import audit
+from groupmodel.audit.reorder_words import runs_text, simplest_family
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def _family(order: list[int], keys: dict[str, list[int]] | None = None) -> tuple[np.ndarray, object]:
+    """The family of an exact permutation: design row i holds position order[i]."""
+    row = np.array(order)
+    pos = np.arange(row.size)
+    k = {f: (np.array(v)[row], np.array(v)) for f, v in (keys or {}).items()}
+    return simplest_family(row, pos, k)
+
+
+def test_swap_moved_block_shift_and_reversal_are_recognised() -> None:
+    got, fam = _family([0, 4, 2, 3, 1, 5])
+    assert fam.kind == "swap" and fam.pairs == ((1, 4),) and got.tolist() == [0, 4, 2, 3, 1, 5]
+    # participants 3-7 (0-based 2..6) typed after participant 12
+    order = [0, 1] + list(range(7, 12)) + [2, 3, 4, 5, 6] + [12, 13]
+    got, fam = _family(order)
+    assert fam.kind == "rotate" and (fam.start, fam.stop, fam.shift) == (2, 12, 5) and got.tolist() == order
+    order = [0, 1, 2, 4, 5, 6, 7, 3, 8]
+    got, fam = _family(order)
+    assert fam.kind == "rotate" and (fam.start, fam.stop, fam.shift) == (3, 8, 1) and got.tolist() == order
+    order = [0, 1, 6, 5, 4, 3, 2, 7]
+    got, fam = _family(order)
+    assert fam.kind == "reverse" and (fam.start, fam.stop) == (2, 7) and got.tolist() == order
+
+
+def test_sort_by_factor_and_several_swaps() -> None:
+    group = [1, 0, 1, 0, 0, 1, 1, 0]
+    order = [1, 3, 4, 7, 0, 2, 5, 6]  # stable sort by group
+    got, fam = _family(order, {"group": group})
+    assert fam.kind == "sorted" and fam.factors == ("group",) and got.tolist() == order
+    got, fam = _family([1, 0, 2, 3, 5, 4, 6, 8, 7])
+    assert fam.kind in ("swaps", "swap") and fam.pairs == ((0, 1), (4, 5), (7, 8))
+
+
+def test_runs_text() -> None:
+    assert runs_text([1, 2, 3, 7, 4, 5, 6, 9]) == "1-3, 7, 4-6, 9"
+
+
+def _example_rows() -> tuple[list[str], list[str]]:
+    lines = (ROOT / "example_study/faulty/design.txt").read_text().splitlines()
+    comments = [ln for ln in lines if ln.startswith("#")]
+    rows = [ln for ln in lines if ln.strip() and not ln.startswith("#")]
+    rows[8], rows[9] = rows[9], rows[8]  # undo the example's swap: rows in table order
+    return comments, rows
+
+
+def test_example_study_sorted_by_training_with_spec(tmp_path: Path) -> None:
+    """Sorted by training (sprint, endurance, rest as in the spec), read with the spec: one error that says so."""
+    comments, rows = _example_rows()
+    training = {"0 0": "rest", "1 0": "sprint", "0 1": "endurance"}
+    level = [training[" ".join(r.split()[1:3])] for r in rows]
+    order = sorted(range(len(rows)), key=lambda i: ["sprint", "endurance", "rest"].index(level[i]))
+    design = tmp_path / "design.txt"
+    design.write_text("\n".join(comments + [rows[i] for i in order]) + "\n")
+    report = audit(design, participants=ROOT / "example_study/participants.tsv", spec=ROOT / "example_study/model.json")
+    errors = [f for f in report.findings if f.severity == "error"]
+    assert [f.code for f in errors] == ["rows_out_of_place"]
+    msg = errors[0].message
+    n_sprint = level.count("sprint")
+    assert "age values" in msg and "the rows are sorted by training" in msg
+    assert f"rows 1-{n_sprint} sprint" in msg
+    # read in the right order, every column is explained and nothing else is wrong
+    assert not any(f.code == "column_unexplained" for f in report.findings)
+
+
+def _small(tmp_path: Path, with_x: bool, swap: tuple[int, int]) -> Path:
+    table = tmp_path / "participants.tsv"
+    group = ["a", "b"] * 5
+    x = [31, 44, 27, 38, 25, 49, 35, 41, 29, 46]
+    table.write_text("participant_id\tgroup\tx\n" + "".join(
+        f"sub-{i + 1:02d}\t{g}\t{v}\n" for i, (g, v) in enumerate(zip(group, x, strict=True))))
+    mean = sum(x) / len(x)
+    rows = [[1.0, 1.0 if g == "b" else 0.0] + ([v - mean] if with_x else []) for g, v in zip(group, x, strict=True)]
+    i, j = swap
+    rows[i], rows[j] = rows[j], rows[i]
+    design = tmp_path / "design.txt"
+    design.write_text("".join(" ".join(f"{v:g}" for v in r) + "\n" for r in rows))
+    return design
+
+
+def test_swap_within_a_cell_found_through_the_covariate(tmp_path: Path) -> None:
+    design = _small(tmp_path, True, (0, 4))  # sub-01 and sub-05: both group a
+    report = audit(design, participants=tmp_path / "participants.tsv", factors=["group"], covariates=["x"])
+    hits = [f for f in report.findings if f.code == "rows_out_of_place"]
+    assert len(hits) == 1 and hits[0].severity == "error"
+    assert "rows 1 and 5 look swapped" in hits[0].message and "has the x of sub-05" in hits[0].message
+    assert "x values" in hits[0].message
+
+
+@pytest.mark.parametrize("with_x", [False])
+def test_swap_within_a_cell_without_covariate_cannot_be_seen(tmp_path: Path, with_x: bool) -> None:
+    """The README's limit: rows of one cell are interchangeable without ids (or a covariate column)."""
+    design = _small(tmp_path, with_x, (0, 4))
+    report = audit(design, participants=tmp_path / "participants.tsv", factors=["group"])
+    assert not [f for f in report.findings if f.severity in ("error", "warning")]

@@ -32,6 +32,9 @@ from .table_view import PreparedTable, TableView
 
 #: At most this many matchings of coding groups to cells are compared (beyond it: the best by agreement only).
 MAX_MATCHINGS = 5040
+#: A matching that keeps at least this share of rows where the table has them is taken as the rows' own (rows
+#: sorted by group keep about half in place by chance, so a weaker agreement says nothing).
+STRONG_AGREEMENT = 0.75
 
 
 @dataclass(frozen=True)
@@ -48,6 +51,10 @@ class Matched:
         The factors whose cells the factor columns encode.
     covariate : str or None
         The covariate whose column told rows apart (None: the factor columns only).
+    family : Family
+        The simplest permutation found.
+    others : tuple of str
+        Other factors (or factor combinations) whose cells the factor columns fit equally well.
     exact : bool
         True when every row's participant is certain (no two interchangeable rows were moved).
     """
@@ -58,6 +65,7 @@ class Matched:
     covariate: str | None
     exact: bool
     family: Family
+    others: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -69,6 +77,7 @@ class _Labels:
     row_codes: dict[str, np.ndarray]
     factors: tuple[str, ...]
     covariate: str | None
+    others: tuple[str, ...] = ()
 
 
 def discrete_columns(files: Files, n_cells: int) -> list[int]:
@@ -99,7 +108,7 @@ def match_rows(files: Files, table: PreparedTable, expected: np.ndarray) -> Matc
     counts = np.bincount(labels.pos)
     moved = order != np.arange(order.size)
     exact = bool((counts[labels.pos[order[moved]]] == 1).all()) if moved.any() else True
-    return Matched(order, labels.row_codes, labels.factors, labels.covariate, exact, family)
+    return Matched(order, labels.row_codes, labels.factors, labels.covariate, exact, family, labels.others)
 
 
 def _labels(files: Files, view: TableView) -> _Labels | None:
@@ -118,15 +127,17 @@ def _labels(files: Files, view: TableView) -> _Labels | None:
     pats = np.array([np.round(x.values[:, j] / (2 * x.tolerance(j))) for j in discrete]).T
     _, pid = np.unique(pats, axis=0, return_inverse=True)
     pid = pid.ravel()
-    best: tuple[tuple, tuple[str, ...], dict[int, int]] | None = None
+    found_all = []
     for k in range(1, len(names) + 1):
         for s in combinations(names, k):
             found = _match_cells(pid, view, s, (files, discrete, cov))
-            if found is not None and (best is None or found[0] < best[0]):
-                best = (found[0], s, found[1])
-    if best is None:
+            if found is not None:
+                found_all.append((found[0], s, found[1]))
+    if not found_all:
         return None
-    _, s, bij = best
+    key, s, bij = min(found_all, key=lambda b: b[0])
+    # Another set of factors whose cells the coding fits as well (the same evidence short of the final tie-breaks).
+    others = tuple(" x ".join(o[1]) for o in found_all if o[1] != s and o[0][:4] == key[:4])
     cell_pos = view.key(s)
     cell_row = np.array([bij[int(p)] for p in pid])
     dims = view.dims(s)
@@ -136,8 +147,8 @@ def _labels(files: Files, view: TableView) -> _Labels | None:
         cpos, crow, c = cov
         pos_l, row_l = _combine(cell_pos, cpos), _combine(cell_row, crow)
         if sorted(pos_l.tolist()) == sorted(row_l.tolist()):
-            return _Labels(*_relabel(pos_l, row_l), row_codes, s, c)
-    return _Labels(*_relabel(cell_pos, cell_row), row_codes, s, None)
+            return _Labels(*_relabel(pos_l, row_l), row_codes, s, c, others)
+    return _Labels(*_relabel(cell_pos, cell_row), row_codes, s, None, others)
 
 
 def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -276,7 +287,8 @@ def _matching_key(bij: dict[int, int], means: np.ndarray, view: TableView, s: tu
     cell_levels = np.array(np.unravel_index(np.array([bij[p] for p in range(len(bij))]), dims)).T
     structure, canon = _structure(means, cell_levels, s, view)
     order = _level_order_score(pid, bij, dims)
-    return (-(got if by_cov else 0.0), structure, -(got if 2 * got > n else 0.0), -canon, -order, -got)
+    strong = got if by_cov or got >= STRONG_AGREEMENT * n else 0.0
+    return (-(got if by_cov else 0.0), structure, -strong, -canon, -order, -got)
 
 
 def _structure(means: np.ndarray, cell_levels: np.ndarray, s: tuple[str, ...], view: TableView

@@ -124,6 +124,9 @@ def _out_of_place(req: Request, table: PreparedTable, claimed: np.ndarray, match
     numbers = runs_text([int(claimed[k]) + 1 for k in order])
     parts = [f"{lead}: {what}; {tname} lists the participants in another order",
              f"the {tname} row of each design row is {numbers}"]
+    if matched.others:
+        parts.append(f"the factor columns fit {' or '.join(matched.others)} equally well (the design may code "
+                     "that instead): give --factors to say which")
     if not matched.exact:
         parts.append("rows of one cell cannot be told apart without ids or a covariate column, so the table "
                      "order is assumed within each cell")

@@ -113,3 +113,22 @@ def test_swap_within_a_cell_without_covariate_cannot_be_seen(tmp_path: Path, wit
     design = _small(tmp_path, with_x, (0, 4))
     report = audit(design, participants=tmp_path / "participants.tsv", factors=["group"])
     assert not [f for f in report.findings if f.severity in ("error", "warning")]
+
+
+def test_two_factors_the_coding_fits_equally_are_named(tmp_path: Path) -> None:
+    """Without --factors, a 0/1 column sorted into two halves of ten fits group and sex alike: say so."""
+    rng = np.random.default_rng(3)
+    group, sex = np.array(["a"] * 10 + ["b"] * 10), np.array(["f"] * 10 + ["m"] * 10)
+    rng.shuffle(group)
+    rng.shuffle(sex)
+    table = tmp_path / "participants.tsv"
+    table.write_text("participant_id\tgroup\tsex\n" + "".join(
+        f"sub-{i + 1:02d}\t{g}\t{s}\n" for i, (g, s) in enumerate(zip(group, sex, strict=True))))
+    design = tmp_path / "design.txt"
+    design.write_text("".join(f"1 {int(group[i] == 'b')}\n" for i in sorted(range(20), key=lambda i: group[i])))
+    auto = [f for f in audit(design, participants=table).findings if f.code == "rows_out_of_place"]
+    assert len(auto) == 1 and "equally well" in auto[0].message and "give --factors" in auto[0].message
+    given = [f for f in audit(design, participants=table, factors=["group"]).findings
+             if f.code == "rows_out_of_place"]
+    assert len(given) == 1 and "sorted by group (rows 1-10 a, rows 11-20 b)" in given[0].message
+    assert "equally well" not in given[0].message

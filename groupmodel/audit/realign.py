@@ -145,14 +145,11 @@ def _labels(files: Files, view: TableView) -> _Labels | None:
     row_codes = {f: np.asarray(idx[a], dtype=int) for a, f in enumerate(s)}
     if cov is not None:
         cpos, crow, c = cov
-        pos_l, row_l = _combine(cell_pos, cpos), _combine(cell_row, crow)
+        base = int(max(cpos.max(), crow.max())) + 1
+        pos_l, row_l = cell_pos.astype(np.int64) * base + cpos, cell_row.astype(np.int64) * base + crow
         if sorted(pos_l.tolist()) == sorted(row_l.tolist()):
             return _Labels(*_relabel(pos_l, row_l), row_codes, s, c, others)
     return _Labels(*_relabel(cell_pos, cell_row), row_codes, s, None, others)
-
-
-def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    return a.astype(np.int64) * (int(b.max()) + 1) + b
 
 
 def _relabel(pos: np.ndarray, row: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -39,8 +39,8 @@ def columns_explained(files: Files, table: PreparedTable, align: np.ndarray) -> 
 def reorder_rows(req: Request, files: Files, table: PreparedTable, claimed: np.ndarray) -> RowOrder | None:
     """The rows read in their true order, with the finding that says so; None when the table order stands."""
     n = files.x.n_rows
-    if (claimed < 0).any() or n < 3:
-        return None
+    if files.x.ids is not None or (claimed < 0).any() or n < 3:
+        return None  # rows named by a participant_id column are where their ids say
     before = columns_explained(files, table, claimed)
     if before == files.x.n_columns:
         return None

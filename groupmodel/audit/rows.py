@@ -39,7 +39,7 @@ def missing_value_findings(ctx: AuditContext) -> list[AuditFinding]:
     table = ctx.columns.table
     ids = table.ids
     problems = []
-    for i, t in enumerate(ctx.alignment.claimed):
+    for i, t in enumerate(ctx.columns.align):  # the rows' participants, after any reordering found
         if t < 0:
             continue
         cols = [f for f in ctx.columns.factors if table.codes[f][t] < 0] + [

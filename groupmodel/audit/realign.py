@@ -350,11 +350,13 @@ def _proportional(a: np.ndarray, b: np.ndarray) -> bool:
 
 
 def _level_order_score(pid: np.ndarray, bij: dict[int, int], dims: tuple[int, ...]) -> int:
-    """How many factors' levels first appear down the design in their declared order (sorted rows)."""
+    """How many factors come in one block per level down the design, in their declared order (sorted rows)."""
     cells = np.array([bij[int(p)] for p in pid])
     idx = np.unravel_index(cells, dims)
     score = 0
     for codes in idx:
-        first = list(dict.fromkeys(np.asarray(codes).tolist()))
-        score += int(first == sorted(first))
+        seq = np.asarray(codes).tolist()
+        first = list(dict.fromkeys(seq))
+        runs = 1 + int(np.count_nonzero(np.diff(seq)))
+        score += int(runs == len(first) and first == sorted(first))  # grouped, levels in their order
     return score

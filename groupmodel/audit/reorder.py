@@ -55,8 +55,54 @@ def reorder_rows(req: Request, files: Files, table: PreparedTable, claimed: np.n
     align = claimed[matched.order]
     if columns_explained(files, table, align) <= before:
         return None
+    kept = _only_a_new_factor(req, files, table, claimed, matched)
+    if kept:
+        return RowOrder(claimed.copy(), np.zeros(n, dtype=bool), (_maybe_out_of_place(req, matched, kept),))
     finding = _out_of_place(req, table, claimed, matched, images)
     return RowOrder(align, np.zeros(n, dtype=bool), (finding,))
+
+
+def _coded_in_order(files: Files, table: PreparedTable, claimed: np.ndarray) -> set[str]:
+    """The factors some column already codes with the rows in table order."""
+    from .columns import _factor_function
+
+    view = table.view(claimed)
+    names = list(view.factors)
+    out: set[str] = set()
+    for j in range(files.x.n_columns):
+        found = _factor_function(files.x.values[:, j], files.x.tolerance(j), view, names)
+        if found is not None:
+            out.update(found[0])
+    return out
+
+
+def _only_a_new_factor(req: Request, files: Files, table: PreparedTable, claimed: np.ndarray,
+                       matched: Matched) -> list[str]:
+    """The factors the columns already code in table order, when the reordering keeps every row at its levels
+    of them and explains the other columns by a further table column, with the factors chosen by the audit and
+    no covariate evidence: a column coding something that is not in the table fits as well.  Else []."""
+    if table.explicit_factors or req.spec is not None or matched.covariate is not None:
+        return []
+    coded = _coded_in_order(files, table, claimed) & set(matched.factors)
+    if not coded or set(matched.factors) <= coded:
+        return []
+    view = table.view(claimed)
+    moved = np.flatnonzero(matched.order != np.arange(matched.order.size))
+    if all((view.codes[f][moved] == matched.row_codes[f][moved]).all() for f in coded):
+        return [f for f in matched.factors if f in coded]
+    return []
+
+
+def _maybe_out_of_place(req: Request, matched: Matched, kept: list[str]) -> AuditFinding:
+    """A warning: rows reordered within levels, or a column of something the table does not hold."""
+    tname = req.participants.name
+    new = " x ".join(f for f in matched.factors if f not in kept)
+    return AuditFinding(
+        "warning", "rows_out_of_place",
+        f"{req.design.name}: the columns left unexplained in {tname} order would code {new} if rows were reordered "
+        f"within the levels of {', '.join(kept)}; either those rows are out of place or the columns code "
+        f"something that is not in {tname}: give --factors to say what the design codes (the rest of this "
+        "report reads the rows in table order)", "rows")
 
 
 def image_alignment(req: Request, table: PreparedTable, claimed: np.ndarray) -> np.ndarray | None:

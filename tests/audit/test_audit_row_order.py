@@ -132,3 +132,43 @@ def test_two_factors_the_coding_fits_equally_are_named(tmp_path: Path) -> None:
              if f.code == "rows_out_of_place"]
     assert len(given) == 1 and "sorted by group (rows 1-10 a, rows 11-20 b)" in given[0].message
     assert "equally well" not in given[0].message
+
+
+def _site_study(tmp_path: Path, sorted_rows: bool) -> tuple[Path, Path]:
+    """group x sex, 5 per cell, table in group order.  The design codes group and either a scanner site that is
+    not in the table (table order, nothing wrong with the rows) or sex with the rows sorted by sex within group."""
+    rng = np.random.default_rng(8)
+    sex = np.array((["f"] * 5 + ["m"] * 5) * 2)
+    site = np.array([0] * 5 + [1] * 5 + [0] * 5 + [1] * 5)
+    for half in (slice(0, 10), slice(10, 20)):
+        sex[half] = rng.permutation(sex[half])
+        site[half] = rng.permutation(site[half])
+    group = np.array(["a"] * 10 + ["b"] * 10)
+    table = tmp_path / "participants.tsv"
+    table.write_text("participant_id\tgroup\tsex\n" + "".join(
+        f"sub-{i + 1:02d}\t{g}\t{s}\n" for i, (g, s) in enumerate(zip(group, sex, strict=True))))
+    if sorted_rows:
+        order = sorted(range(20), key=lambda i: (group[i], sex[i]))
+        rows = [f"1 {int(group[i] == 'b')} {int(sex[i] == 'm')}" for i in order]
+    else:
+        rows = [f"1 {int(group[i] == 'b')} {site[i]}" for i in range(20)]
+    design = tmp_path / "design.txt"
+    design.write_text("\n".join(rows) + "\n")
+    return design, table
+
+
+def test_a_column_not_in_the_table_is_no_reordering(tmp_path: Path) -> None:
+    """A 0/1 site column that happens to split each group as sex does: a warning naming both readings, no error."""
+    design, table = _site_study(tmp_path, False)
+    report = audit(design, participants=table)
+    bad = [(f.severity, f.code) for f in report.findings if f.severity in ("error", "warning")]
+    assert ("warning", "rows_out_of_place") in bad and not any(s == "error" for s, _ in bad)
+    msg = next(f.message for f in report.findings if f.code == "rows_out_of_place")
+    assert "something that is not in participants.tsv" in msg and "give --factors" in msg
+
+
+def test_rows_sorted_within_group_with_factors_given(tmp_path: Path) -> None:
+    design, table = _site_study(tmp_path, True)
+    hits = [f for f in audit(design, participants=table, factors=["group", "sex"]).findings
+            if f.code == "rows_out_of_place"]
+    assert len(hits) == 1 and hits[0].severity == "error" and "sorted by group, then sex" in hits[0].message

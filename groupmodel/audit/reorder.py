@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..errors import TableError
 from .context import Files, Request
 from .order import RowOrder
 from .read import AuditFinding, listing, participant_in_path, read_image_list
@@ -45,15 +46,18 @@ def reorder_rows(req: Request, files: Files, table: PreparedTable, claimed: np.n
     if before == files.x.n_columns:
         return None
     images = image_alignment(req, table, claimed)
-    if images is not None and not np.array_equal(images, claimed) and \
-            columns_explained(files, table, images) > before:
+    by_images = -1
+    if images is not None and not np.array_equal(images, claimed):
+        by_images = columns_explained(files, table, images)
+    matched = match_rows(files, table, claimed)
+    if matched is not None and matched.family.kind == "none":
+        matched = None
+    align = claimed[matched.order] if matched is not None else claimed
+    by_rows = columns_explained(files, table, align) if matched is not None else -1
+    if images is not None and by_images > before and by_images >= by_rows:
         return RowOrder(images, np.zeros(n, dtype=bool), (_follows_images(req, table, claimed, images),),
                         follows_images=True)
-    matched = match_rows(files, table, claimed)
-    if matched is None or matched.family.kind == "none":
-        return None
-    align = claimed[matched.order]
-    if columns_explained(files, table, align) <= before:
+    if matched is None or by_rows <= before:
         return None
     kept = _only_a_new_factor(req, files, table, claimed, matched)
     if kept:
@@ -111,7 +115,7 @@ def image_alignment(req: Request, table: PreparedTable, claimed: np.ndarray) -> 
         return None
     try:
         entries = read_image_list(req.images)
-    except Exception:  # an unreadable list is reported by the image checks
+    except TableError:  # an unreadable list is reported by the image checks
         return None
     ids = table.ids
     at = {ids[t]: t for t in claimed.tolist()}

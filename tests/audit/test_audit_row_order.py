@@ -172,3 +172,19 @@ def test_rows_sorted_within_group_with_factors_given(tmp_path: Path) -> None:
     hits = [f for f in audit(design, participants=table, factors=["group", "sex"]).findings
             if f.code == "rows_out_of_place"]
     assert len(hits) == 1 and hits[0].severity == "error" and "sorted by group, then sex" in hits[0].message
+
+
+def test_images_in_a_third_order_are_not_taken_for_the_design(tmp_path: Path) -> None:
+    """Design sorted by mode, images sorted by shift: the design is reordered (error) and the images are wrong."""
+    case = Path(__file__).parent / "gallery" / "rows_sorted_by_factor"
+    table = case / "participants.tsv"
+    lines = table.read_text().splitlines()[1:]
+    shift = {ln.split("\t")[0]: ln.split("\t")[2] for ln in lines}
+    ids = sorted(shift, key=lambda p: shift[p] == "night")
+    images = tmp_path / "images.txt"
+    images.write_text("".join(f"{p}/{p}_con.nii.gz\n" for p in ids))
+    report = audit(case / "design.txt", participants=table, factors=["mode", "shift"], covariates=["sleep_h"],
+                   images=images)
+    codes = {(f.severity, f.code) for f in report.findings}
+    assert ("error", "rows_out_of_place") in codes and ("error", "image_order") in codes
+    assert ("note", "rows_follow_images") not in codes

@@ -11,30 +11,13 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import TableError
+from .columns import columns_explained
 from .context import Files, Request
 from .order import RowOrder
 from .read import AuditFinding, listing, participant_in_path, read_image_list
 from .realign import Matched, match_rows
 from .reorder_words import Family, family_text, runs_text, simplest_family
 from .table_view import PreparedTable, TableView
-
-
-def columns_explained(files: Files, table: PreparedTable, align: np.ndarray) -> int:
-    """How many columns a quick identification (factor codings and plain covariates) explains."""
-    from .columns import _covariate_fit, _factor_function
-
-    view = table.view(align)
-    x = files.x
-    count = 0
-    names = list(view.factors)
-    for j in range(x.n_columns):
-        col, tol = x.values[:, j], x.tolerance(j)
-        if _factor_function(col, tol, view, names) is not None:
-            count += 1
-            continue
-        if any(_covariate_fit(col, tol, view, [], c) is not None for c in view.covariates):
-            count += 1
-    return count
 
 
 def reorder_rows(req: Request, files: Files, table: PreparedTable, claimed: np.ndarray) -> RowOrder | None:

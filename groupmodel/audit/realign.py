@@ -219,23 +219,105 @@ def _match_cells(pid: np.ndarray, view: TableView, s: tuple[str, ...],
         groups.setdefault(int(pat_count[p]), ([], []))[0].append(p)
     for ci, k in zip(cells, cell_count, strict=True):
         groups[int(k)][1].append(int(ci))
-    options = []
     total = 1
     for pats, _ in groups.values():
         total *= math.factorial(len(pats))
-    for pats, cs in groups.values():
-        if total <= MAX_MATCHINGS:
-            options.append([dict(zip(pats, perm, strict=True)) for perm in permutations(cs)])
-        else:
-            options.append([_best_by_agreement(pats, cs, agree, cells)])
     means = _pattern_means(files, discrete, pid, n_pat)
+    more = (agree, cells, n, cov is not None, pid)
+    if total > MAX_MATCHINGS:
+        found = _factorwise(pid, means, view, s, more)
+        if found is not None:
+            return found
+        start = {p: c for pats, cs in groups.values() for p, c in _best_by_agreement(pats, cs, agree, cells).items()}
+        return _improve(start, [pats for pats, _ in groups.values()], (means, view, s, more))
+    options = [[dict(zip(pats, perm, strict=True)) for perm in permutations(cs)] for pats, cs in groups.values()]
     best = None
     for combo in product(*options):
         bij = {p: c for part in combo for p, c in part.items()}
-        key = _matching_key(bij, means, view, s, (agree, cells, n, cov is not None, pid))
+        key = _matching_key(bij, means, view, s, more)
         if best is None or key < best[0]:
             best = (key, bij)
     return best
+
+
+def _factorwise(pid: np.ndarray, means: np.ndarray, view: TableView, s: tuple[str, ...], more: tuple
+                ) -> tuple[tuple, dict[int, int]] | None:
+    """Many cells of equal size: find each factor's levels among the coding groups first.
+
+    A factor's main-effect columns (one to three of them taken together) split the coding groups into as many
+    classes as the factor has levels, of the sizes its levels have in the table; one such split per factor,
+    jointly telling every coding group apart, gives the cells up to the names of each factor's levels, which
+    are then matched as for a small design.
+    """
+    n_pat = means.shape[0]
+    scale = np.abs(means).max() + 1.0
+    rounded = np.round(means / (1e-7 * scale)).astype(np.int64)
+    splits: list[list[np.ndarray]] = []
+    for f in s:
+        sizes = sorted(np.bincount(view.codes[f]).tolist())
+        sizes = [k for k in sizes if k > 0]
+        found: dict[tuple[int, ...], np.ndarray] = {}
+        for size in range(1, min(len(sizes) - 1, 3) + 1):
+            for cols in combinations(range(means.shape[1]), size):
+                _, part = np.unique(rounded[:, list(cols)], axis=0, return_inverse=True)
+                part = part.ravel()
+                if sorted(np.bincount(part[pid]).tolist()) == sizes:
+                    found.setdefault(tuple(part.tolist()), part)
+        if not found:
+            return None
+        splits.append(list(found.values())[:6])
+    best = None
+    for combo in product(*splits):
+        if len({tuple(int(part[p]) for part in combo) for p in range(n_pat)}) != n_pat:
+            continue
+        for bij in _level_namings(combo, pid, view, s):
+            key = _matching_key(bij, means, view, s, more)
+            if best is None or key < best[0]:
+                best = (key, bij)
+    return best
+
+
+def _level_namings(combo: tuple[np.ndarray, ...], pid: np.ndarray, view: TableView, s: tuple[str, ...]):
+    """Every naming of each split's classes by the factor's levels of the same sizes, as a matching of coding
+    groups to cells (at most MAX_MATCHINGS of them)."""
+    per_factor = []
+    for part, f in zip(combo, s, strict=True):
+        class_size = np.bincount(part[pid])
+        level_size = np.bincount(view.codes[f], minlength=len(view.factors[f]))
+        levels = [lv for lv in range(level_size.size) if level_size[lv] > 0]
+        options = [perm for perm in permutations(levels)
+                   if all(class_size[c] == level_size[lv] for c, lv in enumerate(perm))]
+        per_factor.append(options)
+    dims = view.dims(s)
+    cell_size = np.bincount(view.key(s), minlength=int(np.prod(dims)))
+    pat_size = np.bincount(pid)
+    for count, naming in enumerate(product(*per_factor)):
+        if count >= MAX_MATCHINGS:
+            return
+        bij = {}
+        for p in range(pat_size.size):
+            bij[p] = int(np.ravel_multi_index(tuple(naming[a][int(part[p])] for a, part in enumerate(combo)), dims))
+        if all(cell_size[c] == pat_size[p] for p, c in bij.items()):
+            yield bij
+
+
+def _improve(bij: dict[int, int], groups: list[list[int]], how: tuple) -> tuple[tuple, dict[int, int]]:
+    """Too many matchings to try them all: exchange the cells of two coding groups of equal size while that
+    improves the matching (a local search from the matching that keeps most rows in place)."""
+    means, view, s, more = how
+    key = _matching_key(bij, means, view, s, more)
+    for _ in range(50):
+        improved = False
+        for pats in groups:
+            for a, b in combinations(pats, 2):
+                trial = dict(bij)
+                trial[a], trial[b] = bij[b], bij[a]
+                k = _matching_key(trial, means, view, s, more)
+                if k < key:
+                    bij, key, improved = trial, k, True
+        if not improved:
+            break
+    return key, bij
 
 
 def _agreement(pid: np.ndarray, cell_pos: np.ndarray, cells: np.ndarray,

@@ -188,3 +188,33 @@ def test_images_in_a_third_order_are_not_taken_for_the_design(tmp_path: Path) ->
     codes = {(f.severity, f.code) for f in report.findings}
     assert ("error", "rows_out_of_place") in codes and ("error", "image_order") in codes
     assert ("note", "rows_follow_images") not in codes
+
+
+def test_many_cells_of_equal_size_sorted(tmp_path: Path) -> None:
+    """3 x 4 cells of 10 (12! matchings of equal-size groups): each factor's levels are found among the codings."""
+    rng = np.random.default_rng(2)
+    a_lv, b_lv = ["a1", "a2", "a3"], ["b1", "b2", "b3", "b4"]
+    cells = [(a, b) for a in a_lv for b in b_lv for _ in range(10)]
+    rng.shuffle(cells)
+    table = tmp_path / "participants.tsv"
+    table.write_text("participant_id\tA\tB\n" + "".join(f"sub-{i + 1:03d}\t{a}\t{b}\n" for i, (a, b) in enumerate(cells)))
+
+    def effect(levels: list[str], lv: str) -> np.ndarray:
+        row = np.zeros(len(levels) - 1)
+        k = levels.index(lv)
+        row[:] = -1.0 if k == len(levels) - 1 else row
+        if k < len(levels) - 1:
+            row[k] = 1.0
+        return row
+
+    order = sorted(range(len(cells)), key=lambda i: (a_lv.index(cells[i][0]), b_lv.index(cells[i][1])))
+    rows = []
+    for i in order:
+        ea, eb = effect(a_lv, cells[i][0]), effect(b_lv, cells[i][1])
+        rows.append(np.concatenate([[1.0], ea, eb, np.outer(ea, eb).ravel()]))
+    design = tmp_path / "design.txt"
+    design.write_text("".join(" ".join(f"{v:g}" for v in r) + "\n" for r in rows))
+    report = audit(design, participants=table, factors=["A", "B"])
+    hits = [f for f in report.findings if f.code == "rows_out_of_place"]
+    assert len(hits) == 1 and "sorted by A, then B (rows 1-10 a1/b1, rows 11-20 a1/b2" in hits[0].message
+    assert [c.description.split(":")[0] for c in report.columns[1:3]] == ["effect coding of A"] * 2

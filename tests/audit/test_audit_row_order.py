@@ -197,12 +197,12 @@ def test_many_cells_of_equal_size_sorted(tmp_path: Path) -> None:
     cells = [(a, b) for a in a_lv for b in b_lv for _ in range(10)]
     rng.shuffle(cells)
     table = tmp_path / "participants.tsv"
-    table.write_text("participant_id\tA\tB\n" + "".join(f"sub-{i + 1:03d}\t{a}\t{b}\n" for i, (a, b) in enumerate(cells)))
+    table.write_text("participant_id\tA\tB\n"
+                     + "".join(f"sub-{i + 1:03d}\t{a}\t{b}\n" for i, (a, b) in enumerate(cells)))
 
     def effect(levels: list[str], lv: str) -> np.ndarray:
-        row = np.zeros(len(levels) - 1)
         k = levels.index(lv)
-        row[:] = -1.0 if k == len(levels) - 1 else row
+        row = np.full(len(levels) - 1, -1.0 if k == len(levels) - 1 else 0.0)
         if k < len(levels) - 1:
             row[k] = 1.0
         return row

@@ -5,7 +5,8 @@ Array-level code: it knows nothing about files or specs.
 Freedman-Lane (Freedman and Lane 1983; Winkler et al. 2014, NeuroImage 92:381-397)
 ------------------------------------------------------------------------------------
 The design is partitioned, for each contrast, into effects of interest and nuisance.  Numerically:
-``X = U S V'`` (economy SVD, rank r); the contrast in the coordinates ``theta = U'Y`` is
+``X = U S V'`` (economy SVD, rank r, which may be below p: a rank-deficient design is split the same way,
+its contrast rows estimable, and only its column space is used); the contrast in the coordinates ``theta = U'Y`` is
 ``M = L V_r S_r^-1`` (so ``L b = M theta``); the right singular vectors of ``M`` split the
 column space of ``X`` into the interest space ``U_i`` (q columns, spanning the space of Winkler et
 al.'s ``X_i = X D L' (L D L')^-1``, ``D = (X'X)^+``) and the nuisance space ``U_z`` (r - q columns,
@@ -43,6 +44,7 @@ from typing import Literal
 
 import numpy as np
 
+from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, rank_tolerance
 from ..errors import EstimabilityError, InputError, ModelError
 from .rearrangements import default_method
 
@@ -61,8 +63,8 @@ Tail = Literal["two-sided", "greater", "less"]
 Kind = Literal["t", "F"]
 
 _EPS = float(np.finfo(np.float64).eps)
-#: Relative tolerance of the estimability check, as in :mod:`groupmodel.ols`.
-ESTIMABILITY_RTOL = 1e-8
+#: Relative tolerance of the estimability check: the one of :mod:`groupmodel.engine.linalg`.
+ESTIMABILITY_RTOL = ESTIMABILITY_TOL
 #: Singular values of the contrast in design coordinates below this fraction of the largest are 0.
 _CONTRAST_RANK_RTOL = 1e-10
 #: Interest rows equal to this relative precision are the same class (indistinguishable).
@@ -148,13 +150,12 @@ def partition(design: np.ndarray, weights: np.ndarray, kind: Kind = "t") -> Part
     L = _as_weights(weights, X.shape[1])
     n, p = X.shape
     U, s, Vt = np.linalg.svd(X, full_matrices=False)
-    tol = s.max() * max(n, p) * _EPS if s.size else 0.0
-    r = int(np.sum(s > tol))
+    r = int(np.sum(s > rank_tolerance(X, s)))
     if r == 0:
         raise ModelError("the design is all zeros (in permutation inference); check the design matrix")
+    # A rank-deficient design (r < p) is split the same way: everything below lives in its column space.
     Ur, sr, Vr = U[:, :r], s[:r], Vt[:r].T
-    resid = L - (L @ Vr) @ Vr.T
-    bad = np.linalg.norm(resid, axis=1) > ESTIMABILITY_RTOL * np.maximum(np.linalg.norm(L, axis=1), 1e-300)
+    bad = ~RowSpace(Vt[:r], r, rank_tolerance(X, s)).contains(L)
     if bad.any():
         raise EstimabilityError(
             f"contrast rows {np.flatnonzero(bad).tolist()} are not estimable in this design: they are "

@@ -35,6 +35,7 @@ __all__ = [
     "condition_number",
     "dependent_columns",
     "empty_cells_behind_rank",
+    "empty_cells_text",
     "has_constant_column",
     "matrix_rank",
     "rank_tolerance",
@@ -118,7 +119,7 @@ def _rank_findings(design: Design) -> tuple[list[Finding], int]:
     if rank < p:
         deps = dependent_columns(x, names)
         empty = empty_cells_behind_rank(design)
-        cause = f" because no participant has {'; '.join(design.cell_label(c) for c in empty)}" if empty else ""
+        cause = f" because no participant has {empty_cells_text(design, empty)}" if empty else ""
         findings.append(Finding(
             "warning", "rank_deficient",
             f"the design has rank {rank} with {p} columns{cause}: in the observed rows " + "; ".join(deps)
@@ -128,10 +129,28 @@ def _rank_findings(design: Design) -> tuple[list[Finding], int]:
     if n - rank < 1:
         findings.append(Finding(
             "error", "no_error_df",
-            f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank}); "
-            "remove terms or add participants",
+            f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank})"
+            + (f": it has {p} columns but only {n} observations" if p > n else "")
+            + "; remove terms or add participants",
         ))
     return findings, rank
+
+
+def empty_cells_text(design: Design, cells: list[tuple[str, ...]]) -> str:
+    """Empty cells in the fewest factors that describe them: ``site=north, scanner=S1; site=south, scanner=N1``
+    rather than every crossing of those with a third factor whose levels all occur in the list."""
+    names = list(design.factors)
+    empty = set(cells)
+    keep = list(range(len(names)))
+    for g in reversed(range(len(names))):
+        trial = [i for i in keep if i != g]
+        if all(tuple(c[i] if i != g else lv for i in range(len(names))) in empty
+               for c in empty for lv in design.factors[names[g]].levels):
+            keep = trial
+    seen: dict[tuple[str, ...], None] = {}
+    for c in cells:
+        seen.setdefault(tuple(c[i] for i in keep), None)
+    return "; ".join(", ".join(f"{names[i]}={lv}" for i, lv in zip(keep, key, strict=True)) for key in seen)
 
 
 def empty_cells_behind_rank(design: Design) -> list[tuple[str, ...]]:

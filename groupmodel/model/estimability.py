@@ -31,6 +31,8 @@ __all__ = ["alternatives"]
 def alternatives(spec: ModelSpec, design: Design, hypothesis: Hypothesis, body: HypothesisSpec) -> str:
     """``"; estimable instead: ..."`` naming what can be tested, or empty when nothing simple is found."""
     found = _restricted(design, hypothesis, body) + _without_interactions(spec, design, body)
+    if not found:
+        found = _without_a_term(spec, design, body)
     return ("; estimable instead: " + "; or ".join(found)) if found else ""
 
 
@@ -86,19 +88,36 @@ def _without_interactions(spec: ModelSpec, design: Design, body: HypothesisSpec)
                   if ":" in term and min(table.values()) == 0}
     drop: list[Term] = [t for t in spec.terms
                         if any(set(k.split(":")) <= {m for m in t if m in design.factors} for k in incomplete)]
-    if not drop or design.sample is None:
+    if not drop or not _estimable_without(spec, design, body, drop):
         return []
+    labels = ", ".join(term_label(t) for t in drop)
+    return [f"the same hypothesis in a model without the interaction {labels}, which "
+            f"assumes {'that interaction is' if len(drop) == 1 else 'those interactions are'} absent"]
+
+
+def _without_a_term(spec: ModelSpec, design: Design, body: HypothesisSpec) -> list[str]:
+    """The hypothesis in a model without one term (and the terms containing it), when that makes it estimable:
+    the columns of that term repeat others (two factors that split the participants the same way)."""
+    out = []
+    for term in spec.terms:
+        drop = [t for t in spec.terms if set(term) <= set(t)]
+        if _estimable_without(spec, design, body, drop):
+            out.append(f"the same hypothesis in a model without the term {term_label(term)}, whose columns the "
+                       "data cannot tell apart from others")
+    return out
+
+
+def _estimable_without(spec: ModelSpec, design: Design, body: HypothesisSpec, drop: list[Term]) -> bool:
+    """Whether the hypothesis builds, and is estimable, in the model without the terms ``drop``."""
+    if design.sample is None:
+        return False
     reduced = dataclasses.replace(spec, terms=tuple(t for t in spec.terms if t not in drop))
     try:
         smaller = build_design(reduced, design.sample)
         other = build_hypothesis(smaller, body.name, body, RowSpace.of(smaller.matrix))
     except GroupModelError:
-        return []
-    if not other.estimable:
-        return []
-    labels = ", ".join(term_label(t) for t in drop)
-    return [f"the same hypothesis in a model without the interaction {labels}, which "
-            f"assumes {'that interaction is' if len(drop) == 1 else 'those interactions are'} absent"]
+        return False
+    return other.estimable
 
 
 def _short(statement: str) -> str:

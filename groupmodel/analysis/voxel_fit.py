@@ -291,7 +291,8 @@ def fit_images(
                 m["mlog10p"][cols] = r.mlog10p
             if bar is not None:
                 bar.update(cols.stop - cols.start)
-        warnings = list(data.warnings)
+        # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
+        warnings = [f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
         if maps:
             first = next(iter(maps.values()))
             n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))

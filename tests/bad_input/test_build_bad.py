@@ -192,6 +192,27 @@ def test_non_estimable_hypothesis(tmp_path: Path) -> None:
     assert "hypothesis patients" not in err  # the estimable one is not blamed
 
 
+@pytest.mark.parametrize("at, code, fragments", [
+    ({"site": ["north", "west"]}, 2, ["$.hypotheses.h.at.site[1]", "'west' is not a level of site"]),
+    ({"site": ["north", 3]}, 2, ["$.hypotheses.h.at.site[1]", "not of type 'string'"]),
+    ({"site": []}, 2, ["$.hypotheses.h.at.site", "non-empty"]),
+    ({"site": ["north", "north"]}, 2, ["$.hypotheses.h.at.site", "non-unique"]),
+    ({"site": True}, 2, ["$.hypotheses.h.at.site", "a factor level (text), a list of levels, or a covariate value"]),
+    ({"age": ["north"]}, 2, ["$.hypotheses.h.at.age", "expected a number for covariate age, found ['north']"]),
+    ({"group": "patient"}, 2, ["$.hypotheses.h.at.group", "group is the factor this compare hypothesis is about"]),
+])
+def test_bad_at(tmp_path: Path, at: dict, code: int, fragments: list[str]) -> None:
+    spec = {**SPEC, "factors": {"group": {}, "site": {}}, "terms": ["group", "site", "age"],
+            "hypotheses": {"h": {"compare": {"group": ["patient", "control"]}, "at": at}}}
+    fails(tmp_path, study(tmp_path, spec=spec), code, *fragments)
+
+
+def test_main_effect_held_at_one_of_its_own_levels(tmp_path: Path) -> None:
+    spec = {**SPEC, "hypotheses": {"h": {"main": "group", "at": {"group": "patient"}}}}
+    fails(tmp_path, study(tmp_path, spec=spec), 2, "$.hypotheses.h.at.group",
+          "give a list of at least two of its levels, or remove it")
+
+
 def test_hypothesis_that_vanishes(tmp_path: Path) -> None:
     spec = {**SPEC, "factors": {"group": {}, "site": {}}, "terms": ["group", "site"],
             "hypotheses": {"gs": {"interaction": ["group", "site"]}}}

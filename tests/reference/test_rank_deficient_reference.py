@@ -64,6 +64,7 @@ def test_statements_of_at_lists(tmp_path: Path) -> None:
     assert hyp["caffeine_minus_placebo_AB"].statement.startswith(
         "mean(drink=caffeine) - mean(drink=placebo) = 0, averaged equally over scanner A, B;")
     assert "over scanner A, B only" in hyp["interaction_AB"].statement
+    assert hyp["scanner_AB"].statement.startswith("mean(scanner=A) = mean(scanner=B), averaged equally over drink;")
     assert hyp["caffeine_mean_AB"].statement.startswith("mean(drink=caffeine) = 0, averaged equally over scanner A, B")
     # The weights over cells: 1/2 on each listed level, nothing on scanner C.
     cells = [dict(zip(model.design.factors, c, strict=True)) for c in model.design.cells]

@@ -131,8 +131,9 @@ def build(
     Returns
     -------
     Model
-        Problems of the model (rank deficiency, non-estimable hypotheses) are in ``model.findings`` with
-        severity ``error``; unreadable or invalid input raises at once.
+        Problems of the model (non-estimable hypotheses, with what can be tested instead; no residual degrees
+        of freedom) are in ``model.findings`` with severity ``error``, a rank-deficient design with severity
+        ``warning`` (it is fitted with a generalised inverse); unreadable or invalid input raises at once.
     """
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+from itertools import combinations
 
 import numpy as np
 
@@ -25,7 +26,11 @@ from .design import Design, build_design
 from .hypotheses import Hypothesis, build_hypothesis
 from .spec import HypothesisSpec, Interaction, Main, ModelSpec, Term, term_label
 
-__all__ = ["alternatives"]
+__all__ = ["PAIR_SEARCH_LIMIT", "alternatives"]
+
+#: The restrictions of two factors at once tried when no single factor's restriction makes a hypothesis
+#: estimable are searched only when there are at most this many per pair of factors.
+PAIR_SEARCH_LIMIT = 64
 
 
 def alternatives(spec: ModelSpec, design: Design, hypothesis: Hypothesis, body: HypothesisSpec) -> str:
@@ -56,30 +61,52 @@ def _own_factors(body: HypothesisSpec) -> tuple[list[str], bool]:
 
 
 def _restricted(design: Design, hypothesis: Hypothesis, body: HypothesisSpec) -> list[str]:
-    """For each factor: the hypothesis over the levels not involved in its empty cells, when estimable."""
+    """For each factor: the hypothesis over the levels not involved in its empty cells, when estimable; failing
+    that, the largest estimable restriction of two factors at once."""
     empty = _empty_touched(design, hypothesis)
     if not empty or body.kind in ("weights", "cells"):
         return []
     own, lists_allowed = _own_factors(body)
     space = RowSpace.of(design.matrix)
-    names = list(design.factors)
+    names = [g for g in design.factors if lists_allowed or g not in own]
     out = []
     for g in names:
-        if g in own and not lists_allowed:
-            continue
-        dropped = {cell[names.index(g)] for cell in empty}
-        keep = [lv for lv in design.factors[g].levels if lv not in dropped]
-        if len(keep) < (2 if g in own else 1):
-            continue
-        value: str | list[str] = keep[0] if len(keep) == 1 else keep
-        at = tuple((k, v) for k, v in body.at if k != g) + ((g, value if isinstance(value, str) else tuple(value)),)
-        try:
-            other = build_hypothesis(design, body.name, dataclasses.replace(body, at=at), space)
-        except GroupModelError:
-            continue
-        if other.estimable:
-            out.append(f"{_short(other.statement)} (\"at\": {json.dumps({g: value})})")
-    return out
+        dropped = {cell[list(design.factors).index(g)] for cell in empty}
+        keep = tuple(lv for lv in design.factors[g].levels if lv not in dropped)
+        if len(keep) >= (2 if g in own else 1):
+            out += _offer(design, body, space, {g: keep})
+    if out:
+        return out
+    return _pair_search(design, body, space, names, own)
+
+
+def _pair_search(design: Design, body: HypothesisSpec, space: RowSpace, names: list[str],
+                 own: list[str]) -> list[str]:
+    """The estimable restriction of two factors that keeps the most cells (a small, bounded search)."""
+    options = {g: [sub for k in range(2 if g in own else 1, design.factors[g].n_levels)
+                   for sub in combinations(design.factors[g].levels, k)] for g in names}
+    pairs = [(g, h) for g, h in combinations(names, 2) if len(options[g]) * len(options[h]) <= PAIR_SEARCH_LIMIT]
+    trials = sorted(((a, b, g, h) for g, h in pairs for a in options[g] for b in options[h]),
+                    key=lambda t: -len(t[0]) * len(t[1]))
+    for a, b, g, h in trials:
+        found = _offer(design, body, space, {g: a, h: b})
+        if found:
+            return found
+    return []
+
+
+def _offer(design: Design, body: HypothesisSpec, space: RowSpace, levels: dict[str, tuple[str, ...]]) -> list[str]:
+    """The hypothesis with these ``at`` levels, in words with its ``"at"``, when it builds and is estimable."""
+    at = tuple((k, v) for k, v in body.at if k not in levels) + tuple(
+        (g, lv[0] if len(lv) == 1 else lv) for g, lv in levels.items())
+    try:
+        other = build_hypothesis(design, body.name, dataclasses.replace(body, at=at), space)
+    except GroupModelError:
+        return []
+    if not other.estimable:
+        return []
+    shown = {g: lv[0] if len(lv) == 1 else list(lv) for g, lv in levels.items()}
+    return [f"{_short(other.statement)} (\"at\": {json.dumps(shown)})"]
 
 
 def _without_interactions(spec: ModelSpec, design: Design, body: HypothesisSpec) -> list[str]:
@@ -91,8 +118,9 @@ def _without_interactions(spec: ModelSpec, design: Design, body: HypothesisSpec)
     if not drop or not _estimable_without(spec, design, body, drop):
         return []
     labels = ", ".join(term_label(t) for t in drop)
-    return [f"the same hypothesis in a model without the interaction {labels}, which "
-            f"assumes {'that interaction is' if len(drop) == 1 else 'those interactions are'} absent"]
+    which = "interaction {}, which assumes that interaction is" if len(drop) == 1 else \
+        "interactions {}, which assumes those interactions are"
+    return [f"the same hypothesis in a model without the {which.format(labels)} absent"]
 
 
 def _without_a_term(spec: ModelSpec, design: Design, body: HypothesisSpec) -> list[str]:

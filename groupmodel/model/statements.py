@@ -70,8 +70,16 @@ def at_text(at_levels: Mapping[str, str | tuple[str, ...]], skip: Sequence[str] 
 
 
 def _level_list_text(factor: str, levels: Sequence[str]) -> str:
-    """``scanner A, B``."""
-    return f"{factor} {', '.join(levels)}"
+    """``scanner (A, B)``: a factor over some of its levels (:func:`crossing` drops the brackets when alone)."""
+    return f"{factor} ({', '.join(levels)})"
+
+
+def crossing(items: Sequence[str]) -> str:
+    """Factors joined by `` x ``; a lone factor over some levels loses its brackets: ``scanner A, B``."""
+    if len(items) == 1 and items[0].endswith(")") and " (" in items[0]:
+        name, levels = items[0][:-1].split(" (", 1)
+        return f"{name} {levels}"
+    return " x ".join(items)
 
 
 def averaged_over(factor_names: Sequence[str], used: Sequence[str],
@@ -85,13 +93,13 @@ def averaged_over(factor_names: Sequence[str], used: Sequence[str],
     if not others:
         return ""
     how = "averaged equally over" if marginal == "equal" else "weighted by cell counts over"
-    return f"{how} {' x '.join(others)}"
+    return f"{how} {crossing(others)}"
 
 
 def over_levels(factors: Sequence[str], at_levels: Mapping[str, str | tuple[str, ...]]) -> str:
     """``over scanner A, B`` for the factors a hypothesis is about whose levels an ``at`` list restricts."""
     parts = [_level_list_text(f, at_levels[f]) for f in factors if isinstance(at_levels.get(f), tuple)]
-    return f"over {' x '.join(parts)} only" if parts else ""
+    return f"over {crossing(parts)} only" if parts else ""
 
 
 def _factorise(design: Design, w: np.ndarray) -> tuple[np.ndarray, list[str], list[str], dict[str, str]]:
@@ -153,7 +161,7 @@ def describe_cell_weights(design: Design, w: np.ndarray, slope_of: str | None = 
     text = combination(terms) + " = 0"
     extras = []
     if averaged:
-        extras.append("averaged equally over " + " x ".join(reversed(averaged)))
+        extras.append("averaged equally over " + crossing(list(reversed(averaged))))
     if fixed:
         extras.append("at " + ", ".join(f"{f}={lv}" for f, lv in reversed(list(fixed.items()))))
     return join(text, *extras)

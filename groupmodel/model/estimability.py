@@ -1,14 +1,16 @@
 """What can be tested instead of a hypothesis the observed cells do not determine.
 
 A hypothesis is not estimable in a rank-deficient design when its weights reach a cell no participant is in
-(or, more rarely, columns that repeat each other).  Two ways out are offered, each checked before it is
+(or, more rarely, columns that repeat each other).  These ways out are offered, each checked before it is
 offered (the changed hypothesis or model is built and found estimable):
 
 * the same hypothesis over the levels where its cells are observed: an ``"at"`` entry that keeps, for one
   factor, the levels none of whose touched cells is empty (a list of levels averages equally over them; for
-  the factor a main effect or interaction is about, it restricts that factor's levels);
+  the factor a main effect or interaction is about, it restricts that factor's levels); when no single factor
+  will do, the restriction of two factors that keeps the most cells (a bounded search);
 * the same hypothesis in a model without the interactions whose crossing has an empty cell (this assumes
-  those interactions are absent).
+  those interactions are absent);
+* when neither applies (two terms that split the participants the same way), the model without one term.
 """
 
 from __future__ import annotations

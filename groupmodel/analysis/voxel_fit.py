@@ -187,7 +187,9 @@ def fit_images(
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
         maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
-        warnings = list(data.warnings) + _flat_warnings(maps, n_vox, elements_of(data.grid))
+        # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
+        warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
         permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)

@@ -5,7 +5,8 @@ Array-level code: it knows nothing about files or specs.
 Freedman-Lane (Freedman and Lane 1983; Winkler et al. 2014, NeuroImage 92:381-397)
 ------------------------------------------------------------------------------------
 The design is partitioned, for each contrast, into effects of interest and nuisance.  Numerically:
-``X = U S V'`` (economy SVD, rank r); the contrast in the coordinates ``theta = U'Y`` is
+``X = U S V'`` (economy SVD, rank r, which may be below p: a rank-deficient design is split the same way,
+its contrast rows estimable, and only its column space is used); the contrast in the coordinates ``theta = U'Y`` is
 ``M = L V_r S_r^-1`` (so ``L b = M theta``); the right singular vectors of ``M`` split the
 column space of ``X`` into the interest space ``U_i`` (q columns, spanning the space of Winkler et
 al.'s ``X_i = X D L' (L D L')^-1``, ``D = (X'X)^+``) and the nuisance space ``U_z`` (r - q columns,
@@ -43,7 +44,7 @@ from typing import Literal
 
 import numpy as np
 
-from ..engine.linalg import ESTIMABILITY_TOL, rank_tolerance
+from ..engine.linalg import RowSpace, rank_tolerance
 from ..errors import EstimabilityError, InputError, ModelError
 
 __all__ = [
@@ -150,9 +151,9 @@ def partition(design: np.ndarray, weights: np.ndarray, kind: Kind = "t") -> Part
     r = int(np.sum(s > rank_tolerance(X, s)))
     if r == 0:
         raise ModelError("the design is all zeros (in permutation inference); check the design matrix")
+    # A rank-deficient design (r < p) is split the same way: everything below lives in its column space.
     Ur, sr, Vr = U[:, :r], s[:r], Vt[:r].T
-    resid = L - (L @ Vr) @ Vr.T
-    bad = np.linalg.norm(resid, axis=1) > ESTIMABILITY_TOL * np.maximum(np.linalg.norm(L, axis=1), 1e-300)
+    bad = ~RowSpace(Vt[:r], r, rank_tolerance(X, s)).contains(L)
     if bad.any():
         raise EstimabilityError(
             f"contrast rows {np.flatnonzero(bad).tolist()} are not estimable in this design: they are "

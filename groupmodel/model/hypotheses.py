@@ -22,8 +22,9 @@ from typing import Any, Literal
 
 import numpy as np
 
-from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, independent_rows
+from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import ModelError, SpecError
+from .checks import empty_cells_text
 from .design import Design
 from .hypothesis_kinds import BUILDERS, At, CellWeights, ColumnWeights, parse_at, register
 from .spec import HypothesisSpec, Interaction, Main, Slope, Tail
@@ -227,10 +228,10 @@ def _non_estimable_reason(design: Design, cell_w: np.ndarray | None) -> str:
         touched = np.abs(cell_w).max(axis=0) > 0
         empty = [design.cells[i] for i in np.flatnonzero(touched & (design.cell_counts == 0))]
         if empty:
-            cells = "; ".join(design.cell_label(c) for c in empty)
-            return f"no participant has {cells}"
-    return "its weights are not in the row space of the design (the design is rank deficient and this " \
-        "hypothesis depends on what the data cannot separate)"
+            return f"no participant has {empty_cells_text(design, empty)}"
+    deps = dependent_columns(design.matrix, design.column_names)
+    return "its weights are not in the row space of the design: it depends on what the rank-deficient design " \
+        f"cannot separate ({'; '.join(deps)})"
 
 
 def build_hypotheses(design: Design,

@@ -178,7 +178,8 @@ class HypothesisSpec:
     target : Main, Interaction, Compare, Mean, Trend, Slope, Cells or Weights
         The kind's arguments.
     at : tuple of (name, value)
-        Factor levels (text) and covariate values (numbers) at which it is evaluated, in the order written.
+        Factor levels (text, or a tuple of levels to average over) and covariate values (numbers) at which it
+        is evaluated, in the order written.
     tail : {"two-sided", "greater", "less"} or None
         As written; None when not given (two-sided).
     marginal : {"equal", "observed"}
@@ -190,7 +191,7 @@ class HypothesisSpec:
     name: str
     kind: str
     target: Target
-    at: tuple[tuple[str, str | float], ...] = ()
+    at: tuple[tuple[str, str | float | tuple[str, ...]], ...] = ()
     tail: Tail | None = None
     marginal: str = "equal"
     degree: int | None = None
@@ -217,7 +218,7 @@ class HypothesisSpec:
             name=name,
             kind=kind,
             target=TARGET_READERS[kind](body[kind], body),
-            at=tuple((body.get("at") or {}).items()),
+            at=tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in (body.get("at") or {}).items()),
             tail=body.get("tail"),
             marginal=body.get("marginal", "equal"),
             degree=body.get("degree"),
@@ -317,6 +318,11 @@ def _schema_message(error: jsonschema.ValidationError, spec_name: str) -> str:
             f"{spec_name} {where}: expected exactly one of the keys main, interaction, compare, mean, trend, "
             f"slope, cells, weights; found {found}; "
             "keep exactly one"
+        )
+    if best.validator == "anyOf" and ".at." in where:
+        return (
+            f"{spec_name} {where}: expected a factor level (text), a list of levels, or a covariate value (number); "
+            f"found {best.instance!r}; fix the value"
         )
     return f"{spec_name} {where}: {best.message}; fix the value to match the model spec schema (see README)"
 

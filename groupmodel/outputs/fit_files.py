@@ -9,7 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .design_files import write_model
+from .design_files import write_model, written_hypothesis
 from .folder import OutputFolder
 from .provenance import provenance
 
@@ -88,6 +88,8 @@ CLUSTER_COLUMNS = {
     "com_x, com_y, com_z": "unweighted centre of mass in mm",
     "p_fwe": "family-wise error p",
 }
+#: The keys of a hypothesis's weights over cells (contrasts.json) that map sidecars carry too.
+CELL_WEIGHT_KEYS = ("weights_over_cells", "slope_weights_over_cells", "slope_of")
 _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
             "mlog10p": "none", "residual_variance": "estimate"}
 
@@ -101,10 +103,13 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
     out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
     if name is not None:
         h = fit.model.hypotheses[name]
+        written = written_hypothesis(h).as_dict(fit.model.design)
         out.update({
             "test": h.test,
             "statement": h.statement,
-            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
+            "weights": written["weights"],
+            # over cell means (over cell slopes for a slope), as in contrasts.json
+            **{k: written[k] for k in CELL_WEIGHT_KEYS if k in written},
             "df1": h.n_rows,
             "df2": fit.df_resid,
             "tail": h.tail,

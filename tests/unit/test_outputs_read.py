@@ -1,0 +1,101 @@
+"""Outputs a person reads: round-off noise, tail labels, trend units, statements, sidecar weights.
+
+References: exact fractions (fractions.Fraction) for the written weights; numpy.polyfit for the least-squares
+slope of cell means; statsmodels OLS t_test for the t and p of a trend; common practice for the name of an
+F test's single (upper) rejection region.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from groupmodel import build
+from groupmodel.outputs.numbers import tidy
+
+# A design whose arithmetic leaves round-off noise: polynomial coding (its middle linear value is 1.7e-16),
+# an F test and a grand mean over effect-coded columns.
+NOISY_HYPOTHESES = {
+    "lin": {"trend": "dose"},
+    "dose": {"main": "dose"},
+    "grand": {"mean": {}},
+    "grand_obs": {"mean": {}, "marginal": "observed"},
+    "raw": {"weights": {"dose.linear": 1, "sex=f": 0.5}},
+}
+
+
+def write_study(folder: Path, frame: pd.DataFrame, spec: dict) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    frame = frame.copy()
+    frame.insert(0, "participant_id", [f"sub-{i:03d}" for i in range(len(frame))])
+    frame.to_csv(folder / "participants.tsv", sep="\t", index=False)
+    (folder / "model.json").write_text(json.dumps({"participants": "participants.tsv", **spec}))
+    return folder / "model.json"
+
+
+def dose_frame(n: int = 30, seed: int = 3) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    return pd.DataFrame({"dose": rng.choice(["d0", "d50", "d100"], n), "sex": rng.choice(["f", "m"], n),
+                         "age": np.round(rng.normal(30, 5, n), 2), "y": rng.normal(0, 1, n)})
+
+
+def noisy_spec(folder: Path) -> Path:
+    spec = {"factors": {"dose": {"levels": ["d0", "d50", "d100"], "scores": [0, 50, 100], "coding": "polynomial"},
+                        "sex": {"coding": "effect"}},
+            "covariates": {"age": {"center": "mean"}}, "terms": ["dose*sex", "age"],
+            "hypotheses": NOISY_HYPOTHESES}
+    return write_study(folder, dose_frame(), spec)
+
+
+# --------------------------------------------------------------------------------------------------
+# Round-off noise
+# --------------------------------------------------------------------------------------------------
+def test_tidy_snaps_noise_to_simple_fractions_only() -> None:
+    # Reference: exact fractions (fractions.Fraction); 1e-12 of the row's largest |value| is round-off.
+    row = np.array([0.9999999999999999, -2.2e-17, 1.11e-16, -0.0, 1 / 3 + 4e-17, 0.1 + 0.2, math.sqrt(2), 0.123457])
+    got = tidy(row)
+    assert got.tolist() == [1.0, 0.0, 0.0, 0.0, 1 / 3, 0.3, math.sqrt(2), 0.123457]
+    assert not np.signbit(got[1:4]).any()  # no -0.0
+    # the scale is each row's (axis=1) or each column's (axis=0): 1e-14 is noise beside 1 but not beside 1e-13
+    m = np.array([[1.0, 1e-14], [1e-13, 1e-14]])
+    assert tidy(m, axis=1).tolist() == [[1.0, 0.0], [1e-13, 1e-14]]
+    assert tidy(m, axis=0).tolist() == [[1.0, 1e-14], [0.0, 1e-14]]
+    assert np.isnan(tidy([np.nan, 1.0])[0])
+
+
+def _numbers(obj: object) -> list[float]:
+    if isinstance(obj, dict):
+        return [x for v in obj.values() for x in _numbers(v)]
+    if isinstance(obj, list):
+        return [x for v in obj for x in _numbers(v)]
+    return [float(obj)] if isinstance(obj, float) else []
+
+
+def test_written_weights_and_design_values_carry_no_round_off(tmp_path: Path) -> None:
+    # Reference: the exact values (0, 1, +-1/2, cell-count fractions) that the arithmetic only approximates.
+    model = build(noisy_spec(tmp_path / "study"))
+    assert np.abs(model.design.matrix[np.abs(model.design.matrix) < 1e-12]).max() > 0  # the noise is there
+    model.write(tmp_path / "out")
+    design_text = (tmp_path / "out" / "design.tsv").read_text()
+    contrasts_text = (tmp_path / "out" / "contrasts.tsv").read_text()
+    for text in (design_text, contrasts_text):
+        assert "e-1" not in text and "-0.0\t" not in text and "-0.0\n" not in text and "99999999" not in text
+    contrasts = pd.read_csv(tmp_path / "out" / "contrasts.tsv", sep="\t").set_index("hypothesis")
+    assert contrasts.loc["grand"].drop("row").tolist() == [1.0, 0, 0, 0, 0, 0, 0]
+    for name in ("contrasts.json", "design.json"):
+        doc = json.loads((tmp_path / "out" / name).read_text())
+        doc.pop("singular_values", None)
+        doc.pop("condition_number", None)
+        doc.pop("variance_inflation", None)
+        doc.pop("covariates", None)
+        tiny = [x for x in _numbers(doc) if 0 < abs(x) < 1e-12]
+        assert not tiny, (name, tiny)
+        assert not [x for x in _numbers(doc) if x == 0 and math.copysign(1, x) < 0], name
+    cells = json.loads((tmp_path / "out" / "contrasts.json").read_text())["hypotheses"]["raw"]["weights_over_cells"]
+    assert all(abs(w) > 1e-12 for c in cells for w in c["weight"])
+    # the fit's arithmetic is untouched
+    assert np.abs(model.hypotheses["grand"].weights[0, 1:]).max() > 0

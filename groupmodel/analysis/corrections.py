@@ -147,7 +147,7 @@ def permutation_inference(
                 if progress is not None:
                     progress(_name, done, total)
 
-            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.tail, name=h.name)
+            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
             res = run_permutations(test, data.columns(), rearrangements, map_settings, execution, progress=report)
             out[h.name] = _hypothesis_inference(res, h, options, adjacency, ijk, data.grid)
     return out

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pytest
 
 from groupmodel import build
 from groupmodel.outputs.numbers import tidy
@@ -99,3 +100,38 @@ def test_written_weights_and_design_values_carry_no_round_off(tmp_path: Path) ->
     assert all(abs(w) > 1e-12 for c in cells for w in c["weight"])
     # the fit's arithmetic is untouched
     assert np.abs(model.hypotheses["grand"].weights[0, 1:]).max() > 0
+
+
+# --------------------------------------------------------------------------------------------------
+# The tail of an F test
+# --------------------------------------------------------------------------------------------------
+def test_f_tests_are_labelled_upper_and_keep_their_p(tmp_path: Path) -> None:
+    # Reference: common practice (an F test has one rejection region, large F); scipy.stats.f.sf for its p.
+    from scipy import stats
+
+    from groupmodel.fit import fit_table, write_table_fit
+
+    fit = fit_table(noisy_spec(tmp_path / "study"), "y")
+    table = fit.table.set_index("hypothesis")
+    assert table.loc["dose", "tail"] == "upper" and table.loc["lin", "tail"] == "two-sided"
+    dose = table.loc["dose"]
+    assert dose["p"] == pytest.approx(stats.f.sf(dose["statistic"], dose["df1"], dose["df2"]), rel=1e-12)
+    assert "upper" in fit.format() and fit.model.hypotheses["dose"].tail == "upper"
+    write_table_fit(fit, tmp_path / "out")
+    written = pd.read_csv(tmp_path / "out" / "results.tsv", sep="\t").set_index("hypothesis")
+    assert written.loc["dose", "tail"] == "upper"
+    sidecar = json.loads((tmp_path / "out" / "results.json").read_text())["hypotheses"]
+    assert sidecar["dose"]["tail"] == "upper" and sidecar["raw"]["tail"] == "two-sided"
+    contrasts = json.loads((tmp_path / "out" / "contrasts.json").read_text())["hypotheses"]
+    assert contrasts["dose"]["tail"] == "upper"
+
+
+def test_a_tail_on_several_rows_of_weights_is_refused(tmp_path: Path) -> None:
+    spec = noisy_spec(tmp_path / "study")
+    body = json.loads(spec.read_text())
+    body["hypotheses"] = {"two_rows": {"weights": [{"dose.linear": 1}, {"dose.quadratic": 1}], "tail": "greater"}}
+    spec.write_text(json.dumps(body))
+    from groupmodel.errors import SpecError
+
+    with pytest.raises(SpecError, match=r"\$\.hypotheses\.two_rows\.tail: .*F test.*remove 'tail'"):
+        build(spec)

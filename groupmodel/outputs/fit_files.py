@@ -84,8 +84,9 @@ CLUSTER_COLUMNS = {
     "size": "voxels (or vertices)",
     "peak_stat": "most extreme statistic in the cluster's direction",
     "peak_index": "position of the peak in the mask's voxel order",
-    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
-    "com_x, com_y, com_z": "unweighted centre of mass in mm",
+    "peak_i, peak_j, peak_k": "voxel indices of the peak in the image, counted from 0 (volumes only)",
+    "peak_x_mm, peak_y_mm, peak_z_mm": "peak coordinates in mm (from the image affine)",
+    "com_x_mm, com_y_mm, com_z_mm": "unweighted centre of mass in mm",
     "p_fwe": "family-wise error p",
 }
 #: The keys of a hypothesis's weights over cells (contrasts.json) that map sidecars carry too.

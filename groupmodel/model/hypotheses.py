@@ -207,6 +207,8 @@ def _drop_vanishing(design: Design, h: HypothesisSpec, weights: np.ndarray, cell
                     notes: list[str]) -> tuple[np.ndarray, np.ndarray | None, list[str], int]:
     """Refuse a hypothesis whose weights all vanish in this model; drop (and note) rows that vanish."""
     scale = max(np.abs(design.matrix).max(), 1.0)
+    if cell_w is not None:  # relative to the size of the weights over cells (a trend's may be small)
+        scale = scale * np.maximum(np.linalg.norm(cell_w, axis=1), np.finfo(float).tiny)
     norms = np.linalg.norm(weights, axis=1)
     if np.all(norms <= VANISH_TOL * scale):
         raise ModelError(

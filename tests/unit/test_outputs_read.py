@@ -135,3 +135,70 @@ def test_a_tail_on_several_rows_of_weights_is_refused(tmp_path: Path) -> None:
 
     with pytest.raises(SpecError, match=r"\$\.hypotheses\.two_rows\.tail: .*F test.*remove 'tail'"):
         build(spec)
+
+
+# --------------------------------------------------------------------------------------------------
+# Trends in units of the scores
+# --------------------------------------------------------------------------------------------------
+def test_trend_estimates_are_in_units_of_the_scores(tmp_path: Path) -> None:
+    # Reference: numpy.polyfit of the estimated level means over the scores (the slope per unit of score for
+    # degree 1, the score**d coefficient of the degree-d fit otherwise); statsmodels OLS t_test of the
+    # orthonormal polynomial contrast (patsy Poly, as R contr.poly) for t and p, which the scaling leaves alone.
+    import patsy
+    import statsmodels.formula.api as smf
+    from scipy import stats
+
+    from groupmodel.fit import fit_table
+
+    rng = np.random.default_rng(5)
+    levels, scores = ["h0", "h1", "h3", "h7"], [0, 1, 3, 7]
+    dose = np.repeat(levels, [5, 8, 6, 9])
+    frame = pd.DataFrame({"hours": dose, "y": rng.normal(0, 1, dose.size) + 0.3 * np.repeat(scores, [5, 8, 6, 9])})
+    hyps = {"linear": {"trend": "hours"}, "quadratic": {"trend": "hours", "degree": 2},
+            "cubic": {"trend": "hours", "degree": 3, "tail": "less"}}
+    means = frame.groupby("hours")["y"].mean()[levels].to_numpy()
+    res = smf.ols(f"y ~ C(hours, levels={levels!r})", frame).fit()
+    poly = patsy.contrasts.Poly(scores=scores).code_without_intercept(levels).matrix
+    cells = np.column_stack([np.ones(4), np.vstack([np.zeros(3), np.eye(3)])])  # treatment rows of the 4 cells
+    for coding in ("effect", "polynomial", "treatment"):
+        spec = {"factors": {"hours": {"levels": levels, "scores": scores, "coding": coding}}, "terms": ["hours"],
+                "hypotheses": hyps}
+        table = fit_table(write_study(tmp_path / coding, frame, spec), "y").table.set_index("hypothesis")
+        for degree, name in enumerate(hyps, start=1):
+            assert table.loc[name, "estimate"] == pytest.approx(np.polyfit(scores, means, degree)[0], rel=1e-10)
+            ref = res.t_test(poly[:, degree - 1] @ cells)
+            t = float(np.squeeze(ref.tvalue))
+            p = stats.t.cdf(t, res.df_resid) if name == "cubic" else float(np.squeeze(ref.pvalue))
+            assert table.loc[name, "statistic"] == pytest.approx(t, rel=1e-10)
+            assert table.loc[name, "p"] == pytest.approx(p, rel=1e-9)
+            se = float(np.squeeze(ref.sd)) * table.loc[name, "estimate"] / float(np.squeeze(ref.effect))
+            assert table.loc[name, "se"] == pytest.approx(se, rel=1e-10)
+
+
+def test_trend_statement_says_its_units(tmp_path: Path) -> None:
+    model = build(noisy_spec(tmp_path / "study"))
+    assert model.hypotheses["lin"].statement.startswith(
+        "linear trend over dose scores [0, 50, 100], the least-squares slope of the dose means per unit of score: "
+        "-0.01 mean(dose=d0) + 0.01 mean(dose=d100) = 0")
+
+
+# --------------------------------------------------------------------------------------------------
+# The grand mean in words
+# --------------------------------------------------------------------------------------------------
+def test_grand_mean_is_called_mean_over_participants_only_when_it_is(tmp_path: Path) -> None:
+    # Reference: the definition (each participant weighted equally = each cell weighted by its count).
+    frame = dose_frame()
+    one = build(write_study(tmp_path / "one", frame, {"terms": [], "hypotheses": {"m": {"mean": {}}}}))
+    assert one.hypotheses["m"].statement == "mean over participants = 0"
+    model = build(noisy_spec(tmp_path / "study"))
+    counts = model.design.cell_counts
+    assert np.allclose(model.hypotheses["grand_obs"].cell_weights[0], counts / counts.sum())
+    assert model.hypotheses["grand_obs"].statement == "mean over participants = 0; age at its mean 29.58"
+    # equal weights over unbalanced cells are not the mean over participants: the old wording stays
+    assert len(set(counts)) > 1
+    assert model.hypotheses["grand"].statement.startswith("mean of all cells = 0, averaged equally over dose x sex")
+    balanced = pd.DataFrame({"g": ["a", "b"] * 6, "y": np.arange(12.0)})
+    eq = build(write_study(tmp_path / "bal", balanced, {"factors": {"g": {}}, "terms": ["g"], "hypotheses": {
+        "m": {"mean": {}}, "in_a": {"mean": {}, "at": {"g": "a"}}}}))
+    assert eq.hypotheses["m"].statement == "mean over participants = 0"
+    assert eq.hypotheses["in_a"].statement == "mean over participants = 0, at g=a"

@@ -202,3 +202,54 @@ def test_grand_mean_is_called_mean_over_participants_only_when_it_is(tmp_path: P
         "m": {"mean": {}}, "in_a": {"mean": {}, "at": {"g": "a"}}}}))
     assert eq.hypotheses["m"].statement == "mean over participants = 0"
     assert eq.hypotheses["in_a"].statement == "mean over participants = 0, at g=a"
+
+
+# --------------------------------------------------------------------------------------------------
+# A voxelwise fit: sidecars, summary and cluster tables
+# --------------------------------------------------------------------------------------------------
+def test_voxel_fit_files_read_right(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Reference: contrasts.json (the weights over cells a map's sidecar repeats); common practice for the
+    # upper tail of F; the image affine for the peak's voxel indices and mm coordinates.
+    import nibabel as nib
+
+    from groupmodel.cli import main
+
+    rng = np.random.default_rng(8)
+    affine = np.array([[2.0, 0, 0, -10], [0, 2.0, 0, -8], [0, 0, 2.0, -4], [0, 0, 0, 1]])
+    frame = dose_frame(n=24, seed=8)
+    (tmp_path / "study" / "maps").mkdir(parents=True)
+    for i, dose in enumerate(frame["dose"]):
+        vol = rng.normal(0, 1, (7, 6, 5))
+        vol[1:4, 1:4, 1:3] += 3.0 * (dose == "d100")
+        nib.save(nib.Nifti1Image(vol.astype(np.float32), affine), tmp_path / "study" / "maps" / f"sub-{i:03d}.nii.gz")
+    spec = noisy_spec(tmp_path / "study")
+    body = json.loads(spec.read_text())
+    body["participants"] = "participants.tsv"
+    body["images"] = "maps/{participant_id}.nii.gz"
+    frame.insert(0, "participant_id", [f"sub-{i:03d}" for i in range(len(frame))])
+    frame.to_csv(tmp_path / "study" / "participants.tsv", sep="\t", index=False)
+    spec.write_text(json.dumps(body))
+    out = tmp_path / "out"
+    assert main(["fit", str(spec), "--out", str(out), "--permutations", "40", "--seed", "1"]) == 0
+    printed = capsys.readouterr().out
+    summary = pd.read_csv(out / "summary.tsv", sep="\t").set_index("hypothesis")
+    assert summary.loc["dose", "tail"] == "upper" and summary.loc["lin", "tail"] == "two-sided"
+    assert "dose    F     upper" in printed
+    contrasts = json.loads((out / "contrasts.json").read_text())["hypotheses"]
+    for name, stat in (("dose", "F"), ("dose", "p_fwe"), ("lin", "effect"), ("raw", "t")):
+        side = json.loads((out / f"{name}_{stat}.json").read_text())
+        assert side["weights_over_cells"] == contrasts[name]["weights_over_cells"], (name, stat)
+        assert side["weights"] == contrasts[name]["weights"]
+        assert side["tail"] == contrasts[name]["tail"]
+    assert json.loads((out / "dose_F.json").read_text())["tail"] == "upper"
+    table = pd.read_csv(out / "dose_clusters_voxel_fwe.tsv", sep="\t")
+    assert table.columns.tolist() == ["cluster", "sign", "size", "peak_stat", "peak_index", "peak_i", "peak_j",
+                                      "peak_k", "peak_x_mm", "peak_y_mm", "peak_z_mm", "com_x_mm", "com_y_mm",
+                                      "com_z_mm", "p_fwe"]
+    assert len(table) >= 1
+    ijk = table.loc[0, ["peak_i", "peak_j", "peak_k"]].to_numpy(int)
+    assert np.allclose(affine[:3, :3] @ ijk + affine[:3, 3], table.loc[0, ["peak_x_mm", "peak_y_mm", "peak_z_mm"]])
+    f_map = np.asanyarray(nib.load(out / "dose_F.nii.gz").dataobj)
+    assert f_map[tuple(ijk)] == pytest.approx(table.loc[0, "peak_stat"], rel=1e-6)
+    columns = json.loads((out / "dose_clusters_voxel_fwe.json").read_text())["columns"]
+    assert "peak_i, peak_j, peak_k" in columns and "peak_x_mm, peak_y_mm, peak_z_mm" in columns

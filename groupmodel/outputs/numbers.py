@@ -27,11 +27,40 @@ def _snap(x: float, tol: float) -> float:
     return (near if abs(x - near) <= tol else x) + 0.0  # + 0.0 turns -0.0 into 0.0
 
 
+def _maybe_simple(x: np.ndarray, tol: float) -> np.ndarray:
+    """Which values may lie within ``tol`` of a fraction with denominator <= MAX_DENOMINATOR (a quick sieve).
+
+    Such a fraction is a convergent of the value's continued fraction (Legendre: ``|x - a/b| < 1/(2 b^2)``),
+    so the convergents with denominators up to MAX_DENOMINATOR are tried, all values at once; the
+    exact snap (:func:`_snap`) then runs on the few that pass.
+    """
+    ax = np.abs(x)
+    found = ax <= tol
+    h1, h2 = np.ones_like(ax), np.zeros_like(ax)
+    k1, k2 = np.zeros_like(ax), np.ones_like(ax)
+    r = ax.copy()
+    live = np.isfinite(ax) & ~found
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        while live.any():
+            a = np.floor(r)
+            h1, h2 = a * h1 + h2, h1
+            k1, k2 = a * k1 + k2, k1
+            live &= k1 <= MAX_DENOMINATOR
+            # a margin over tol: the sieve may pass a few values the exact test then leaves alone
+            found |= live & (np.abs(ax - h1 / k1) <= 4 * tol + 4 * np.spacing(ax))
+            frac = r - a
+            live &= frac > 0
+            r = np.where(live, 1 / np.where(live, frac, 1), 0)
+    return found
+
+
 def _tidy_vector(values: np.ndarray) -> np.ndarray:
     finite = values[np.isfinite(values)]
     tol = RTOL * (float(np.abs(finite).max()) if finite.size else 0.0)
     uniques, inverse = np.unique(values, return_inverse=True)
-    snapped = np.array([_snap(float(u), tol) for u in uniques], dtype=np.float64)
+    snapped = uniques + 0.0  # + 0.0 turns -0.0 into 0.0
+    for i in np.flatnonzero(_maybe_simple(uniques, tol)):
+        snapped[i] = _snap(float(uniques[i]), tol)
     return snapped[inverse.reshape(values.shape)]
 
 

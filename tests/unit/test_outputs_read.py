@@ -68,6 +68,22 @@ def test_tidy_snaps_noise_to_simple_fractions_only() -> None:
     assert np.isnan(tidy([np.nan, 1.0])[0])
 
 
+def test_tidy_agrees_with_fractions_limit_denominator() -> None:
+    # Reference: fractions.Fraction(x).limit_denominator(1000), kept when within 1e-12 x the largest |value|.
+    from fractions import Fraction
+
+    rng = np.random.default_rng(11)
+    b, a = rng.integers(1, 1001, 20000), rng.integers(-3000, 3000, 20000)
+    x = np.concatenate([a / b * (1 + rng.choice([0, 1e-16, -2.2e-16, 3e-13, 1e-11], b.size)), rng.normal(size=2000)])
+    tol = 1e-12 * np.abs(x).max()
+
+    def snap(v: float) -> float:
+        near = float(Fraction(v).limit_denominator(1000))
+        return (near if abs(v - near) <= tol else v) + 0.0
+
+    assert tidy(x).tolist() == [snap(float(v)) for v in x]
+
+
 def _numbers(obj: object) -> list[float]:
     if isinstance(obj, dict):
         return [x for v in obj.values() for x in _numbers(v)]

@@ -218,7 +218,7 @@ def permutation_inference(
                 if progress is not None:
                     progress(_name, done, total)
 
-            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.tail, name=h.name)
+            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
             chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
             res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
             out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)

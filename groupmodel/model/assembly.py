@@ -99,7 +99,7 @@ class Model:
         """The hypotheses as engine tests (:class:`groupmodel.ols.Test`)."""
         from ..engine.ols import Test
 
-        return [Test(h.name, h.weights, h.test, h.tail) for h in self.hypotheses.values()]
+        return [Test(h.name, h.weights, h.test, h.test_tail) for h in self.hypotheses.values()]
 
     # ----- files ---------------------------------------------------------------------------------
     def write(self, out: Path | str, force: bool = False, pictures: bool = True) -> Path:

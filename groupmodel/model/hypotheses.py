@@ -55,6 +55,10 @@ __all__ = [
 #: Relative tolerance under which a row of weights counts as zero (the hypothesis vanishes in this model).
 VANISH_TOL = 1e-10
 
+#: The tail of a hypothesis as reported: a t test's alternative, or ``upper`` for an F test (its one
+#: rejection region: large F).
+ReportedTail = Literal["two-sided", "greater", "less", "upper"]
+
 
 @dataclass(frozen=True)
 class Hypothesis:
@@ -66,8 +70,8 @@ class Hypothesis:
     kind : str
         ``main``, ``interaction``, ``compare``, ``mean``, ``trend``, ``slope``, ``cells`` or ``weights``.
     test : {"t", "F"}
-    tail : {"two-sided", "greater", "less"}
-        Always ``two-sided`` for F tests.
+    tail : {"two-sided", "greater", "less", "upper"}
+        The alternative of a t test; ``upper`` for every F test (p is the upper tail of F).
     weights : ndarray, shape (q, p)
         Independent rows over the design columns (what goes into contrasts.tsv).
     cell_weights : ndarray, shape (q, n_cells) or None
@@ -85,7 +89,7 @@ class Hypothesis:
     name: str
     kind: str
     test: Literal["t", "F"]
-    tail: Tail
+    tail: ReportedTail
     weights: np.ndarray
     cell_weights: np.ndarray | None
     statement: str
@@ -98,6 +102,11 @@ class Hypothesis:
     @property
     def n_rows(self) -> int:
         return self.weights.shape[0]
+
+    @property
+    def test_tail(self) -> Tail:
+        """The tail as the engine takes it: an F test's upper tail is the engine's ``two-sided`` (|t| for q = 1)."""
+        return "two-sided" if self.tail == "upper" else self.tail
 
     def as_dict(self, design: Design) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -158,6 +167,11 @@ def build_hypothesis(design: Design, name: str, body: HypothesisSpec | Mapping[s
     kind = BUILDERS[h.kind]
     at = parse_at(design, h) if kind.uses_at else At()
     built = kind.build(h, design, at)
+    if built.test == "F" and h.tail not in (None, "two-sided"):
+        raise SpecError(
+            f"{h.where}.tail: {h.kind} with several rows is an F test, which has one rejection region (large F) "
+            f"and no tail; remove 'tail', or give one row for a directional t test"
+        )
     weights = built.column_weights(design, at)
     statement = built.statement(design, at) + tail_phrase(h.tail_or_default)
     weights, cell_w, notes, rows_given = _drop_vanishing(design, h, weights, built.cell_weights, list(built.notes))
@@ -178,7 +192,7 @@ def build_hypothesis(design: Design, name: str, body: HypothesisSpec | Mapping[s
         name=h.name,
         kind=h.kind,
         test=built.test,
-        tail=h.tail_or_default,
+        tail="upper" if built.test == "F" else h.tail_or_default,
         weights=weights,
         cell_weights=cell_w,
         statement=statement,
@@ -194,6 +208,8 @@ def _drop_vanishing(design: Design, h: HypothesisSpec, weights: np.ndarray, cell
                     notes: list[str]) -> tuple[np.ndarray, np.ndarray | None, list[str], int]:
     """Refuse a hypothesis whose weights all vanish in this model; drop (and note) rows that vanish."""
     scale = max(np.abs(design.matrix).max(), 1.0)
+    if cell_w is not None:  # relative to the size of the weights over cells (a trend's may be small)
+        scale = scale * np.maximum(np.linalg.norm(cell_w, axis=1), np.finfo(float).tiny)
     norms = np.linalg.norm(weights, axis=1)
     if np.all(norms <= VANISH_TOL * scale):
         raise ModelError(

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..errors import SpecError
 from ..text import number_text
-from .coding import degree_name, orthogonal_polynomials
+from .coding import degree_name
 from .design import Design
 from .spec import Cells, Compare, HypothesisSpec, Interaction, Main, Mean, Slope, Trend, Weights
 from .statements import (
@@ -168,6 +168,13 @@ class _Cells:
                 return mask / max(mask.sum(), 1)  # no observations: estimability will say so
             return counts / counts.sum()
         return mask / max(mask.sum(), 1)
+
+    def is_participant_mean(self, w: np.ndarray) -> bool:
+        """Whether cell weights ``w`` weight each cell of the ``at`` slice by its count: the mean over its
+        participants (marginal "observed", a balanced slice, or a model without factors)."""
+        counts = self.design.cell_counts * self.select({})
+        total = counts.sum()
+        return bool(total > 0 and np.allclose(w, counts / total, rtol=0, atol=1e-12))
 
     def averaged_over(self, used: Sequence[str]) -> str:
         return averaged_over(self.factor_names, used, self.at_levels, self.marginal)
@@ -343,8 +350,33 @@ def _mean(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
         _require_factor(design, f, f"mean.{f}", h)
         _require_level(design, f, lv, f"mean.{f}", h)
     w = cells.marginal_mean(levels)[None, :]
+    if not levels and cells.is_participant_mean(w[0]):
+        return CellWeights(w, ("mean over participants = 0", at_text(at.levels)), "t")
     label = mean_label(levels) if levels else "mean of all cells"
     return CellWeights(w, (f"{label} = 0", cells.averaged_over(list(levels)), at_text(at.levels)), "t")
+
+
+def trend_weights(scores: Sequence[float], degree: int) -> np.ndarray:
+    """Weights over the level means (k,) whose sum is the degree-``degree`` trend in units of the scores.
+
+    The weights are ``P / (P . P)``, ``P`` the monic polynomial of that degree orthogonal (over the scores) to
+    every lower degree: the sum is the coefficient of ``score**degree`` in the least-squares polynomial of
+    that degree through the level means; for degree 1 the least-squares slope of the means per unit of score.
+    They are the orthonormal polynomial contrast (R's ``contr.poly``) rescaled: t and p are the same.
+    """
+    x = np.asarray(scores, dtype=float)
+    vander = np.vander(x - x.mean(), degree + 1, increasing=True)
+    q, r = np.linalg.qr(vander)
+    monic = q[:, degree] * r[degree, degree]  # score**degree minus its projection on the lower degrees
+    return monic / (monic @ monic)
+
+
+def _trend_units(degree: int, factor: str) -> str:
+    """What the estimate of a trend is, in units of the scores."""
+    if degree == 1:
+        return f"the least-squares slope of the {factor} means per unit of score"
+    fit = degree_name(degree) if degree <= 3 else f"polynomial of degree {degree}"
+    return f"the score^{degree} coefficient of the least-squares {fit} through the {factor} means"
 
 
 @register("trend")
@@ -360,12 +392,12 @@ def _trend(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
             f"{h.where}.degree: a factor with {fc.n_levels} levels has trends of degree 1 to "
             f"{fc.n_levels - 1}, found {degree}; lower the degree"
         )
-    coef = orthogonal_polynomials(fc.scores or range(1, fc.n_levels + 1))[:, degree - 1]
+    coef = trend_weights(fc.scores or range(1, fc.n_levels + 1), degree)
     means = np.array([cells.marginal_mean({f: lv}) for lv in fc.levels])
     w = (coef @ means)[None, :]
     combo = combination([(c, f"mean({f}={lv})") for c, lv in zip(coef, fc.levels, strict=True)])
     scores = ", ".join(map(number_text, fc.scores or ()))
-    stmt = f"{degree_name(degree)} trend over {f} scores [{scores}]: {combo} = 0"
+    stmt = f"{degree_name(degree)} trend over {f} scores [{scores}], {_trend_units(degree, f)}: {combo} = 0"
     return CellWeights(w, (stmt, cells.averaged_over([f]), at_text(at.levels)), "t")
 
 

@@ -9,7 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .design_files import write_model
+from .design_files import write_model, written_hypothesis
 from .folder import OutputFolder
 from .provenance import provenance
 
@@ -84,10 +84,13 @@ CLUSTER_COLUMNS = {
     "size": "voxels (or vertices)",
     "peak_stat": "most extreme statistic in the cluster's direction",
     "peak_index": "position of the peak in the mask's voxel order",
-    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
-    "com_x, com_y, com_z": "unweighted centre of mass in mm",
+    "peak_i, peak_j, peak_k": "voxel indices of the peak in the image, counted from 0 (volumes only)",
+    "peak_x_mm, peak_y_mm, peak_z_mm": "peak coordinates in mm (from the image affine)",
+    "com_x_mm, com_y_mm, com_z_mm": "unweighted centre of mass in mm",
     "p_fwe": "family-wise error p",
 }
+#: The keys of a hypothesis's weights over cells (contrasts.json) that map sidecars carry too.
+CELL_WEIGHT_KEYS = ("weights_over_cells", "slope_weights_over_cells", "slope_of")
 _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
             "mlog10p": "none", "residual_variance": "estimate"}
 
@@ -109,10 +112,13 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
     out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
     if name is not None:
         h = fit.model.hypotheses[name]
+        written = written_hypothesis(h).as_dict(fit.model.design)
         out.update({
             "test": h.test,
             "statement": h.statement,
-            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
+            "weights": written["weights"],
+            # over cell means (over cell slopes for a slope), as in contrasts.json
+            **{k: written[k] for k in CELL_WEIGHT_KEYS if k in written},
             "df1": h.n_rows,
             "df2": fit.df_resid,
             "tail": h.tail,

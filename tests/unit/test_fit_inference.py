@@ -141,7 +141,7 @@ def test_zero_threads_or_jobs_is_a_usage_error(study, tmp_path, capsys, option) 
     code = main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
     assert code == 2
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and f"{option} must be a whole number >= 1; got 0" in err
+    assert err.count("\n") == 1 and f"argument {option}: expected a whole number >= 1, found 0" in err
     assert not (tmp_path / "x").exists()
 
 

@@ -10,6 +10,14 @@ if TYPE_CHECKING:
     from ..analysis.corrections import InferenceOptions
     from ..analysis.voxel_fit import VoxelFit
     from ..model.assembly import Model
+    from ..outputs.folder import StaleFolder
+
+
+def print_removed(removed: tuple[StaleFolder, ...]) -> None:
+    """One line naming the hidden folders of killed earlier runs that were just removed (nothing if none)."""
+    if removed:
+        names = ", ".join(f"{r.path.name} (process {r.pid})" for r in removed)
+        print(f"removed {names}: left beside --out by an earlier run that was killed before it finished")
 
 
 def print_model_report(model: Model) -> None:

@@ -20,6 +20,7 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from .jsonfile import check_values, read_json
 from .options import InferenceOptions
 
 Coding = Literal["effect", "treatment", "polynomial", "indicator"]
@@ -349,20 +350,10 @@ def _as_level(value: str | float) -> str:
 
 
 def _read_json(path: Path) -> Any:
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise SpecError(f"model spec {path}: file not found; check the path") from None
-    except IsADirectoryError:
-        raise SpecError(f"model spec {path}: expected a JSON file, found a folder; give the spec file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SpecError(f"model spec {path}: cannot be read ({exc}); check the file") from None
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise SpecError(
-            f"model spec {path} line {exc.lineno}, column {exc.colno}: invalid JSON ({exc.msg}); fix the syntax"
-        ) from None
+    """The spec file's JSON: UTF-8, valid JSON, no absurd nesting, every number a finite float."""
+    if path.is_dir():
+        raise SpecError(f"model spec {path}: expected a JSON file, found a folder; give the spec file")
+    return read_json(path, "model spec", SpecError)
 
 
 def load_spec(path: Path | str) -> ModelSpec:
@@ -448,6 +439,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
     path = Path(path)
     name = path.name
+    check_values(raw, name, SpecError)  # nesting and numbers first: the schema check recurses and converts
     validator = jsonschema.Draft202012Validator(load_schema())
     errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
     if errors:

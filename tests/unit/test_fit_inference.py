@@ -143,10 +143,11 @@ def test_blocks_column_recorded_and_missing_block_refused(study, tmp_path) -> No
 
 @pytest.mark.parametrize("option", ["--threads", "--jobs"])
 def test_zero_threads_or_jobs_is_a_usage_error(study, tmp_path, capsys, option) -> None:
-    code = main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
-    assert code == 2
+    with pytest.raises(SystemExit) as exc:  # refused by the argument parser, before any work
+        main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
+    assert exc.value.code == 2
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and f"{option} must be a whole number >= 1; got 0" in err
+    assert err.count("\n") == 1 and f"argument {option}: expected a whole number >= 1, found 0" in err
     assert not (tmp_path / "x").exists()
 
 

@@ -74,10 +74,11 @@ _PIECE = 256
 @numba.njit(**_JIT)
 def _earlier_codes(
     signed: np.ndarray, gindex: np.ndarray, offsets: np.ndarray, earlier: np.ndarray, padded_size: int, K: int
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Pass 1, in element order.  Bit c of codes[e]: neighbour c of e entered before e (a higher level
     relative to e's sign, or the same level and a smaller index) and no neighbour before it on the offset
-    path that touches it did.  Also the number of elements and of kept neighbours per level.
+    path that touches it did.  Also the padded level grid, and the number of elements and of kept
+    neighbours per level.
 
     Runs of consecutive voxels along the last axis are handled a piece at a time and a column (offset) at
     a time, so that every read is a contiguous slice of the padded level grid (the loops vectorise)."""
@@ -124,23 +125,24 @@ def _earlier_codes(
             pairs_level[lev] += _popcount(keep)
         e0 = e1
     per_level[0] = 0
-    return codes, per_level, pairs_level
+    return grid, codes, per_level, pairs_level
 
 
 @numba.njit(**_JIT)
 def _entering_layout(
     signed: np.ndarray,
+    grid: np.ndarray,
     codes: np.ndarray,
     per_level: np.ndarray,
     pairs_level: np.ndarray,
     gindex: np.ndarray,
     offsets: np.ndarray,
-    element: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Passes 2 and 3, in element order: each active element's position in entering order (level
     descending, index ascending), and its kept neighbours as positions, stored in entering order so that
     the merge reads them sequentially.  Within a level entering order is element order, so each level's
-    slots are filled by one forward-moving pointer.  Returns (position of each element, start of each
+    slots are filled by one forward-moving pointer.  The padded grid, no longer needed for levels, holds
+    the positions of the active voxels in between.  Returns (position of each element, start of each
     position's neighbours, the neighbours)."""
     n, K = signed.size, per_level.size - 1
     at = np.zeros(K + 1, np.int64)
@@ -158,7 +160,7 @@ def _entering_layout(
     for e in range(n):
         own = abs(signed[e])
         if own:
-            position[e] = at[own]
+            position[e] = grid[gindex[e]] = at[own]
             start[at[own]] = pair_at[own]
             at[own] += 1
             pair_at[own] += _popcount(codes[e])
@@ -169,11 +171,17 @@ def _entering_layout(
             j = first_pair[own]
             g = gindex[e]
             while code:
-                nb[j] = position[element[g + offsets[_lowest_bit(code)]]]
+                nb[j] = grid[g + offsets[_lowest_bit(code)]]
                 j += 1
                 code &= code - np.uint32(1)
             first_pair[own] = j
     return position, start, nb
+
+
+@numba.njit(**_JIT)
+def _extent(size: int, E: float) -> float:
+    """``size^E``; a square root for E = 0.5, as numpy's ``**`` computes it."""
+    return np.sqrt(np.float64(size)) if E == 0.5 else np.float64(size) ** E
 
 
 @numba.njit(**_JIT)
@@ -198,7 +206,7 @@ def _merge(start: np.ndarray, nb: np.ndarray, per_level: np.ndarray, S: np.ndarr
             for j in range(start[p], start[p + 1]):
                 r = _find(parent, nb[j])
                 if last[r] != k:
-                    acc[r] += size[r] ** E * (S[last[r]] - S[k])
+                    acc[r] += _extent(size[r], E) * (S[last[r]] - S[k])
                     last[r] = k
                 if root < 0:
                     root = r
@@ -222,7 +230,7 @@ def _merge(start: np.ndarray, nb: np.ndarray, per_level: np.ndarray, S: np.ndarr
     # Surviving roots down to level 0, then what absorbed roots inherit (latest absorption first).
     for p in range(A):
         if parent[p] == p:
-            acc[p] += size[p] ** E * (S[last[p]] - S[0])
+            acc[p] += _extent(size[p], E) * (S[last[p]] - S[0])
     inherited = np.zeros(A)
     for j in range(n_gone - 1, -1, -1):
         inherited[gone[j]] = inherited[into[j]] + acc[into[j]] - base[gone[j]]
@@ -240,18 +248,17 @@ def tfce_grid(
     gindex: np.ndarray,
     offsets: np.ndarray,
     earlier: np.ndarray,
-    element: np.ndarray,
     padded_size: int,
     S: np.ndarray,
     E: float,
 ) -> np.ndarray:
     """TFCE of the elements of a grid from their signed levels (negative: enhanced as -x, returned < 0).
 
-    ``signed`` int32 (n,); ``gindex``, ``offsets``, ``element`` int64 and ``earlier`` uint32 from the
-    grid layout; ``S`` the prefix weights ``S[k] = sum_{j <= k} h_j^H dh`` (float64, K + 1).
+    ``signed`` int32 (n,); ``gindex``, ``offsets`` (intp) and ``earlier`` (uint32) from the grid layout;
+    ``S`` the prefix weights ``S[k] = sum_{j <= k} h_j^H dh`` (float64, K + 1).
     """
-    codes, per_level, pairs_level = _earlier_codes(signed, gindex, offsets, earlier, padded_size, K)
-    position, start, nb = _entering_layout(signed, codes, per_level, pairs_level, gindex, offsets, element)
+    grid, codes, per_level, pairs_level = _earlier_codes(signed, gindex, offsets, earlier, padded_size, K)
+    position, start, nb = _entering_layout(signed, grid, codes, per_level, pairs_level, gindex, offsets)
     value = _merge(start, nb, per_level, S, E)
     out = np.zeros(signed.size)
     for e in range(signed.size):

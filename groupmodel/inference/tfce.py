@@ -186,7 +186,7 @@ def tfce(
     kernels = compiled_kernels() if grid is not None else None
     if kernels is not None:  # the same union-find, compiled (optional extra "fast"); this module is its reference
         g = grid
-        return kernels.tfce_grid(levels, K, g.gindex, g.offsets, g.earlier, g.element, g.size, S, float(E))
+        return kernels.tfce_grid(levels, K, g.gindex, g.offsets, g.earlier, g.size, S, float(E))
     order = _entering_order(levels, K)
     pairs = _level_pairs(adjacency, order, levels, two_sided)
     forest = _Forest(n, K)

@@ -6,18 +6,24 @@ numba is not installed or ``GROUPMODEL_NO_COMPILED=1``.  The numpy code is the r
 use the same levels, thresholds and prefix weights (computed by the numpy module and passed in) and give
 the same TFCE to rounding (the tests compare them to 1e-9) and the same clusters.
 
-TFCE, in three passes over the elements:
+TFCE, in three steps:
 
 1. in memory (element) order, each active element's *earlier* neighbours are marked: those that entered
    before it (a higher level relative to its sign, or the same level and a smaller index).  Of earlier
    neighbours that are neighbours of each other only the first along the offset path is kept (they are
-   joined already), so an element keeps about one neighbour per touching group.  Reads walk forward
-   through the padded level grid;
-2. a counting sort puts the active elements in entering order (level descending, index ascending);
+   joined already), so an element keeps about one neighbour per touching group.  Runs of voxels along the
+   last axis are done a column at a time, so every read is a contiguous slice of the padded level grid;
+2. again in memory order, a counting sort gives each active element its position in entering order
+   (level descending, index ascending) and its kept neighbours are written, as positions, into entering
+   order, one forward-moving pointer per level;
 3. in entering order each element finds the roots of its kept neighbours, unites them (union by size,
-   path halving) and joins the result.  Roots carry lazy accumulators exactly as in the numpy module:
-   ``acc += size^E (S[last] - S[k])`` when a root's size changes at level k; an element remembers its
-   root's accumulator when it joins (offset) and an absorbed root the absorber's (base).
+   path halving) and joins the result; the union-find state is indexed by position, so an entering
+   element's own reads and writes are sequential.  Roots carry lazy accumulators exactly as in the numpy
+   module: ``acc += size^E (S[last] - S[k])`` when a root's size changes at level k; an element remembers
+   its root's accumulator when it joins (offset) and an absorbed root the absorber's (base).
+
+Cluster labelling is the same union-find at one threshold, in memory order over the earlier half of the
+neighbourhood.
 
 Compilation is cached on disk (``cache=True``: numba's ``__pycache__`` beside this file, or its user-wide
 cache directory, or ``NUMBA_CACHE_DIR``), so worker processes load the machine code instead of compiling.

@@ -19,8 +19,9 @@ What it does (all data invented and seeded):
      for comparison;
    * the engine (``run_permutations``) for max-statistic voxel FWE with J permutations (default
      5,000): wall time per permutation and its ratio to the floor (goal <= 1.5);
-   * TFCE: CPU time per map of the two-sided TFCE of null maps (one process), and the engine with
-     TFCE for a smaller number of permutations with worker processes, scaled to 5,000 (said so).
+   * TFCE: CPU time per map of the two-sided TFCE of null maps (one process; the compiled kernels when
+     numba is installed, else numpy; ``tfce_speed.py`` compares the two), and the engine with TFCE for
+     a smaller number of permutations with worker processes, scaled to 5,000 (said so).
 
 Nothing is asserted; the figures are printed, with the load average (other processes on the
 machine slow everything down).  ``--quick`` runs a small version in well under a minute.
@@ -45,6 +46,7 @@ import numpy as np
 from scipy import ndimage
 
 from groupmodel.inference.driver import run_permutations
+from groupmodel.inference.fastpath import compiled_kernels
 from groupmodel.inference.freedman_lane import plan_contrast, residualise, stack_rows
 from groupmodel.inference.graph import grid_adjacency
 from groupmodel.inference.kernel import tile_width
@@ -202,7 +204,8 @@ def main() -> None:
         tfce(m * 3.0, adj, dh * 3.0, two_sided=True)
         cpu.append(time.process_time() - t0)
     per_map = float(np.median(cpu))
-    print(f"TFCE (two-sided, E 0.5, H 2, dh = max/100, 26-connectivity) on {V} voxels: "
+    path = "compiled" if compiled_kernels() is not None else "numpy"
+    print(f"TFCE ({path} path; two-sided, E 0.5, H 2, dh = max/100, 26-connectivity) on {V} voxels: "
           f"{1e3 * per_map:.0f} ms CPU per map (median of {n_maps}, one process); "
           f"x 5000 = {5000 * per_map / 60:.1f} CPU-minutes")
     # Fixed cost (worker start-up, observed map): a run with one batch of 2 rearrangements.

@@ -17,7 +17,8 @@ from scipy import sparse
 from scipy.sparse import csgraph
 
 from ..errors import InputError
-from .tfce import Adjacency
+from .fastpath import compiled_kernels
+from .graph import Adjacency
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -111,8 +112,14 @@ def _supra(x: np.ndarray, threshold: float, two_sided: bool) -> np.ndarray:
 def _component_labels(sign: np.ndarray, adjacency: Adjacency) -> tuple[np.ndarray, np.ndarray, int]:
     """Connected components of the nonzero elements, joining only neighbours of equal sign.
 
-    Returns the active element indices, their component labels (0..C-1) and C.
+    Returns the active element indices, their component labels (0..C-1) and C.  On 3-D grids the compiled
+    union-find runs when available (:mod:`groupmodel.inference.fastpath`); it numbers components by their
+    first element, which :func:`label_clusters` and :func:`max_cluster_size` do not depend on.
     """
+    grid = adjacency._cache.get("grid")
+    kernels = compiled_kernels() if grid is not None else None
+    if kernels is not None:
+        return kernels.grid_components(sign, grid.gindex, grid.offsets, grid.element, grid.size)
     active = np.flatnonzero(sign)
     if active.size == 0:
         return active, np.zeros(0, np.int64), 0

@@ -9,6 +9,7 @@ attaches a :class:`_GridLayout` that finds neighbours by index arithmetic on a p
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -19,22 +20,43 @@ from ..errors import InputError
 __all__ = ["Adjacency", "grid_adjacency", "mesh_adjacency"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Adjacency:
     """Undirected neighbourhood graph over ``n`` in-mask elements (voxels or vertices).
+
+    Built as ``Adjacency(n, u, v)`` from an edge list (see :meth:`from_edges`), or by :func:`grid_adjacency`,
+    which stores the grid layout only and lists the edges when first asked for (TFCE and clusters on grids
+    find neighbours by index arithmetic and never need the list).
 
     Attributes
     ----------
     n : int
         Number of elements; element ``i`` is the i-th in-mask voxel (C order) or vertex.
     u, v : ndarray of int32, shape (n_edges,)
-        Each undirected edge once, with ``u < v``.
+        Each undirected edge once, with ``u < v``, sorted by ``u`` then ``v``.
     """
 
     n: int
-    u: np.ndarray
-    v: np.ndarray
+    _u: np.ndarray | None = field(default=None, repr=False)
+    _v: np.ndarray | None = field(default=None, repr=False)
     _cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def u(self) -> np.ndarray:
+        """First endpoint of each edge."""
+        return self._edges()[0]
+
+    @property
+    def v(self) -> np.ndarray:
+        """Second endpoint of each edge."""
+        return self._edges()[1]
+
+    def _edges(self) -> tuple[np.ndarray, np.ndarray]:
+        if self._u is not None and self._v is not None:
+            return self._u, self._v
+        if "edges" not in self._cache:
+            self._cache["edges"] = self._cache["grid"].edges(self.n)
+        return self._cache["edges"]
 
     @classmethod
     def from_edges(cls, n: int, u: np.ndarray, v: np.ndarray) -> Adjacency:
@@ -188,25 +210,8 @@ def grid_adjacency(mask: np.ndarray, connectivity: int = 26) -> Adjacency:
             f"a 3-D mask was expected; got {mask.ndim} dimensions (in grid_adjacency); "
             "pass the brain mask as an (I, J, K) boolean array"
         )
-    n = int(mask.sum())
-    index = np.full(mask.shape, -1, dtype=np.int32)
-    index[mask] = np.arange(n, dtype=np.int32)
-    us, vs = [], []
-    shape = mask.shape
-    for d in _grid_offsets(connectivity):
-        # Pair each voxel with its neighbour at offset d via two shifted views of the index image.
-        # d is lexicographically positive, so the neighbour comes later in C order (u < v) and
-        # every pair appears once: no de-duplication needed.
-        src = tuple(slice(max(0, -o), s - max(0, o)) for o, s in zip(d, shape, strict=True))
-        dst = tuple(slice(max(0, o), s - max(0, -o)) for o, s in zip(d, shape, strict=True))
-        a, b = index[src].ravel(), index[dst].ravel()
-        both = (a >= 0) & (b >= 0)
-        us.append(a[both])
-        vs.append(b[both])
-    u = np.concatenate(us) if us else np.zeros(0, np.int32)
-    v = np.concatenate(vs) if vs else np.zeros(0, np.int32)
-    order = np.lexsort((v, u))
-    adjacency = Adjacency(n, u[order], v[order])
+    _grid_offsets(connectivity)  # checks the connectivity
+    adjacency = Adjacency(int(mask.sum()))
     adjacency._cache["grid"] = _GridLayout.build(mask, connectivity)
     return adjacency
 
@@ -242,22 +247,39 @@ class _GridLayout:
         n = int(mask.sum())
         padded = np.zeros(tuple(s + 2 for s in mask.shape), dtype=bool)
         padded[1:-1, 1:-1, 1:-1] = mask
-        strides = np.array([padded.shape[1] * padded.shape[2], padded.shape[2], 1], dtype=np.intp)
-        path = _offset_path(connectivity)
+        strides = (padded.shape[1] * padded.shape[2], padded.shape[2], 1)
+        path, earlier = _neighbourhood(connectivity)
         element = np.full(padded.size, n, dtype=np.intp)
         gindex = np.flatnonzero(padded).astype(np.intp)
         element[gindex] = np.arange(n)
         offsets = np.array([int(np.dot(d, strides)) for d in path], dtype=np.intp)
-        earlier = np.zeros(len(path), dtype=np.uint32)
-        for c in range(len(path)):
-            for c0 in range(c):
-                if _offsets_adjacent(path[c0], path[c], connectivity):
-                    earlier[c] |= np.uint32(1 << c0)
-        return cls(int(padded.size), gindex, offsets, earlier, element)
+        return cls(int(padded.size), gindex, offsets, earlier.copy(), element)
+
+    def edges(self, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Each edge once as (u, v) with u < v, sorted by u then v (int32): the neighbours through the
+        positive offsets, taken in increasing offset order."""
+        positive = np.sort(self.offsets[self.offsets > 0])
+        nb = self.element[self.gindex[:, None] + positive[None, :]]
+        inside = nb < n
+        u = np.repeat(np.arange(n, dtype=np.int32), inside.sum(axis=1))
+        return u, nb[inside].astype(np.int32)
 
     def neighbours(self, elements: np.ndarray) -> np.ndarray:
         """Element indices of the neighbours (n outside the mask), shape (len(elements), D)."""
         return self.element[self.gindex[elements][:, None] + self.offsets[None, :]]
+
+
+@functools.cache
+def _neighbourhood(connectivity: int) -> tuple[list[tuple[int, int, int]], np.ndarray]:
+    """The offset path of a connectivity and, per offset, the bits of the earlier offsets adjacent to it."""
+    path = _offset_path(connectivity)
+    earlier = np.zeros(len(path), dtype=np.uint32)
+    for c in range(len(path)):
+        for c0 in range(c):
+            if _offsets_adjacent(path[c0], path[c], connectivity):
+                earlier[c] |= np.uint32(1 << c0)
+    earlier.flags.writeable = False
+    return path, earlier
 
 
 def _offsets_adjacent(a: tuple[int, ...], b: tuple[int, ...], connectivity: int) -> bool:

@@ -42,6 +42,10 @@ One pass over the elements sorted by level (highest first) with union-find:
   its offset, plus, along the chain of absorptions, each absorber's final accumulator minus the
   base recorded when it absorbed.
 
+On 3-D grids the same union-find runs compiled when numba is installed (the optional extra ``fast``,
+:mod:`groupmodel.inference.compiled`; ``GROUPMODEL_NO_COMPILED=1`` turns it off): same levels, thresholds
+and weights, same results to rounding.  This module is its reference and the fallback.
+
 Connectivity is a sparse adjacency over the in-mask elements (:class:`Adjacency`, in
 :mod:`groupmodel.inference.graph`), which serves 3-D grids (:func:`grid_adjacency`, 6/18/26 neighbours)
 and triangle meshes (:func:`mesh_adjacency`).
@@ -55,6 +59,7 @@ from typing import Literal
 import numpy as np
 
 from ..errors import InputError
+from .fastpath import compiled_kernels
 from .graph import Adjacency
 from .tfce_pairs import grid_pairs, table_pairs
 
@@ -196,9 +201,14 @@ def tfce(
     K = int(np.abs(levels).max()) if n else 0
     if K == 0:
         return out
+    S = _prefix_weights(K, dh, H, rule)
+    grid = adjacency._cache.get("grid")
+    kernels = compiled_kernels() if grid is not None else None
+    if kernels is not None:  # the same union-find, compiled (optional extra "fast"); this module is its reference
+        g = grid
+        return kernels.tfce_grid(levels, K, g.gindex, g.offsets, g.earlier, g.size, S, float(E))
     order = _entering_order(levels, K)
     pairs = _level_pairs(adjacency, order, levels, two_sided)
-    S = _prefix_weights(K, dh, H, rule)
     forest = _Forest(n, K)
     for k in range(K, 0, -1):
         if order.row_hi[k] == order.row_lo[k]:

@@ -66,7 +66,7 @@ def _plateau():
     return grid_adjacency(mask)
 
 
-def test_plateau_riemann_sums_and_limit():
+def test_plateau_riemann_sums_and_limit(tfce_path):
     adj = _plateau()
     x = np.full(8, 3.0)
     limit = 8**0.5 * 3**3 / 3  # Smith and Nichols (2009): e^E s^(H+1)/(H+1), e=8, s=3
@@ -89,7 +89,7 @@ def test_plateau_riemann_sums_and_limit():
 
 @pytest.mark.parametrize("conn", [6, 18, 26])
 @pytest.mark.parametrize("rule", ["right", "midpoint"])
-def test_tfce_equals_per_threshold_labelling(conn, rule):
+def test_tfce_equals_per_threshold_labelling(conn, rule, tfce_path):
     rng = np.random.default_rng(conn + (rule == "midpoint"))
     for trial in range(8):
         shape = (7, 6, 5)
@@ -139,7 +139,25 @@ def test_grid_adjacency_degrees():
         assert np.all(adj.u < adj.v)
 
 
-def test_clusters_equal_ndimage_label():
+@pytest.mark.parametrize("conn", [6, 18, 26])
+def test_grid_edges_equal_brute_force(conn):
+    # Common practice: voxels are neighbours when they differ by at most 1 in each index and share a
+    # face (6), a face or an edge (18), or a face, edge or corner (26).
+    rng = np.random.default_rng(conn)
+    mask = rng.uniform(size=(5, 6, 4)) > 0.3
+    mask[0, 0, 0] = mask[-1, -1, -1] = True  # touching the grid's corners
+    ijk = np.argwhere(mask)
+    d = np.abs(ijk[:, None, :] - ijk[None, :, :])
+    near = (d.max(axis=2) == 1) & (d.sum(axis=2) <= {6: 1, 18: 2, 26: 3}[conn])
+    u, v = np.nonzero(np.triu(near))
+    adj = grid_adjacency(mask, conn)
+    assert "edges" not in adj._cache  # listed only when asked for
+    np.testing.assert_array_equal(adj.u, u)
+    np.testing.assert_array_equal(adj.v, v)
+    assert adj.u.dtype == adj.v.dtype == np.int32 and adj.n_edges == u.size
+
+
+def test_clusters_equal_ndimage_label(tfce_path):
     rng = np.random.default_rng(2)
     shape = (9, 8, 7)
     mask = rng.uniform(size=shape) > 0.1
@@ -195,7 +213,7 @@ def test_stat_threshold_has_equal_p():
         assert stats.f.sf(stat_threshold(z, "F", 30, 3), 3, 30) == pytest.approx(stats.norm.sf(z), rel=1e-9)
 
 
-def test_engine_tfce_and_cluster_p_against_brute_force():
+def test_engine_tfce_and_cluster_p_against_brute_force(tfce_path):
     rng = np.random.default_rng(8)
     shape = (6, 5, 4)
     mask = np.ones(shape, bool)

@@ -5,6 +5,9 @@ The array is then made by nibabel from the decompressed bytes (``Nifti1Image.fro
 dtype and scaling are exactly those of ``np.asanyarray(nib.load(path).dataobj)``.  Only single 3-D volumes
 in ``.nii.gz`` files take this road; ``.nii`` files (memory-mapped by nibabel), 4-D files and GIFTI do not.
 
+Maps are written the same way round: nibabel makes the file's bytes (``to_bytes``), compressed in one call
+(:func:`gzip_bytes`, level 1).
+
 Set ``GROUPMODEL_NO_ISAL=1`` in the environment to decompress with zlib even when isal is installed.
 """
 
@@ -30,6 +33,11 @@ except ImportError:  # pragma: no cover - depends on the installation
 
 #: Environment variable that turns isal off (zlib is used instead).
 NO_ISAL_ENV = "GROUPMODEL_NO_ISAL"
+
+#: Compression level of written .nii.gz files: isal's level 1 (its fastest that still matches zlib's sizes), and
+#: zlib's level 1 (nibabel's default) when isal is absent.
+WRITE_LEVEL_ISAL = 1
+WRITE_LEVEL_ZLIB = 1
 
 #: Threads that decompress images at most (each holds one image in flight).
 MAX_READ_THREADS = 4
@@ -62,6 +70,15 @@ def gunzip(data: bytes, use_isal: bool | None = None) -> bytes:
         if not rest.lstrip(b"\0"):  # trailing zero padding is allowed in gzip files
             break
     return parts[0] if len(parts) == 1 else b"".join(parts)
+
+
+def gzip_bytes(raw: bytes, use_isal: bool | None = None) -> bytes:
+    """One gzip member of ``raw`` (mtime 0), compressed in one call at the fast write level."""
+    if use_isal is None:
+        use_isal = isal_available()
+    if use_isal and _isal_zlib is not None:
+        return bytes(_isal_zlib.compress(raw, WRITE_LEVEL_ISAL, wbits=31))
+    return zlib.compress(raw, WRITE_LEVEL_ZLIB, wbits=31)
 
 
 def is_fast_path(path: Path) -> bool:

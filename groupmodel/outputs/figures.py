@@ -3,6 +3,9 @@
 Style: a purple-orange diverging palette centred on zero, each design column
 scaled to its own largest absolute value (stated on the picture), participant
 ids down the side and column names along the top.
+
+Figures are made without pyplot (no global state, no screen), so they may be drawn in a thread while maps
+are written; matplotlib is imported only by this module, which is imported only when a picture is drawn.
 """
 
 from __future__ import annotations
@@ -10,14 +13,18 @@ from __future__ import annotations
 from collections.abc import Sequence
 from pathlib import Path
 
-import matplotlib
-
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
 PALETTE = "PuOr_r"
 FOOTER = "groupmodel output for research use; not a clinical or diagnostic tool"
+
+
+def _figure(figsize: tuple[float, float]) -> Figure:
+    fig = Figure(figsize=figsize, dpi=110)
+    FigureCanvasAgg(fig)
+    return fig
 
 
 def _scaled(matrix: np.ndarray) -> np.ndarray:
@@ -31,7 +38,8 @@ def plot_design(path: Path, matrix: np.ndarray, column_names: Sequence[str], row
     n, p = matrix.shape
     height = min(max(4.0, 0.14 * n + 2.5), 30.0)
     width = min(max(4.0, 0.55 * p + 2.5), 30.0)
-    fig, ax = plt.subplots(figsize=(width, height), dpi=110)
+    fig = _figure((width, height))
+    ax = fig.subplots()
     im = ax.imshow(_scaled(matrix), aspect="auto", cmap=PALETTE, vmin=-1, vmax=1, interpolation="nearest")
     ax.set_xticks(range(p))
     ax.set_xticklabels(column_names, rotation=60, ha="left", fontsize=7)
@@ -49,14 +57,14 @@ def plot_design(path: Path, matrix: np.ndarray, column_names: Sequence[str], row
     fig.text(0.01, 0.005, FOOTER, fontsize=6, color="0.4")
     fig.tight_layout(rect=(0, 0.02, 1, 1))
     fig.savefig(path)
-    plt.close(fig)
 
 
 def plot_contrasts(path: Path, rows: np.ndarray, row_labels: Sequence[str], column_names: Sequence[str],
                    tests: Sequence[str]) -> None:
     """Write a PNG of all contrast rows over the design columns, with their weights written in."""
     q, p = rows.shape if rows.size else (0, len(column_names))
-    fig, ax = plt.subplots(figsize=(min(max(5.0, 0.6 * p + 4), 30), min(max(2.5, 0.32 * q + 2), 30)), dpi=110)
+    fig = _figure((min(max(5.0, 0.6 * p + 4), 30), min(max(2.5, 0.32 * q + 2), 30)))
+    ax = fig.subplots()
     if q:
         peak = np.abs(rows).max(axis=1, keepdims=True)
         ax.imshow(rows / np.where(peak > 0, peak, 1), aspect="auto", cmap=PALETTE, vmin=-1, vmax=1,
@@ -75,4 +83,3 @@ def plot_contrasts(path: Path, rows: np.ndarray, row_labels: Sequence[str], colu
     fig.text(0.01, 0.005, FOOTER, fontsize=6, color="0.4")
     fig.tight_layout(rect=(0, 0.03, 1, 1))
     fig.savefig(path)
-    plt.close(fig)

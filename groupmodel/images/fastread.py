@@ -39,8 +39,9 @@ NO_ISAL_ENV = "GROUPMODEL_NO_ISAL"
 WRITE_LEVEL_ISAL = 1
 WRITE_LEVEL_ZLIB = 1
 
-#: Threads that decompress images at most (each holds one image in flight).
-MAX_READ_THREADS = 4
+#: Threads that decompress images at most (each holds one image in flight; two already keep a 2-core machine
+#: busy, and the working memory of :func:`..loading.load_masked` counts two images in flight).
+MAX_READ_THREADS = 2
 
 T = TypeVar("T")
 

@@ -1,8 +1,8 @@
 """Reading every image once into the ``(n_obs, n_in_mask)`` data matrix, within a memory budget.
 
-:func:`load_masked` reads each image's candidate voxels (the user mask, or the whole grid) into one flat
-buffer -- in RAM, or in a spill file (:mod:`.spill`) when the budget is short -- while running finite and
-nonzero masks are kept; the buffer is then compacted in place to the analysis mask.
+:func:`load_masked` reads each image's candidate voxels (the user mask, or the whole grid) still in play into
+one flat buffer -- in RAM, or in a spill file (:mod:`.spill`) when the budget is short -- while running finite
+and nonzero masks are kept; the packed rows are then compacted in place to the analysis mask (:mod:`.packed`).
 """
 
 from __future__ import annotations
@@ -34,8 +34,9 @@ LOAD_OVERHEAD_IMAGES = 6
 def load_overhead_bytes(grid: Grid) -> int:
     """Working memory :func:`load_masked` may use beyond ``memory_bytes``.
 
-    ``LOAD_OVERHEAD_IMAGES`` float64 single images (the image being read, nibabel's raw and scaled copies,
-    the running finite/nonzero masks and index arrays) plus ``LOAD_OVERHEAD_FIXED``.
+    ``LOAD_OVERHEAD_IMAGES`` float64 single images (the image in use and the two being read in threads, each
+    with nibabel's raw and scaled copies, the running finite/nonzero masks, the first-nonzero/first-NaN
+    records of :mod:`.packed` and the index arrays of the compaction) plus ``LOAD_OVERHEAD_FIXED``.
     """
     return LOAD_OVERHEAD_IMAGES * 8 * grid.n_voxels + LOAD_OVERHEAD_FIXED
 
@@ -89,10 +90,12 @@ def load_masked(
     voxels that are NaN/inf in any image (counted, never filled with 0) and those that are zero in every
     image.  Without a user mask that is the usual default: finite in every image and not zero in all.
 
-    Memory.  Every image's candidate voxels (the whole grid without a user mask) go in one pass into a
-    buffer -- in RAM when ``n_obs * n_candidates * 4 <= memory_bytes``, else a memmap in a temporary folder
-    under ``workdir`` -- while the finite/nonzero masks accumulate; the buffer is then compacted to the mask
-    in place, row by row.  A spilled buffer whose compacted matrix fits in ``memory_bytes`` is copied back
+    Memory.  Every image's candidate voxels (the whole grid without a user mask) still in play -- finite in
+    every image so far and nonzero in one (:mod:`.packed`) -- go in one pass into a buffer reserved for all
+    candidates -- in RAM when ``n_obs * n_candidates * 4 <= memory_bytes``, else a memmap in a temporary
+    folder under ``workdir`` -- while the finite/nonzero masks accumulate; only the part holding values is
+    touched (a zero background never is).  The packed rows are then compacted to the mask in place.  A
+    spilled buffer whose compacted matrix fits in ``memory_bytes`` is copied back
     into RAM and the spill removed.  Beyond ``memory_bytes`` the work needs at most
     :func:`load_overhead_bytes` (six float64 single images plus 16 MiB), for any ``n_obs``.
 
@@ -229,7 +232,8 @@ class _Tally:
         self.nonfinite_per_image[rows] = self.n_cand - n_finite
         # scratch use of in_play: the candidates that turn NaN/inf here for the first time
         np.greater(self.finite_all, finite, out=self.in_play)
-        self.first_nonfinite[self.in_play] = seq
+        if self.in_play.any():
+            self.first_nonfinite[self.in_play] = seq
         self.finite_all &= finite
         self.finite_any |= finite
         np.not_equal(row, 0, out=nonzero)
@@ -238,7 +242,8 @@ class _Tally:
             inside = " inside the mask" if in_mask else ""
             self.warnings.append(f"{_who(ref)} is zero everywhere{inside}: {ref.path}")
         np.greater(nonzero, self.nonzero_any, out=self.in_play)  # nonzero here for the first time
-        self.first_nonzero[self.in_play] = seq
+        if self.in_play.any():
+            self.first_nonzero[self.in_play] = seq
         self.nonzero_any |= nonzero
         np.logical_and(self.finite_all, self.nonzero_any, out=self.in_play)
 
@@ -286,14 +291,16 @@ def _read_all(
         row = _candidate_values(arr, cand, buf.dtype)
         del arr
         tally.add(row, len(record.offsets), rows, source.refs[first], source.origin, cand.user_mask is not None)
-        length = int(np.count_nonzero(tally.in_play))
+        packed = row[tally.in_play]
+        del row
+        length = int(packed.size)
         for r in rows:  # a 4-D volume used by several rows is stored once per row
-            np.compress(tally.in_play, row, out=buf[offset : offset + length])
+            buf[offset : offset + length] = packed
             record.offsets.append(offset)
             record.lengths.append(length)
             record.row_of.append(r)
             offset += length
-        del row
+        del packed
         if spilled:
             release_pages(buf)
         done += len(rows)

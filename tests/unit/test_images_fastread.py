@@ -157,3 +157,25 @@ def test_fit_without_pictures_never_imports_matplotlib(tmp_path):
     assert out.stdout.strip().splitlines()[-1] == "False"
     assert not list((tmp_path / "out").glob("*.png"))
     assert (tmp_path / "out" / "design.tsv").exists()
+
+
+def test_without_isal_installed_the_zlib_path_gives_the_same_matrix(tmp_path):
+    # isal made unimportable in a fresh interpreter: the fallback must load, and load the same values
+    _study(tmp_path, nib.Nifti1Image, ".nii.gz", True)
+    probe = (
+        "import sys\n"
+        "sys.modules['isal'] = None\n"
+        "import numpy as np, pandas as pd\n"
+        "from groupmodel.images import check_images, load_masked, resolve_images\n"
+        "from groupmodel.images import fastread\n"
+        "assert fastread._isal_zlib is None and not fastread.isal_available()\n"
+        f"d = {str(tmp_path)!r}\n"
+        f"ids = {_ids(5)!r}\n"
+        "table = pd.DataFrame({'participant_id': ids})\n"
+        "src, _ = check_images(resolve_images('{participant_id}.nii.gz', ids, table, d))\n"
+        "with load_masked(src, None, 2**30) as m:\n"
+        "    np.save(d + '/no_isal.npy', m.data)\n"
+    )
+    subprocess.run([sys.executable, "-c", probe], check=True, capture_output=True, text=True)
+    with load_masked(_source(tmp_path, ".nii.gz"), None, 2**30) as m:
+        np.testing.assert_array_equal(np.load(tmp_path / "no_isal.npy"), m.data)

@@ -142,23 +142,6 @@ def test_written_map_holds_the_bytes_nibabel_writes(tmp_path, monkeypatch, klass
     np.testing.assert_array_equal(back.get_fdata()[mask], values.astype(np.float32))
 
 
-def test_fit_without_pictures_never_imports_matplotlib(tmp_path):
-    # the pictures are the only users of matplotlib: a fit with --no-pictures must not pay for its import
-    example = Path(__file__).resolve().parents[2] / "example_study" / "model.json"
-    code = (
-        "import sys\n"
-        "from groupmodel.cli import main\n"
-        f"rc = main([{str(example)!r}, '--out', {str(tmp_path / 'out')!r}, '--no-pictures'])\n"
-        "assert rc == 0, rc\n"
-        "print('matplotlib' in sys.modules)\n"
-    )
-    code = code.replace("main([", "main(['fit', ")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip().splitlines()[-1] == "False"
-    assert not list((tmp_path / "out").glob("*.png"))
-    assert (tmp_path / "out" / "design.tsv").exists()
-
-
 def test_without_isal_installed_the_zlib_path_gives_the_same_matrix(tmp_path):
     # isal made unimportable in a fresh interpreter: the fallback must load, and load the same values
     _study(tmp_path, nib.Nifti1Image, ".nii.gz", True)

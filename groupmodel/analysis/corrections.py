@@ -8,7 +8,8 @@ maps come out, what their sidecars record, and the cluster tables.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -23,6 +24,32 @@ METHODS = {"auto": "auto", "permutation": "permute", "sign_flip": "flip", "both"
 _METHOD_NAMES = {"permute": "permutation", "flip": "sign_flip", "both": "both"}
 #: Level at which corrected maps are summarised in cluster tables.
 TABLE_ALPHA = 0.05
+#: Relative size (of the largest weight) under which a row of cell weights counts as summing to zero.
+WEIGHT_SUM_TOL = 1e-8
+#: The rule of ``method: auto``, as recorded in summary.json.
+AUTO_RULE = ("auto: sign_flip for a hypothesis whose weights over cell means do not sum to zero (a mean or a "
+             "combination of means), permutation when they sum to zero (differences, interactions, slopes)")
+
+
+def hypothesis_method(h: Any, method: str) -> str:
+    """The inference engine's method for one hypothesis under the user's ``method`` setting.
+
+    ``auto``: sign flips (``flip``) when some row of the hypothesis's weights over cell means does not sum
+    to zero, since row permutation leaves the mean of the data, and so a mean or a combination of means,
+    unchanged; permutation (``permute``) when every row sums to zero (differences, interactions, trends)
+    and for slopes (weights over cell slopes).  Raw weights that no combination of cell means reproduces
+    are left to the engine's rule (``auto``: the same question asked of the design, whether the contrast
+    moves when a constant is added to every observation).  Any other setting is used as given.
+    """
+    if method != "auto":
+        return METHODS[method]
+    if h.on_slopes:
+        return "permute"
+    if h.cell_weights is None:
+        return "auto"
+    w = np.asarray(h.cell_weights, dtype=float)
+    sums = np.abs(w.sum(axis=1))
+    return "flip" if bool(np.any(sums > WEIGHT_SUM_TOL * np.abs(w).max(axis=1))) else "permute"
 
 
 def parametric_corrections(p_maps: dict[str, np.ndarray]) -> dict[str, dict[str, np.ndarray]]:
@@ -70,14 +97,57 @@ def adjacency_for(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any
                 "TFCE and clusters on surface data need the mesh; found no inference.mesh in the spec; "
                 'add "inference": {"mesh": "path/to/surface.gii"} with the triangles of the surface'
             )
-        import nibabel as nib
-
-        img = nib.load(str(options.mesh))
-        faces = [d.data for d in img.darrays if d.intent == nib.nifti1.intent_codes["NIFTI_INTENT_TRIANGLE"]]
-        if not faces:
-            raise InputError(f"mesh {options.mesh}: expected a GIFTI triangle array; found none; give a surface file")
-        return mesh_adjacency(np.asarray(faces[0]), n_vertices=grid.shape[0], mask=mask)
+        return mesh_adjacency(read_mesh_faces(options.mesh, grid.shape[0]), n_vertices=grid.shape[0], mask=mask)
     return grid_adjacency(mask, connectivity=options.connectivity)
+
+
+def read_mesh_faces(path: Path, n_vertices: int) -> np.ndarray:
+    """The triangles of a GIFTI surface, checked against the number of vertices of the data.
+
+    Raises
+    ------
+    InputError
+        The file is missing or not a GIFTI surface, has no triangle array, or its triangles (or its
+        vertex coordinates) do not match the vertices of the data.
+    """
+    import nibabel as nib
+
+    path = Path(path)
+    where = f"inference.mesh {path}"
+    if not path.is_file():
+        raise InputError(f"{where}: expected a GIFTI surface file; found no file there; fix the path "
+                         "(relative to the spec)")
+    try:
+        img = nib.load(str(path))
+    except Exception as exc:  # nibabel raises many kinds for a file it cannot read
+        raise InputError(f"{where}: expected a GIFTI surface; could not read it ({type(exc).__name__}); "
+                         "give a .surf.gii file with a triangle array") from exc
+    darrays = getattr(img, "darrays", None)
+    if darrays is None:
+        raise InputError(f"{where}: expected a GIFTI surface; found a {type(img).__name__}; "
+                         "give a .surf.gii file with a triangle array")
+    codes = nib.nifti1.intent_codes
+    faces = [np.asarray(d.data) for d in darrays if d.intent == codes["NIFTI_INTENT_TRIANGLE"]]
+    points = [np.asarray(d.data) for d in darrays if d.intent == codes["NIFTI_INTENT_POINTSET"]]
+    if not faces or faces[0].ndim != 2 or faces[0].shape[1] != 3 or faces[0].size == 0:
+        raise InputError(f"{where}: expected a GIFTI triangle array (n x 3 vertex indices); found none; "
+                         "give a surface file")
+    tri = faces[0].astype(np.int64)
+    n_mesh = points[0].shape[0] if points else int(tri.max()) + 1
+    if n_mesh != n_vertices or tri.min() < 0 or tri.max() >= n_vertices:
+        raise InputError(f"{where}: expected a surface of the {n_vertices} vertices of the data; found one of "
+                         f"{n_mesh} vertices (triangle indices {int(tri.min())} to {int(tri.max())}); "
+                         "give the surface the data were sampled on")
+    return tri
+
+
+def inference_notes(grid: Any, options: InferenceOptions) -> list[str]:
+    """What the corrected inference leaves out, and why (one sentence each): cluster tables of surface data
+    without a mesh, whose vertices have no known neighbours."""
+    if options.active and grid.kind == "gifti" and options.mesh is None:
+        return ["no cluster tables: the vertices of surface data have no known neighbours without inference.mesh; "
+                'the p_fwe maps hold the results; add "inference": {"mesh": "surface.surf.gii"} for cluster tables']
+    return []
 
 
 @dataclass
@@ -122,6 +192,7 @@ def permutation_inference(
     from ..runtime.cores import available_cores
 
     adjacency = adjacency_for(data.grid, data.mask, options)
+    tables_adjacency = adjacency if adjacency is not None else _surface_tables_adjacency(data.grid, data.mask, options)
     blocks = block_labels(model, options.blocks) if options.blocks else None
     ijk = data.voxel_coords() if data.grid.kind == "nifti" else None
     out: dict[str, HypothesisInference] = {}
@@ -131,7 +202,7 @@ def permutation_inference(
     n_elements = int(data.data.shape[1])
     batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
     rearrangements = Rearrangements(
-        n_perm=options.permutations, method=METHODS[options.method], blocks=blocks,
+        n_perm=options.permutations, method="auto", blocks=blocks,
         whole_blocks=options.whole_blocks, seed=options.seed,
     )
     map_settings = MapSettings(
@@ -147,16 +218,27 @@ def permutation_inference(
                 if progress is not None:
                     progress(_name, done, total)
 
-            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.tail, name=h.name)
-            res = run_permutations(test, data.columns(), rearrangements, map_settings, execution, progress=report)
-            out[h.name] = _hypothesis_inference(res, h, options, adjacency, ijk, data.grid)
+            test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
+            chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
+            res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
+            out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)
     return out
+
+
+def _surface_tables_adjacency(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:
+    """The mesh's neighbours for the cluster tables of surface data when no whole-map inference needs them."""
+    from ..inference.graph import mesh_adjacency
+
+    if grid.kind != "gifti" or options.mesh is None:
+        return None
+    return mesh_adjacency(read_mesh_faces(options.mesh, grid.shape[0]), n_vertices=grid.shape[0], mask=mask)
 
 
 def _hypothesis_inference(res: Any, h: Any, options: InferenceOptions, adjacency: Any, ijk: np.ndarray | None,
                           grid: Any) -> HypothesisInference:
     """The maps, record and tables of one hypothesis's permutation result (TFCE, then clusters)."""
     from ..inference.results import TfceResult
+    from ..inference.tfce import DH_RULE
 
     record = {
         "method": _METHOD_NAMES.get(res.method, res.method),
@@ -168,19 +250,24 @@ def _hypothesis_inference(res: Any, h: Any, options: InferenceOptions, adjacency
         "whole_blocks": options.whole_blocks,
         "nuisance_method": "Freedman-Lane",
     }
+    # vertices of a surface are neighbours along the edges of the mesh's triangles
+    neighbours = options.connectivity if grid.kind == "nifti" else "mesh edges"
     maps = {"p_perm": res.p_perm, "p_fwe": res.p_fwe}
-    tables = {"voxel_fwe": _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, grid)}
+    tables = {}
+    if adjacency is not None or grid.kind == "nifti":  # surface data without a mesh: no tables (inference_notes)
+        tables["voxel_fwe"] = _significant_table(res.stat, res.p_fwe, h, adjacency, ijk, grid)
     for part in res.whole_maps:
         if isinstance(part, TfceResult):
             maps["tfce"] = part.map
             maps["p_tfce_fwe"] = part.p_fwe
             record["tfce"] = {"E": part.params.E, "H": part.params.H, "dh": part.params.dh,
-                              "rule": part.params.rule, "connectivity": options.connectivity}
+                              "dh_from": "tfce_step (given)" if options.tfce_step is not None else DH_RULE,
+                              "rule": part.params.rule, "connectivity": neighbours}
             tables["tfce_fwe"] = _significant_table(res.stat, part.p_fwe, h, adjacency, ijk, grid)
         else:
             maps["p_cluster_fwe"] = part.p_fwe
             record["cluster"] = {"z_threshold": part.z, "statistic_threshold": part.threshold,
-                                 "connectivity": options.connectivity}
+                                 "connectivity": neighbours}
             tables["cluster_extent_fwe"] = _table(res.stat, part.clusters, part.cluster_p_fwe, ijk, grid)
     return HypothesisInference(maps, record, tables)
 
@@ -200,8 +287,6 @@ def _significant_table(stat: np.ndarray, p: np.ndarray, h: Any, adjacency: Any, 
     from ..inference.graph import grid_adjacency
 
     if adjacency is None:
-        if grid.kind != "nifti":
-            return pd.DataFrame()
         # Clusters of significant voxels need neighbours even without TFCE or cluster-extent inference.
         mask = np.zeros(grid.shape, dtype=bool)
         mask[tuple(ijk.T)] = True

@@ -19,7 +19,13 @@ from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
-from .corrections import HypothesisInference, InferenceOptions, parametric_corrections, permutation_inference
+from .corrections import (
+    HypothesisInference,
+    InferenceOptions,
+    inference_notes,
+    parametric_corrections,
+    permutation_inference,
+)
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -66,8 +72,14 @@ class VoxelFit:
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
 
+    @property
+    def elements(self) -> str:
+        """What the maps are made of, in words: ``vertices`` for surface data, else ``voxels``."""
+        return elements_of(self.grid)
+
     def summary(self) -> pd.DataFrame:
-        """Per hypothesis: test, df, peak |statistic|, peak z, voxels with p < 0.001 and p < 0.05 (uncorrected)."""
+        """Per hypothesis: test, df, peak |statistic|, peak z, voxels (vertices for surface data) with
+        p < 0.001 and p < 0.05 (uncorrected) and with corrected p < 0.05."""
         rows = []
         for h in self.model.hypotheses.values():
             m = self.maps[h.name]
@@ -82,9 +94,9 @@ class VoxelFit:
                 "df2": self.df_resid,
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
-                "voxels_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
-                "voxels_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
-                **{f"voxels_{k}_lt_0.05": int(np.count_nonzero(m[k] < 0.05))
+                f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
+                f"{self.elements}_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
+                **{f"{self.elements}_{k}_lt_0.05": int(np.count_nonzero(m[k] < 0.05))
                    for k in ("p_fdr", "p_fwe", "p_tfce_fwe", "p_cluster_fwe") if k in m},
             })
         return pd.DataFrame(rows)
@@ -175,10 +187,13 @@ def fit_images(
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
         maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
-        warnings = list(data.warnings) + _flat_warnings(maps, n_vox)
+        # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
+        warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
         permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
+        warnings += inference_notes(data.grid, inference)
         for name, res in permuted.items():
             maps[name].update(res.maps)
         report = {
@@ -237,15 +252,20 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
     return maps, resid_var
 
 
-def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int) -> list[str]:
-    """A warning for voxels with (numerically) zero residual variance: their statistics are NaN."""
+def elements_of(grid: Any) -> str:
+    """``vertices`` for surface data, else ``voxels``."""
+    return "vertices" if grid.kind == "gifti" else "voxels"
+
+
+def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements: str = "voxels") -> list[str]:
+    """A warning for voxels (vertices) with (numerically) zero residual variance: their statistics are NaN."""
     if not maps:
         return []
     first = next(iter(maps.values()))
     n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
     if not n_flat:
         return []
-    return [f"{n_flat} of {n_vox} voxels have (numerically) zero residual variance, e.g. the same "
+    return [f"{n_flat} of {n_vox} {elements} have (numerically) zero residual variance, e.g. the same "
             "value in every image: their t, F, z and p are NaN (not tested)"]
 
 
@@ -270,4 +290,4 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
         bar.close()
 
 
-__all__ = ["DATA_SHARE", "F_MAPS", "T_MAPS", "VoxelFit", "fit_images", "open_images"]
+__all__ = ["DATA_SHARE", "F_MAPS", "T_MAPS", "VoxelFit", "elements_of", "fit_images", "open_images"]

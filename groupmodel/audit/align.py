@@ -223,18 +223,7 @@ def _guess_one(req: Request, files: Files, table: PreparedTable, expected: np.nd
 
 
 def _score(files: Files, table: PreparedTable, align: np.ndarray) -> int:
-    """How many columns a quick identification (factor codings and plain covariates) explains."""
-    from .columns import _covariate_fit, _factor_function
+    """How many columns a quick identification explains (see :func:`groupmodel.audit.columns.columns_explained`)."""
+    from .columns import columns_explained
 
-    view = table.view(align)
-    x = files.x
-    count = 0
-    names = list(view.factors)
-    for j in range(x.n_columns):
-        col, tol = x.values[:, j], x.tolerance(j)
-        if _factor_function(col, tol, view, names) is not None:
-            count += 1
-            continue
-        if any(_covariate_fit(col, tol, view, [], c) is not None for c in view.covariates):
-            count += 1
-    return count
+    return columns_explained(files, table, align)

@@ -30,12 +30,15 @@ from __future__ import annotations
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from itertools import combinations
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ..model.coding import orthogonal_polynomials
-from .table_view import TableView
+from .table_view import PreparedTable, TableView
+
+if TYPE_CHECKING:
+    from .context import Files
 
 #: A covariate counts as centred at its mean when the centre lies within this many SDs of the mean
 #: (hand-typed centres are rounded; a centre from another sample is further off).
@@ -447,3 +450,20 @@ def _centre_within(role: ColumnRole, fit: CovariateFit, view: TableView, ctol: f
     if not ok:
         role.centre_kind = "mixed"
         role.kind = "covariate_mixed"
+
+
+def columns_explained(files: Files, table: PreparedTable, align: np.ndarray) -> int:
+    """How many columns a quick identification (factor codings and plain covariates) explains with the rows
+    read as the table rows ``align``."""
+    view = table.view(align)
+    x = files.x
+    count = 0
+    names = list(view.factors)
+    for j in range(x.n_columns):
+        col, tol = x.values[:, j], x.tolerance(j)
+        if _factor_function(col, tol, view, names) is not None:
+            count += 1
+            continue
+        if any(_covariate_fit(col, tol, view, [], c) is not None for c in view.covariates):
+            count += 1
+    return count

@@ -4,7 +4,8 @@
    spec's sample, the design and contrast files as read (:class:`Files`);
 2. :func:`groupmodel.audit.align.align_rows`: which table row every design row is (:class:`Alignment`);
 3. :func:`groupmodel.audit.identify.identify_columns`: what every column encodes, the rows' order checked on
-   the way, and the design row of every cell (:class:`Identification`);
+   the way (:mod:`groupmodel.audit.reorder`, then :mod:`groupmodel.audit.order`), and the design row of every
+   cell (:class:`Identification`);
 4. :func:`groupmodel.audit.contrasts.assess_contrasts`: every hand contrast, its estimability and statement;
 5. :func:`groupmodel.audit.spec.compare_with_spec`: the comparison with the spec's design and hypotheses.
 

@@ -17,6 +17,7 @@ from .columns import ColumnRole, identify_column
 from .context import Files, Request
 from .order import row_order
 from .read import AuditFinding
+from .reorder import reorder_rows
 from .table_view import PreparedTable, TableView
 from .words import describe_roles, summarise_factors
 
@@ -46,6 +47,8 @@ class Identification:
         The hand matrix over the valid rows, with the cell rows and slopes of the identification.
     cells : tuple of tuple of str
         The cells of ``factors`` (first slowest).
+    follows_images : bool
+        The rows are read in the order of the image list (design and images agree, the table differs).
     """
 
     table: PreparedTable
@@ -61,6 +64,7 @@ class Identification:
     order_findings: tuple[AuditFinding, ...]
     hd: HandDesign
     cells: tuple[tuple[str, ...], ...]
+    follows_images: bool = False
 
 
 def _roles(files: Files, view: TableView) -> list[ColumnRole]:
@@ -75,7 +79,9 @@ def identify_columns(req: Request, files: Files, alignment: Alignment) -> Identi
     view = table.view(align, restrict_levels=True)
     roles = _roles(files, view)
     invalid = np.zeros(files.x.n_rows, dtype=bool)
-    fixed = row_order(req, files, table, align, (view, roles))
+    fixed = reorder_rows(req, files, table, align)
+    if fixed is None:
+        fixed = row_order(req, files, table, align, (view, roles))
     if fixed is not None:
         align, invalid = fixed.align, fixed.invalid
         view = table.view(align, invalid, restrict_levels=True)
@@ -95,7 +101,8 @@ def identify_columns(req: Request, files: Files, alignment: Alignment) -> Identi
     hd, cells = _hand_design(files, table, align, (view, roles), (used_f, used_c, means, sds))
     return Identification(table, align, view, tuple(roles), tuple(used_f), tuple(used_c), means, sds,
                           has_intercept, tuple(summary.values()),
-                          fixed.findings if fixed is not None else (), hd, tuple(cells))
+                          fixed.findings if fixed is not None else (), hd, tuple(cells),
+                          fixed is not None and fixed.follows_images)
 
 
 def _hand_design(files: Files, table: PreparedTable, align: np.ndarray, found: tuple[TableView, list[ColumnRole]],

@@ -26,6 +26,7 @@ class RowOrder:
     align: np.ndarray
     invalid: np.ndarray
     findings: tuple[AuditFinding, ...]
+    follows_images: bool = False
 
 
 @dataclass(frozen=True)

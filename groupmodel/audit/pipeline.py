@@ -10,7 +10,8 @@ finding (severity ``error``, ``warning`` or ``note``):
 3. whether every contrast row is estimable, and F contrasts with dependent rows;
 4. what every column encodes (see :mod:`groupmodel.audit.columns`);
 5. what every contrast tests, over cell means, and the classic mistakes;
-6. rows out of place (against the participants' factor levels) and image lists out of order;
+6. rows out of place (each row's participant found from its coding and covariate values, or from the
+   image list, whatever the order: see :mod:`groupmodel.audit.reorder`) and image lists out of order;
 7. with a spec: same column space or not, and which generated hypothesis each contrast equals;
 8. covariates: uncentred in an interaction, or confounded with a factor.
 

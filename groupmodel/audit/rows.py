@@ -39,7 +39,7 @@ def missing_value_findings(ctx: AuditContext) -> list[AuditFinding]:
     table = ctx.columns.table
     ids = table.ids
     problems = []
-    for i, t in enumerate(ctx.alignment.claimed):
+    for i, t in enumerate(ctx.columns.align):  # the rows' participants, after any reordering found
         if t < 0:
             continue
         cols = [f for f in ctx.columns.factors if table.codes[f][t] < 0] + [
@@ -59,6 +59,9 @@ def _claimed_ids(ctx: AuditContext) -> list[str] | None:
     x = ctx.files.x
     if x.ids is not None:
         return list(x.ids)
+    if ctx.columns is not None and ctx.columns.follows_images:
+        ids = ctx.columns.table.ids
+        return [ids[t] for t in ctx.columns.align]
     if ctx.alignment is not None and ctx.alignment.claimed is not None:
         ids = ctx.alignment.table.ids
         return [ids[t] if t >= 0 else "?" for t in ctx.alignment.claimed]

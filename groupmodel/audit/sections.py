@@ -43,18 +43,21 @@ def rank_findings(ctx: AuditContext) -> list[AuditFinding]:
     rank = matrix_rank(x)
     out = []
     if p > n:
-        out.append(_at("rank", "error", "too_many_columns",
-                       f"the design has {p} columns but only {n} rows; remove columns or add participants"))
+        out.append(_at("rank", "warning", "too_many_columns",
+                       f"the design has {p} columns but only {n} rows: it cannot be full rank"))
     if rank < p:
         deps = dependents_in_words(x, names)
-        out.append(_at("rank", "error", "rank_deficient",
+        out.append(_at("rank", "warning", "rank_deficient",
                        f"the design has rank {rank} with {p} columns: " + "; ".join(deps)
-                       + "; remove a dependent column (or check for a level coded twice or an empty cell)"))
-        return out
+                       + " (an empty cell, a level coded twice, or an indicator of every level beside an intercept); "
+                       "it can be fitted with a generalised "
+                       f"inverse (n - rank = {n - rank} residual degrees of freedom): the contrasts the rows determine "
+                       "are estimable, any other is an error below"))
     if n - rank < 1:
         out.append(_at("rank", "error", "no_error_df",
                        f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank}); "
                        "remove columns or add participants"))
+    if rank < p or n - rank < 1:
         return out
     cond = condition_number(x)
     out.append(_at("rank", "note", "rank",

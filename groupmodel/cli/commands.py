@@ -7,7 +7,7 @@ from typing import Any
 
 from ..errors import OutputError
 from ..outputs.folder import OutputFolder
-from .printing import print_disclaimer, print_model_report, print_voxel_fit
+from .printing import print_disclaimer, print_model_report, print_removed, print_voxel_fit
 
 
 def cmd_build(args: argparse.Namespace) -> int:
@@ -16,6 +16,7 @@ def cmd_build(args: argparse.Namespace) -> int:
     from ..outputs.design_files import write_model
 
     folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
+    print_removed(folder.removed)
     model = build(args.spec)
     print_model_report(model)
     if model.errors:
@@ -30,7 +31,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
-    OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
+    print_removed(OutputFolder(args.out, force=args.force).removed)  # refuse an existing folder before any work
     if args.outcome:
         return _fit_table(args)
     return _fit_images(args)

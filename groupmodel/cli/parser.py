@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import argparse
+import math
 import sys
+from collections.abc import Callable
 from pathlib import Path
 
 from .. import __version__
@@ -21,24 +23,52 @@ groupmodel supports research; it is not a clinical or diagnostic tool.
 
 
 class _Parser(argparse.ArgumentParser):
-    """argparse with exit code 2 and a one-line error, as every other input error."""
+    """argparse with exit code 2 and a one-line error, as every other input error (the usage is in --help)."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        self.print_usage(sys.stderr)
         sys.stderr.write(f"groupmodel: error: {message}; see --help\n")
         raise SystemExit(2)
 
 
 def parse_memory(text: str) -> int:
-    """'2GB', '512MB', '1.5G', '300000000' -> bytes."""
+    """'2GB', '512MB', '1.5G', '300000000' -> bytes (at least 1)."""
     t = text.strip().upper().removesuffix("B")
     mult = {"K": 1024, "M": 1024**2, "G": 1024**3, "T": 1024**4}
+    problem = f"expected a size like 2GB or 512MB, found {text!r}"
     try:
-        if t and t[-1] in mult:
-            return int(float(t[:-1]) * mult[t[-1]])
-        return int(float(t))
+        x = float(t[:-1]) * mult[t[-1]] if t and t[-1] in mult else float(t)
     except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a size like 2GB or 512MB, found {text!r}") from None
+        raise argparse.ArgumentTypeError(problem) from None
+    if not math.isfinite(x) or x < 1:
+        raise argparse.ArgumentTypeError(f"{problem}, which is not a positive size")
+    return int(x)
+
+
+def whole_number(minimum: int) -> Callable[[str], int]:
+    """An argparse type: a whole number >= ``minimum``."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, found {text!r}") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"expected a whole number >= {minimum}, found {value}")
+        return value
+
+    parse.__name__ = f"whole number >= {minimum}"
+    return parse
+
+
+def finite_number(text: str) -> float:
+    """An argparse type: a finite number."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, found {text!r}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, found {text!r}")
+    return value
 
 
 def make_parser() -> argparse.ArgumentParser:
@@ -109,23 +139,24 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
 
 def _add_inference_options(f: argparse.ArgumentParser) -> None:
     """The permutation-inference options of ``fit`` (they override the spec's ``inference`` object)."""
-    f.add_argument("--permutations", type=int, default=0, metavar="J",
+    f.add_argument("--permutations", type=whole_number(0), default=0, metavar="J",
                    help="rearrangements for permutation inference, the identity included (0: parametric "
                    "corrections only; e.g. 5000); all of them, exactly, when fewer exist")
-    f.add_argument("--seed", type=int, default=None,
+    f.add_argument("--seed", type=whole_number(0), default=None,
                    help="random seed for permutations (default 0; recorded in every sidecar)")
     f.add_argument("--method", choices=["auto", "permutation", "sign_flip", "both"], default="auto",
                    help="how to rearrange the data: row permutation, sign flips, or both (default auto: "
-                   "sign flips for one-sample hypotheses, permutation otherwise)")
+                   "sign flips for a hypothesis about a mean, i.e. weights over cell means that do not sum to zero; "
+                   "permutation for differences, interactions and slopes)")
     f.add_argument("--blocks", help="table column of exchangeability blocks (e.g. --blocks family_id)")
     f.add_argument("--whole-blocks", action="store_true", help="permute blocks as wholes instead of within")
     f.add_argument("--tfce", action="store_true", help="threshold-free cluster enhancement (E=0.5, H=2)")
-    f.add_argument("--cluster-threshold", type=float, metavar="Z",
+    f.add_argument("--cluster-threshold", type=finite_number, metavar="Z",
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
-    f.add_argument("--jobs", type=int, default=None, metavar="N",
+    f.add_argument("--jobs", type=whole_number(1), default=None, metavar="N",
                    help="worker processes for TFCE and cluster permutations (default: all cores this process "
                    "may use; results do not depend on it)")
-    f.add_argument("--threads", type=int, default=None, metavar="N",
+    f.add_argument("--threads", type=whole_number(1), default=None, metavar="N",
                    help="threads for the permutation products (default: all cores this process may use; "
                    "results do not depend on it)")
 

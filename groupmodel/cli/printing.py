@@ -10,6 +10,14 @@ if TYPE_CHECKING:
     from ..analysis.corrections import InferenceOptions
     from ..analysis.voxel_fit import VoxelFit
     from ..model.assembly import Model
+    from ..outputs.folder import StaleFolder
+
+
+def print_removed(removed: tuple[StaleFolder, ...]) -> None:
+    """One line naming the hidden folders of killed earlier runs that were just removed (nothing if none)."""
+    if removed:
+        names = ", ".join(f"{r.path.name} (process {r.pid})" for r in removed)
+        print(f"removed {names}: left beside --out by an earlier run that was killed before it finished")
 
 
 def print_model_report(model: Model) -> None:
@@ -41,7 +49,7 @@ def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
     """A voxelwise fit before its files are written: sample and mask, warnings, hypotheses, inference, summary."""
     m = fit.model
     print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
-          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} voxels in the mask "
+          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
           f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
     print_exclusions(m)
     for w in fit.warnings:
@@ -53,12 +61,22 @@ def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
     print(fit.summary().to_string(index=False))
 
 
+#: How the terminal names the methods recorded in the sidecars.
+_METHOD_WORDS = {"permutation": "row permutation", "sign_flip": "sign flips", "both": "permutation and sign flips"}
+
+
 def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
-    rec = next(iter(fit.records.values()), {})
-    return (f"permutation inference: {rec.get('permutations')} rearrangements per hypothesis"
-            f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}, seed {options.seed}, "
-            f"Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; cluster threshold "
-            f"{options.cluster_threshold if options.cluster_threshold is not None else 'none'}")
+    """The settings of permutation inference, then the method and rearrangements of each hypothesis."""
+    rule = " (auto: sign flips for means, row permutation for differences and slopes)" \
+        if options.method == "auto" else ""
+    lines = [f"permutation inference: seed {options.seed}, Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; "
+             f"cluster threshold {options.cluster_threshold if options.cluster_threshold is not None else 'none'}; "
+             f"method per hypothesis{rule}:"]
+    for name, rec in fit.records.items():
+        method = _METHOD_WORDS.get(rec.get("method"), rec.get("method"))
+        lines.append(f"  {name}: {method}, {rec.get('permutations')} rearrangements"
+                     f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}")
+    return "\n".join(lines)
 
 
 def print_disclaimer() -> None:

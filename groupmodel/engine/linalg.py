@@ -138,11 +138,17 @@ def _combination_text(coef: np.ndarray, names: list[str]) -> str:
 
 
 def condition_number(matrix: np.ndarray) -> float:
-    """Condition number of the design with each column scaled to unit length (Belsley's scaling)."""
+    """Condition number of the design with each column scaled to unit length (Belsley's scaling).
+
+    ``inf`` for a rank-deficient design (smallest singular value at or below the rank tolerance, or more
+    columns than rows), rather than the reciprocal of a rounding error.
+    """
     norms = np.linalg.norm(matrix, axis=0)
     scaled = matrix / np.where(norms > 0, norms, 1.0)
     s = np.linalg.svd(scaled, compute_uv=False)
-    return float(s.max() / s.min()) if s.min() > 0 else float("inf")
+    if s.size < matrix.shape[1] or s.min() <= rank_tolerance(scaled, s):
+        return float("inf")
+    return float(s.max() / s.min())
 
 
 def has_constant_column(matrix: np.ndarray) -> bool:

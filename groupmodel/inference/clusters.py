@@ -176,6 +176,11 @@ def max_cluster_size(x: np.ndarray, threshold: float, adjacency: Adjacency, two_
     return int(np.bincount(comp).max()) if count else 0
 
 
+#: Voxel indices of a cluster's peak (volumes only), and its coordinates and centre of mass in mm.
+VOXEL_COLUMNS = ("peak_i", "peak_j", "peak_k")
+MM_COLUMNS = ("peak_x_mm", "peak_y_mm", "peak_z_mm", "com_x_mm", "com_y_mm", "com_z_mm")
+
+
 def _mm(ijk: np.ndarray, affine: np.ndarray) -> np.ndarray:
     affine = np.asarray(affine, dtype=np.float64)
     if affine.shape != (4, 4):
@@ -212,12 +217,16 @@ def cluster_table(
     -------
     pandas.DataFrame
         Columns ``cluster`` (label), ``sign``, ``size`` (elements), ``peak_stat`` (most extreme
-        value in the cluster's direction), ``peak_index`` (element index), ``peak_x/y/z`` and
-        ``com_x/y/z`` (mm; the centre of mass is the unweighted mean of the elements' coordinates),
-        ``p_fwe``.  Coordinates are NaN when no geometry is given.
+        value in the cluster's direction), ``peak_index`` (element index), with ``ijk`` the peak's voxel
+        indices ``peak_i/j/k``, then ``peak_x_mm/y_mm/z_mm`` and ``com_x_mm/y_mm/z_mm`` (the centre of
+        mass is the unweighted mean of the elements' coordinates), ``p_fwe``.  Coordinates are NaN when
+        no geometry is given.
     """
     stat = np.asarray(stat, dtype=np.float64).ravel()
     n = stat.size
+    voxels = np.asarray(ijk) if ijk is not None and coords is None else None
+    if voxels is not None and voxels.shape != (n, 3):
+        raise InputError(f"voxel indices must have shape ({n}, 3); got {voxels.shape} (in cluster_table)")
     if coords is not None:
         xyz = np.asarray(coords, dtype=np.float64)
     elif ijk is not None and affine is not None:
@@ -240,26 +249,15 @@ def cluster_table(
         sign = int(clusters.signs[c - 1])
         peak = idx[np.argmax(sign * stat[idx])]
         com = xyz[idx].mean(axis=0)
-        rows.append(
-            {
-                "cluster": c,
-                "sign": sign,
-                "size": int(idx.size),
-                "peak_stat": float(stat[peak]),
-                "peak_index": int(peak),
-                "peak_x": xyz[peak, 0],
-                "peak_y": xyz[peak, 1],
-                "peak_z": xyz[peak, 2],
-                "com_x": com[0],
-                "com_y": com[1],
-                "com_z": com[2],
-                "p_fwe": float(p_fwe[c - 1]) if p_fwe is not None else np.nan,
-            }
-        )
-    columns = [
-        "cluster", "sign", "size", "peak_stat", "peak_index", "peak_x", "peak_y", "peak_z",
-        "com_x", "com_y", "com_z", "p_fwe",
-    ]
+        row: dict[str, float] = {"cluster": c, "sign": sign, "size": int(idx.size), "peak_stat": float(stat[peak]),
+                                 "peak_index": int(peak)}
+        if voxels is not None:
+            row.update(zip(VOXEL_COLUMNS, (int(v) for v in voxels[peak]), strict=True))
+        row.update(zip(MM_COLUMNS, (*xyz[peak], *com), strict=True))
+        row["p_fwe"] = float(p_fwe[c - 1]) if p_fwe is not None else np.nan
+        rows.append(row)
+    columns = ["cluster", "sign", "size", "peak_stat", "peak_index", *(VOXEL_COLUMNS if voxels is not None else ()),
+               *MM_COLUMNS, "p_fwe"]
     import pandas as pd
 
     return pd.DataFrame(rows, columns=columns)

@@ -5,7 +5,8 @@ Array-level code: it knows nothing about files or specs.
 Freedman-Lane (Freedman and Lane 1983; Winkler et al. 2014, NeuroImage 92:381-397)
 ------------------------------------------------------------------------------------
 The design is partitioned, for each contrast, into effects of interest and nuisance.  Numerically:
-``X = U S V'`` (economy SVD, rank r); the contrast in the coordinates ``theta = U'Y`` is
+``X = U S V'`` (economy SVD, rank r, which may be below p: a rank-deficient design is split the same way,
+its contrast rows estimable, and only its column space is used); the contrast in the coordinates ``theta = U'Y`` is
 ``M = L V_r S_r^-1`` (so ``L b = M theta``); the right singular vectors of ``M`` split the
 column space of ``X`` into the interest space ``U_i`` (q columns, spanning the space of Winkler et
 al.'s ``X_i = X D L' (L D L')^-1``, ``D = (X'X)^+``) and the nuisance space ``U_z`` (r - q columns,
@@ -43,12 +44,12 @@ from typing import Literal
 
 import numpy as np
 
-from ..engine.linalg import ESTIMABILITY_TOL, rank_tolerance
+from ..engine.linalg import RowSpace, rank_tolerance
 from ..errors import EstimabilityError, InputError, ModelError
-from .rearrangements import default_method
 
 __all__ = [
     "ContrastPlan",
+    "MEAN_SHIFT_TOL",
     "Kind",
     "Partition",
     "Tail",
@@ -150,9 +151,9 @@ def partition(design: np.ndarray, weights: np.ndarray, kind: Kind = "t") -> Part
     r = int(np.sum(s > rank_tolerance(X, s)))
     if r == 0:
         raise ModelError("the design is all zeros (in permutation inference); check the design matrix")
+    # A rank-deficient design (r < p) is split the same way: everything below lives in its column space.
     Ur, sr, Vr = U[:, :r], s[:r], Vt[:r].T
-    resid = L - (L @ Vr) @ Vr.T
-    bad = np.linalg.norm(resid, axis=1) > ESTIMABILITY_TOL * np.maximum(np.linalg.norm(L, axis=1), 1e-300)
+    bad = ~RowSpace(Vt[:r], r, rank_tolerance(X, s)).contains(L)
     if bad.any():
         raise EstimabilityError(
             f"contrast rows {np.flatnonzero(bad).tolist()} are not estimable in this design: they are "
@@ -212,6 +213,24 @@ def _moving_nuisance(nuisance: np.ndarray, invariant: np.ndarray | None) -> np.n
     shared = np.zeros(A.shape[1], dtype=bool)
     shared[: sv.size] = sv > 1 - 1e-10
     return nuisance @ A[:, ~shared]
+
+
+#: Relative size (of sqrt(n)) under which the interest space counts as orthogonal to the constant vector.
+MEAN_SHIFT_TOL = 1e-8
+
+
+def moves_with_mean(part: Partition) -> bool:
+    """True when adding a constant to every observation changes the contrast ``L b``.
+
+    ``L b`` changes by ``c M U' 1`` when ``c`` is added to every observation, which is non-zero exactly when
+    the constant vector has a component in the interest space: ``||U_i' 1|| > 0`` (to ``MEAN_SHIFT_TOL``
+    of ``sqrt(n)``, its largest value).  In a model that contains the grand mean, this is the case when the
+    contrast's weights over cell means do not sum to zero: a mean or a combination of means, which row
+    permutation cannot move (it leaves the mean of the data unchanged), but sign flips can.  Differences,
+    interactions and slopes do not move with the mean: permutation tests them.
+    """
+    shift = np.linalg.norm(part.interest.sum(axis=0))
+    return bool(shift > MEAN_SHIFT_TOL * math.sqrt(part.n))
 
 
 def _row_classes(rows: np.ndarray) -> np.ndarray:
@@ -275,8 +294,8 @@ def plan_contrast(
 ) -> ContrastPlan:
     """Prepare one contrast for permutation inference (see the module docstring).
 
-    ``method="auto"`` chooses sign flips when the interest part is the same on every row (the
-    one-sample case), else permutation.
+    ``method="auto"`` chooses sign flips when the contrast concerns a mean (:func:`moves_with_mean`),
+    else permutation.
     """
     if kind not in ("t", "F"):
         raise InputError(f"kind must be 't' or 'F'; got {kind!r} (in {name or 'contrast'})")
@@ -293,7 +312,7 @@ def plan_contrast(
                 f"one block label per row was expected ({n}); got shape {blocks.shape} (in {name or 'contrast'})"
             )
     if method == "auto":
-        method = default_method(_row_classes(part.interest.T))
+        method = "flip" if moves_with_mean(part) else "permute"
     if method not in ("permute", "flip", "both"):
         raise InputError(f"method must be 'auto', 'permute', 'flip' or 'both'; got {method!r}")
     moving = _moving_nuisance(part.nuisance, _invariant_basis(n, method, blocks, whole_blocks))

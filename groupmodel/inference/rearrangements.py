@@ -8,8 +8,8 @@ that is, row i of the rearranged data is data row ``perm[j, i]``, multiplied by 
 Rearrangement 0 is always the identity.
 
 * ``"permute"``: row permutations, valid when the errors are exchangeable (Winkler et al. 2014).
-* ``"flip"``: sign flips, valid when the errors are symmetric about 0; the one-sample case, where a
-  permutation has nothing to shuffle.
+* ``"flip"``: sign flips, valid when the errors are symmetric about 0; the test of a mean (one-sample
+  or a combination of means), which a permutation of rows cannot move.
 * ``"both"``: a permutation followed by sign flips (exchangeable and symmetric errors).
 
 Exchangeability blocks: an integer label per row.  By default rows are permuted only within their
@@ -42,7 +42,6 @@ __all__ = [
     "Method",
     "PermutationSet",
     "count_rearrangements",
-    "default_method",
     "permutation_set",
 ]
 
@@ -97,17 +96,6 @@ class PermutationSet:
         perm = None if self.perm is None else self.perm[start:stop]
         flips = None if self.flips is None else self.flips[start:stop]
         return perm, flips
-
-
-def default_method(classes: np.ndarray) -> Method:
-    """Sign flips when the interest part is the same on every row (one-sample), else permutation.
-
-    Parameters
-    ----------
-    classes : ndarray of int, shape (n,)
-        Class of each row's interest part (identical rows share a class).
-    """
-    return "flip" if np.unique(np.asarray(classes)).size <= 1 else "permute"
 
 
 def _check_blocks(n: int, blocks: np.ndarray | None, whole_blocks: bool) -> np.ndarray | None:

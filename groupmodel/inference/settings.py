@@ -69,7 +69,8 @@ class Rearrangements:
     n_perm : int
         J, rearrangements including the identity (all distinct ones if fewer exist).
     method : {"auto", "permute", "flip", "both"}
-        "auto": sign flips if the interest part is constant over rows, else permutation.
+        "auto": sign flips if the contrast moves with the mean of the data (a mean or a combination of
+        means), else permutation (:func:`groupmodel.inference.freedman_lane.moves_with_mean`).
     blocks : ndarray of int, shape (n,), optional
         Exchangeability blocks; rows are permuted within blocks, or whole blocks are permuted
         with ``whole_blocks=True``.

@@ -58,12 +58,31 @@ from ..errors import InputError
 from .graph import Adjacency
 from .tfce_pairs import grid_pairs, table_pairs
 
-__all__ = ["Adjacency", "TfceParams", "tfce", "tfce_levels"]
+__all__ = ["DH_RULE", "DH_SIGNIFICANT_DIGITS", "Adjacency", "TfceParams", "default_step", "tfce", "tfce_levels"]
 
 Rule = Literal["right", "midpoint"]
 
 #: Values within this fraction of a step below a threshold count as reaching it (see module doc).
 _LEVEL_SLACK = 1e-9
+#: Significant digits of the default step: the largest observed value differs in its last bits between
+#: chunk sizes, threads and machines (BLAS), so the step derived from it is rounded to a stable value.
+DH_SIGNIFICANT_DIGITS = 6
+#: The default step, in words (recorded with every TFCE map).
+DH_RULE = f"largest observed value / 100, rounded to {DH_SIGNIFICANT_DIGITS} significant digits"
+#: Step used when the observed map has no positive finite value.
+_FALLBACK_DH = 0.1
+
+
+def default_step(top: float) -> float:
+    """The default TFCE step from the largest observed value: ``top / 100`` to ``DH_SIGNIFICANT_DIGITS``
+    significant digits (0.1 when ``top`` is not a positive finite number).
+
+    Rounding makes the step, and so every TFCE map, the same whichever last bits the maximum has
+    (``0.10543769596335156`` and ``0.10543769596335176`` both give ``0.105438``).
+    """
+    if not (np.isfinite(top) and top > 0):
+        return _FALLBACK_DH
+    return float(f"{top / 100:.{DH_SIGNIFICANT_DIGITS}g}")
 
 
 @dataclass(frozen=True)
@@ -78,8 +97,9 @@ class TfceParams:
         Height exponent (default 2).
     dh : float or None
         Threshold step in units of the statistic.  None means "one hundredth of the largest
-        enhanced value of the observed map", fixed once from the observed (unpermuted) map and then
-        used for every permutation, so that all maps are enhanced by the same function.
+        enhanced value of the observed map, to 6 significant digits" (:func:`default_step`), fixed once
+        from the observed (unpermuted) map and then used for every permutation, so that all maps are
+        enhanced by the same function.
     rule : {"right", "midpoint"}
         Thresholds ``k dh`` or ``(k - 1/2) dh``, k = 1, 2, ...
     """

@@ -5,7 +5,8 @@ assembled before enhancing (optionally in worker processes, ``n_jobs``).  TFCE i
 (or F) map; for "less" to -t (reported with a negative sign).  TFCE of a two-sided t map enhances
 the positive and negative parts separately and keeps the sign; its null statistic is
 ``max |TFCE|``.  The step dh is fixed once, from the observed map (default: its largest enhanced
-value / 100), and used for every rearrangement, so that all maps are enhanced by one function.
+value / 100, to 6 significant digits: :func:`groupmodel.inference.tfce.default_step`), and used for every
+rearrangement, so that all maps are enhanced by one function.
 Cluster-extent inference uses a cluster-forming threshold given as a z value, applied to the
 statistic with the same p (:func:`groupmodel.inference.clusters.stat_threshold`); the null
 statistic is the largest cluster size.
@@ -28,7 +29,7 @@ from .graph import Adjacency
 from .kernel import MapSpec, enhance_input, map_nulls, worker_init, worker_nulls
 from .results import ClusterResult, TfceResult, WholeMapResult, fwe_p
 from .settings import MapSettings
-from .tfce import tfce
+from .tfce import default_step, tfce
 
 __all__ = ["InlineMaps", "MapNulls", "MapWorkers", "ObservedMaps", "observe_maps", "shared_workers"]
 
@@ -128,8 +129,7 @@ def observe_maps(stat: np.ndarray, plan: ContrastPlan, settings: MapSettings) ->
     if settings.tfce is not None:
         dh = settings.tfce.dh
         if dh is None:
-            top = np.nanmax(observed) if np.any(np.isfinite(observed)) else np.nan
-            dh = top / 100 if np.isfinite(top) and top > 0 else 0.1
+            dh = default_step(float(np.nanmax(observed)) if np.any(np.isfinite(observed)) else np.nan)
         params = settings.tfce.with_dh(dh)
     if settings.cluster_z is not None:
         c_thr = stat_threshold(settings.cluster_z, plan.kind, plan.df, plan.q)

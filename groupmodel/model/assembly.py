@@ -16,6 +16,7 @@ import pandas as pd
 from ..errors import ModelError, SpecError
 from .checks import Finding, check_design
 from .design import Design, build_design
+from .estimability import alternatives
 from .hypotheses import Hypothesis, build_hypotheses
 from .spec import ModelSpec, load_spec
 from .table import Sample, select_sample
@@ -98,7 +99,7 @@ class Model:
         """The hypotheses as engine tests (:class:`groupmodel.ols.Test`)."""
         from ..engine.ols import Test
 
-        return [Test(h.name, h.weights, h.test, h.tail) for h in self.hypotheses.values()]
+        return [Test(h.name, h.weights, h.test, h.test_tail) for h in self.hypotheses.values()]
 
     # ----- files ---------------------------------------------------------------------------------
     def write(self, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
@@ -130,8 +131,9 @@ def build(
     Returns
     -------
     Model
-        Problems of the model (rank deficiency, non-estimable hypotheses) are in ``model.findings`` with
-        severity ``error``; unreadable or invalid input raises at once.
+        Problems of the model (non-estimable hypotheses, with what can be tested instead; no residual degrees
+        of freedom) are in ``model.findings`` with severity ``error``, a rank-deficient design with severity
+        ``warning`` (it is fitted with a generalised inverse); unreadable or invalid input raises at once.
     """
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
@@ -144,8 +146,10 @@ def build(
     except SpecError as exc:  # name the spec file and give a JSON path, as every other spec error
         raise SpecError(f"{spec.name} $.{exc}") from None
     for h in hypotheses.values():
+        instead = alternatives(spec, design, h, spec.hypotheses[h.name]) if h.problems else ""
         for problem in h.problems:
-            findings.append(Finding("error", "not_estimable", f"hypothesis {h.name} is not estimable: {problem}"))
+            findings.append(Finding("error", "not_estimable",
+                                    f"hypothesis {h.name} is not estimable: {problem}{instead}"))
         for note in h.notes:
             findings.append(Finding("note", "hypothesis_rows", f"hypothesis {h.name}: {note}"))
     return Model(spec, sample, design, hypotheses, findings)

@@ -10,7 +10,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal
 
+import numpy as np
+
 from ..engine.linalg import (
+    RowSpace,
     condition_number,
     dependent_columns,
     has_constant_column,
@@ -31,6 +34,8 @@ __all__ = [
     "check_design",
     "condition_number",
     "dependent_columns",
+    "empty_cells_behind_rank",
+    "empty_cells_text",
     "has_constant_column",
     "matrix_rank",
     "rank_tolerance",
@@ -95,31 +100,76 @@ def check_design(design: Design) -> list[Finding]:
 
 
 def _rank_findings(design: Design) -> tuple[list[Finding], int]:
-    """Too many columns, rank deficiency (naming the dependent columns), no residual df; and the rank."""
+    """Rank deficiency (a warning naming the dependent columns and the empty cells behind them), no residual
+    df (an error); and the rank.
+
+    A rank-deficient design is fitted with a generalised inverse: every estimable hypothesis has one value
+    whichever inverse is used, and each hypothesis that is not estimable is refused on its own.
+    """
     findings: list[Finding] = []
     x = design.matrix
     names = design.column_names
     n, p = x.shape
     if p > n:
         findings.append(Finding(
-            "error", "too_many_columns",
-            f"the design has {p} columns but only {n} observations; remove terms or add participants",
+            "warning", "too_many_columns",
+            f"the design has {p} columns but only {n} observations: it cannot be full rank",
         ))
     rank = matrix_rank(x)
     if rank < p:
         deps = dependent_columns(x, names)
+        empty = empty_cells_behind_rank(design)
+        cause = f" because no participant has {empty_cells_text(design, empty)}" if empty else ""
         findings.append(Finding(
-            "error", "rank_deficient",
-            f"the design has rank {rank} with {p} columns: " + "; ".join(deps)
-            + "; remove a dependent column or term, or check for empty cells",
+            "warning", "rank_deficient",
+            f"the design has rank {rank} with {p} columns{cause}: in the observed rows " + "; ".join(deps)
+            + f"; it is fitted with a generalised inverse (n - rank = {n - rank} residual degrees of freedom): "
+            "the hypotheses the observed rows determine are tested, any other is refused",
         ))
-    elif n - rank < 1:
+    if n - rank < 1:
         findings.append(Finding(
             "error", "no_error_df",
-            f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank}); "
-            "remove terms or add participants",
+            f"the design leaves no residual degrees of freedom (n = {n}, rank = {rank})"
+            + (f": it has {p} columns but only {n} observations" if p > n else "")
+            + "; remove terms or add participants",
         ))
     return findings, rank
+
+
+def empty_cells_text(design: Design, cells: list[tuple[str, ...]]) -> str:
+    """Empty cells in the fewest factors that describe them: ``site=north, scanner=S1; site=south, scanner=N1``
+    rather than every crossing of those with a third factor whose levels all occur in the list."""
+    names = list(design.factors)
+    empty = set(cells)
+    keep = list(range(len(names)))
+    for g in reversed(range(len(names))):
+        trial = [i for i in keep if i != g]
+        if all(tuple(c[i] if i != g else lv for i in range(len(names))) in empty
+               for c in empty for lv in design.factors[names[g]].levels):
+            keep = trial
+    seen: dict[tuple[str, ...], None] = {}
+    for c in cells:
+        seen.setdefault(tuple(c[i] for i in keep), None)
+    return "; ".join(", ".join(f"{names[i]}={lv}" for i, lv in zip(keep, key, strict=True)) for key in seen)
+
+
+def empty_cells_behind_rank(design: Design) -> list[tuple[str, ...]]:
+    """The empty cells whose design row (or covariate slope row) the observed rows do not reach.
+
+    These are the cells whose absence makes the design rank deficient: with them observed, the columns
+    they involve would be separated.
+    """
+    counts = design.cell_counts
+    if not design.factors or not (counts == 0).any():
+        return []
+    space = RowSpace.of(design.matrix)
+    out = []
+    for i in np.flatnonzero(counts == 0):
+        cell = design.cells[int(i)]
+        rows = [design.cell_row(cell)] + [design.cell_slope_row(cell, c) for c in design.covariates]
+        if not space.contains(np.array(rows)).all():
+            out.append(cell)
+    return out
 
 
 def _collinearity_findings(design: Design, rank: int) -> list[Finding]:

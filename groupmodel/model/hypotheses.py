@@ -22,8 +22,9 @@ from typing import Any, Literal
 
 import numpy as np
 
-from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, independent_rows
+from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import ModelError, SpecError
+from .checks import empty_cells_text
 from .design import Design
 from .hypothesis_kinds import BUILDERS, At, CellWeights, ColumnWeights, parse_at, register
 from .spec import HypothesisSpec, Interaction, Main, Slope, Tail
@@ -54,6 +55,10 @@ __all__ = [
 #: Relative tolerance under which a row of weights counts as zero (the hypothesis vanishes in this model).
 VANISH_TOL = 1e-10
 
+#: The tail of a hypothesis as reported: a t test's alternative, or ``upper`` for an F test (its one
+#: rejection region: large F).
+ReportedTail = Literal["two-sided", "greater", "less", "upper"]
+
 
 @dataclass(frozen=True)
 class Hypothesis:
@@ -65,8 +70,8 @@ class Hypothesis:
     kind : str
         ``main``, ``interaction``, ``compare``, ``mean``, ``trend``, ``slope``, ``cells`` or ``weights``.
     test : {"t", "F"}
-    tail : {"two-sided", "greater", "less"}
-        Always ``two-sided`` for F tests.
+    tail : {"two-sided", "greater", "less", "upper"}
+        The alternative of a t test; ``upper`` for every F test (p is the upper tail of F).
     weights : ndarray, shape (q, p)
         Independent rows over the design columns (what goes into contrasts.tsv).
     cell_weights : ndarray, shape (q, n_cells) or None
@@ -84,7 +89,7 @@ class Hypothesis:
     name: str
     kind: str
     test: Literal["t", "F"]
-    tail: Tail
+    tail: ReportedTail
     weights: np.ndarray
     cell_weights: np.ndarray | None
     statement: str
@@ -97,6 +102,11 @@ class Hypothesis:
     @property
     def n_rows(self) -> int:
         return self.weights.shape[0]
+
+    @property
+    def test_tail(self) -> Tail:
+        """The tail as the engine takes it: an F test's upper tail is the engine's ``two-sided`` (|t| for q = 1)."""
+        return "two-sided" if self.tail == "upper" else self.tail
 
     def as_dict(self, design: Design) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -157,6 +167,11 @@ def build_hypothesis(design: Design, name: str, body: HypothesisSpec | Mapping[s
     kind = BUILDERS[h.kind]
     at = parse_at(design, h) if kind.uses_at else At()
     built = kind.build(h, design, at)
+    if built.test == "F" and h.tail not in (None, "two-sided"):
+        raise SpecError(
+            f"{h.where}.tail: {h.kind} with several rows is an F test, which has one rejection region (large F) "
+            f"and no tail; remove 'tail', or give one row for a directional t test"
+        )
     weights = built.column_weights(design, at)
     statement = built.statement(design, at) + tail_phrase(h.tail_or_default)
     weights, cell_w, notes, rows_given = _drop_vanishing(design, h, weights, built.cell_weights, list(built.notes))
@@ -177,7 +192,7 @@ def build_hypothesis(design: Design, name: str, body: HypothesisSpec | Mapping[s
         name=h.name,
         kind=h.kind,
         test=built.test,
-        tail=h.tail_or_default,
+        tail="upper" if built.test == "F" else h.tail_or_default,
         weights=weights,
         cell_weights=cell_w,
         statement=statement,
@@ -193,6 +208,8 @@ def _drop_vanishing(design: Design, h: HypothesisSpec, weights: np.ndarray, cell
                     notes: list[str]) -> tuple[np.ndarray, np.ndarray | None, list[str], int]:
     """Refuse a hypothesis whose weights all vanish in this model; drop (and note) rows that vanish."""
     scale = max(np.abs(design.matrix).max(), 1.0)
+    if cell_w is not None:  # relative to the size of the weights over cells (a trend's may be small)
+        scale = scale * np.maximum(np.linalg.norm(cell_w, axis=1), np.finfo(float).tiny)
     norms = np.linalg.norm(weights, axis=1)
     if np.all(norms <= VANISH_TOL * scale):
         raise ModelError(
@@ -227,10 +244,10 @@ def _non_estimable_reason(design: Design, cell_w: np.ndarray | None) -> str:
         touched = np.abs(cell_w).max(axis=0) > 0
         empty = [design.cells[i] for i in np.flatnonzero(touched & (design.cell_counts == 0))]
         if empty:
-            cells = "; ".join(design.cell_label(c) for c in empty)
-            return f"no participant has {cells}"
-    return "its weights are not in the row space of the design (the design is rank deficient and this " \
-        "hypothesis depends on what the data cannot separate)"
+            return f"no participant has {empty_cells_text(design, empty)}"
+    deps = dependent_columns(design.matrix, design.column_names)
+    return "its weights are not in the row space of the design: it depends on what the rank-deficient design " \
+        f"cannot separate ({'; '.join(deps)})"
 
 
 def build_hypotheses(design: Design,

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..errors import SpecError
 from ..text import number_text
-from .coding import degree_name, orthogonal_polynomials
+from .coding import degree_name
 from .design import Design
 from .spec import Cells, Compare, HypothesisSpec, Interaction, Main, Mean, Slope, Trend, Weights
 from .statements import (
@@ -29,6 +29,7 @@ from .statements import (
     interpret_weights,
     join,
     mean_label,
+    over_levels,
 )
 
 
@@ -37,10 +38,20 @@ from .statements import (
 # --------------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class At:
-    """Where a hypothesis is evaluated: factor levels (a slice of the cells) and covariate values."""
+    """Where a hypothesis is evaluated: factor levels (a slice of the cells) and covariate values.
 
-    levels: dict[str, str] = field(default_factory=dict)
+    A factor's entry in ``levels`` is one level (the hypothesis is taken at that level) or a tuple of at least
+    two levels in the design's level order (averaged over those levels only; for the factor a ``main`` or
+    ``interaction`` hypothesis is about, its levels are restricted to those).
+    """
+
+    levels: dict[str, str | tuple[str, ...]] = field(default_factory=dict)
     values: dict[str, float] = field(default_factory=dict)
+
+    def levels_of(self, design: Design, factor: str) -> tuple[str, ...]:
+        """The levels of ``factor`` this hypothesis spans: those of an ``at`` list, else all of them."""
+        chosen = self.levels.get(factor)
+        return chosen if isinstance(chosen, tuple) else tuple(design.factors[factor].levels)
 
 
 @dataclass(frozen=True)
@@ -130,13 +141,13 @@ def register(kind: str, f_test: bool = False, uses_at: bool = True) -> Callable[
 class _Cells:
     """Helpers over a design's cells for one hypothesis (its ``at`` slice and marginal weighting)."""
 
-    def __init__(self, design: Design, at_levels: Mapping[str, str], marginal: str) -> None:
+    def __init__(self, design: Design, at_levels: Mapping[str, str | tuple[str, ...]], marginal: str) -> None:
         self.design = design
         self.at_levels = dict(at_levels)
         self.marginal = marginal
         self.factor_names = list(design.factors)
 
-    def select(self, levels: Mapping[str, str | Sequence[str]]) -> np.ndarray:
+    def select(self, levels: Mapping[str, str | tuple[str, ...]]) -> np.ndarray:
         """Boolean over cells: matches every constraint and the hypothesis's ``at`` levels."""
         mask = np.ones(len(self.design.cells), dtype=bool)
         constraints: dict[str, Any] = {**self.at_levels, **levels}
@@ -148,7 +159,7 @@ class _Cells:
                     break
         return mask
 
-    def marginal_mean(self, levels: Mapping[str, str]) -> np.ndarray:
+    def marginal_mean(self, levels: Mapping[str, str | tuple[str, ...]]) -> np.ndarray:
         """Cell weights (n_cells,) of the marginal mean over cells matching ``levels`` and ``at``."""
         mask = self.select(levels)
         if self.marginal == "observed":
@@ -157,6 +168,13 @@ class _Cells:
                 return mask / max(mask.sum(), 1)  # no observations: estimability will say so
             return counts / counts.sum()
         return mask / max(mask.sum(), 1)
+
+    def is_participant_mean(self, w: np.ndarray) -> bool:
+        """Whether cell weights ``w`` weight each cell of the ``at`` slice by its count: the mean over its
+        participants (marginal "observed", a balanced slice, or a model without factors)."""
+        counts = self.design.cell_counts * self.select({})
+        total = counts.sum()
+        return bool(total > 0 and np.allclose(w, counts / total, rtol=0, atol=1e-12))
 
     def averaged_over(self, used: Sequence[str]) -> str:
         return averaged_over(self.factor_names, used, self.at_levels, self.marginal)
@@ -185,20 +203,31 @@ def _require_level(design: Design, factor: str, level: Any, where: str, h: Hypot
 
 
 def parse_at(design: Design, h: HypothesisSpec) -> At:
-    """The hypothesis's ``at`` over this design: factor levels and covariate values, each checked."""
-    at_levels: dict[str, str] = {}
+    """The hypothesis's ``at`` over this design: factor levels (one, or a list) and covariate values, each checked.
+
+    A list of one level is that level; a list of every level is no restriction.
+    """
+    at_levels: dict[str, str | tuple[str, ...]] = {}
     at_values: dict[str, float] = {}
     for key, value in h.at:
         if key in design.factors:
+            if isinstance(value, list | tuple):
+                levels = _level_list(design, key, value, h)
+                if len(levels) == 1:
+                    at_levels[key] = levels[0]
+                elif len(levels) < design.factors[key].n_levels:
+                    at_levels[key] = levels
+                continue
             if not isinstance(value, str):
                 raise SpecError(
-                    f"{h.where}.at.{key}: expected a level (text) of factor {key}, found {value!r}"
+                    f"{h.where}.at.{key}: expected a level (text) of factor {key}, or a list of levels, found {value!r}"
                 )
             _require_level(design, key, value, f"at.{key}", h)
             at_levels[key] = value
         elif key in design.covariates:
-            if isinstance(value, str):
-                raise SpecError(f"{h.where}.at.{key}: expected a number for covariate {key}, found {value!r}")
+            if isinstance(value, str | list | tuple):
+                shown = list(value) if isinstance(value, tuple) else value
+                raise SpecError(f"{h.where}.at.{key}: expected a number for covariate {key}, found {shown!r}")
             at_values[key] = float(value)
         else:
             raise SpecError(
@@ -206,6 +235,35 @@ def parse_at(design: Design, h: HypothesisSpec) -> At:
                 f"covariate {list(design.covariates)}; fix the name"
             )
     return At(at_levels, at_values)
+
+
+def _level_list(design: Design, factor: str, value: Sequence[Any], h: HypothesisSpec) -> tuple[str, ...]:
+    """An ``at`` list of levels of ``factor``: checked (levels of the factor, none twice) and in level order."""
+    where = f"{h.where}.at.{factor}"
+    if not value:
+        raise SpecError(f"{where}: expected at least one level of {factor}, found an empty list; name the levels")
+    for i, lv in enumerate(value):
+        if not isinstance(lv, str):
+            raise SpecError(f"{where}[{i}]: expected a level (text) of factor {factor}, found {lv!r}")
+        _require_level(design, factor, lv, f"at.{factor}[{i}]", h)
+    twice = sorted({lv for lv in value if list(value).count(lv) > 1})
+    if twice:
+        raise SpecError(f"{where}: level(s) {twice} listed twice; list each level once")
+    return tuple(lv for lv in design.factors[factor].levels if lv in value)
+
+
+def _own_factor_at(h: HypothesisSpec, at: At, factors: Sequence[str], lists_allowed: bool) -> None:
+    """Refuse an ``at`` on a factor the hypothesis is about (a list restricts its levels where that is allowed)."""
+    for f in factors:
+        if f not in at.levels:
+            continue
+        if lists_allowed and isinstance(at.levels[f], tuple):
+            continue
+        fix = "give a list of at least two of its levels, or remove it" if lists_allowed else "remove it"
+        raise SpecError(
+            f"{h.where}.at.{f}: {f} is the factor this {h.kind} hypothesis is about, so it cannot also be held "
+            f"at {'a level' if isinstance(at.levels[f], str) else 'some levels'}; {fix}"
+        )
 
 
 # --------------------------------------------------------------------------------------------------
@@ -217,11 +275,12 @@ def _main(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
     f = h.target.factor
     cells = _Cells(design, at.levels, h.marginal)
     _require_factor(design, f, "main", h)
-    levels = design.factors[f].levels
+    _own_factor_at(h, at, [f], lists_allowed=True)
+    levels = at.levels_of(design, f)
     means = np.array([cells.marginal_mean({f: lv}) for lv in levels])
     w = _difference_matrix(len(levels)) @ means
     stmt = " = ".join(f"mean({f}={lv})" for lv in levels)
-    return CellWeights(w, (stmt, cells.averaged_over([f]), at_text(at.levels)), "F")
+    return CellWeights(w, (stmt, cells.averaged_over([f]), at_text(at.levels, skip=[f])), "F")
 
 
 @register("interaction", f_test=True)
@@ -231,20 +290,22 @@ def _interaction(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
     cells = _Cells(design, at.levels, h.marginal)
     for i, f in enumerate(fs):
         _require_factor(design, f, f"interaction[{i}]", h)
+    _own_factor_at(h, at, fs, lists_allowed=True)
+    levels = [at.levels_of(design, f) for f in fs]
     combos = np.array(
-        [cells.marginal_mean(dict(zip(fs, combo, strict=True)))
-         for combo in product(*(design.factors[f].levels for f in fs))]
+        [cells.marginal_mean(dict(zip(fs, combo, strict=True))) for combo in product(*levels)]
     )
     diff = np.ones((1, 1))
-    for f in fs:
-        diff = np.kron(diff, _difference_matrix(design.factors[f].n_levels))
+    for lvls in levels:
+        diff = np.kron(diff, _difference_matrix(len(lvls)))
     w = diff @ combos
     stmt = (
         f"every {' x '.join(fs)} interaction contrast of the cell means is 0 "
         f"(the differences among {fs[0]} levels are the same at every level of {' x '.join(fs[1:])})"
     )
     notes = ("one-row interaction: F = t squared with df1 = 1",) if w.shape[0] == 1 else ()
-    return CellWeights(w, (stmt, cells.averaged_over(fs), at_text(at.levels)), "F", notes=notes)
+    return CellWeights(w, (stmt, over_levels(fs, at.levels), cells.averaged_over(fs), at_text(at.levels, skip=fs)),
+                       "F", notes=notes)
 
 
 def _side_text(f: str, lvls: Sequence[str]) -> str:
@@ -259,6 +320,7 @@ def _compare(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
     f, sides = h.target.factor, h.target.sides
     cells = _Cells(design, at.levels, h.marginal)
     _require_factor(design, f, "compare", h)
+    _own_factor_at(h, at, [f], lists_allowed=False)
     rows = []
     texts = []
     for s, lvls in enumerate(sides):
@@ -288,8 +350,33 @@ def _mean(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
         _require_factor(design, f, f"mean.{f}", h)
         _require_level(design, f, lv, f"mean.{f}", h)
     w = cells.marginal_mean(levels)[None, :]
+    if not levels and cells.is_participant_mean(w[0]):
+        return CellWeights(w, ("mean over participants = 0", at_text(at.levels)), "t")
     label = mean_label(levels) if levels else "mean of all cells"
     return CellWeights(w, (f"{label} = 0", cells.averaged_over(list(levels)), at_text(at.levels)), "t")
+
+
+def trend_weights(scores: Sequence[float], degree: int) -> np.ndarray:
+    """Weights over the level means (k,) whose sum is the degree-``degree`` trend in units of the scores.
+
+    The weights are ``P / (P . P)``, ``P`` the monic polynomial of that degree orthogonal (over the scores) to
+    every lower degree: the sum is the coefficient of ``score**degree`` in the least-squares polynomial of
+    that degree through the level means; for degree 1 the least-squares slope of the means per unit of score.
+    They are the orthonormal polynomial contrast (R's ``contr.poly``) rescaled: t and p are the same.
+    """
+    x = np.asarray(scores, dtype=float)
+    vander = np.vander(x - x.mean(), degree + 1, increasing=True)
+    q, r = np.linalg.qr(vander)
+    monic = q[:, degree] * r[degree, degree]  # score**degree minus its projection on the lower degrees
+    return monic / (monic @ monic)
+
+
+def _trend_units(degree: int, factor: str) -> str:
+    """What the estimate of a trend is, in units of the scores."""
+    if degree == 1:
+        return f"the least-squares slope of the {factor} means per unit of score"
+    fit = degree_name(degree) if degree <= 3 else f"polynomial of degree {degree}"
+    return f"the score^{degree} coefficient of the least-squares {fit} through the {factor} means"
 
 
 @register("trend")
@@ -298,18 +385,19 @@ def _trend(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
     f, degree = h.target.factor, h.target.degree
     cells = _Cells(design, at.levels, h.marginal)
     _require_factor(design, f, "trend", h)
+    _own_factor_at(h, at, [f], lists_allowed=False)
     fc = design.factors[f]
     if degree > fc.n_levels - 1:
         raise SpecError(
             f"{h.where}.degree: a factor with {fc.n_levels} levels has trends of degree 1 to "
             f"{fc.n_levels - 1}, found {degree}; lower the degree"
         )
-    coef = orthogonal_polynomials(fc.scores or range(1, fc.n_levels + 1))[:, degree - 1]
+    coef = trend_weights(fc.scores or range(1, fc.n_levels + 1), degree)
     means = np.array([cells.marginal_mean({f: lv}) for lv in fc.levels])
     w = (coef @ means)[None, :]
     combo = combination([(c, f"mean({f}={lv})") for c, lv in zip(coef, fc.levels, strict=True)])
     scores = ", ".join(map(number_text, fc.scores or ()))
-    stmt = f"{degree_name(degree)} trend over {f} scores [{scores}]: {combo} = 0"
+    stmt = f"{degree_name(degree)} trend over {f} scores [{scores}], {_trend_units(degree, f)}: {combo} = 0"
     return CellWeights(w, (stmt, cells.averaged_over([f]), at_text(at.levels)), "t")
 
 
@@ -340,7 +428,9 @@ def _cells(h: HypothesisSpec, design: Design, at: At) -> CellWeights:
             _require_level(design, f, lv, f"cells[{i}].at.{f}", h)
         total = total + entry.weight * cells.marginal_mean(levels)
         parts.append((entry.weight, mean_label(levels)))
-    return CellWeights(total[None, :], (f"{combination(parts)} = 0", at_text(at.levels)), "t")
+    listed = [f for f, lv in at.levels.items() if isinstance(lv, tuple)]
+    over = cells.averaged_over([f for f in design.factors if f not in listed])
+    return CellWeights(total[None, :], (f"{combination(parts)} = 0", over, at_text(at.levels)), "t")
 
 
 @register("weights", uses_at=False)

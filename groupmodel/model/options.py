@@ -7,6 +7,7 @@ schema); :meth:`InferenceOptions.with_overrides` applies settings given elsewher
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
@@ -27,8 +28,8 @@ class InferenceOptions:
     seed : int
         Seed of the random rearrangements (default 0, always recorded).
     method : {"auto", "permutation", "sign_flip", "both"}
-        ``auto``: sign flips when a hypothesis's effect of interest is constant over rows (one-sample),
-        row permutation otherwise.
+        ``auto``: per hypothesis, sign flips when its weights over cell means do not sum to zero (a mean
+        or a combination of means), row permutation when they do (differences, interactions, slopes).
     blocks : str or None
         Table column of exchangeability blocks.
     whole_blocks : bool
@@ -95,18 +96,28 @@ class InferenceOptions:
         Raises
         ------
         InputError
-            TFCE, clusters or blocks without permutations; ``jobs``/``threads`` below 1; whole blocks
-            without blocks.
+            TFCE, clusters or blocks without permutations; ``permutations`` or ``seed`` below 0;
+            ``jobs``/``threads`` below 1; a cluster threshold or TFCE step that is not a finite number (the
+            step also > 0); whole blocks without blocks.
         """
+        for option, value, least in (("--permutations", self.permutations, 0), ("--seed", self.seed, 0),
+                                     ("--jobs", self.jobs, 1), ("--threads", self.threads, 1)):
+            if value is not None and (isinstance(value, bool) or not isinstance(value, int) or value < least):
+                example = {"--permutations": 5000, "--seed": 1}.get(option, 2)
+                raise InputError(
+                    f"{option} must be a whole number >= {least}; got {value!r}; give e.g. {option} {example}"
+                )
+        for option, number in (("--cluster-threshold", self.cluster_threshold), ("tfce_step", self.tfce_step)):
+            if number is not None and not (isinstance(number, int | float) and math.isfinite(number)):
+                raise InputError(f"{option} must be a finite number; got {number!r}; give e.g. 3.1")
+        if self.tfce_step is not None and self.tfce_step <= 0:
+            raise InputError(f"inference.tfce_step must be > 0; got {self.tfce_step!r}; leave it out for the default")
         if (self.tfce or self.cluster_threshold is not None or self.blocks or self.whole_blocks) \
                 and not self.active:
             raise InputError(
                 "TFCE, cluster-extent and exchangeability blocks need permutations; found --permutations 0; "
                 "add --permutations J (e.g. 5000) or inference.permutations to the spec"
             )
-        for option, value in (("--jobs", self.jobs), ("--threads", self.threads)):
-            if value is not None and value < 1:
-                raise InputError(f"{option} must be a whole number >= 1; got {value}; give e.g. {option} 2")
         if self.whole_blocks and not self.blocks:
             raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
         return self

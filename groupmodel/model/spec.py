@@ -20,6 +20,7 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from .jsonfile import check_values, read_json
 from .options import InferenceOptions
 
 Coding = Literal["effect", "treatment", "polynomial", "indicator"]
@@ -178,7 +179,8 @@ class HypothesisSpec:
     target : Main, Interaction, Compare, Mean, Trend, Slope, Cells or Weights
         The kind's arguments.
     at : tuple of (name, value)
-        Factor levels (text) and covariate values (numbers) at which it is evaluated, in the order written.
+        Factor levels (text, or a tuple of levels to average over) and covariate values (numbers) at which it
+        is evaluated, in the order written.
     tail : {"two-sided", "greater", "less"} or None
         As written; None when not given (two-sided).
     marginal : {"equal", "observed"}
@@ -190,7 +192,7 @@ class HypothesisSpec:
     name: str
     kind: str
     target: Target
-    at: tuple[tuple[str, str | float], ...] = ()
+    at: tuple[tuple[str, str | float | tuple[str, ...]], ...] = ()
     tail: Tail | None = None
     marginal: str = "equal"
     degree: int | None = None
@@ -217,7 +219,7 @@ class HypothesisSpec:
             name=name,
             kind=kind,
             target=TARGET_READERS[kind](body[kind], body),
-            at=tuple((body.get("at") or {}).items()),
+            at=tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in (body.get("at") or {}).items()),
             tail=body.get("tail"),
             marginal=body.get("marginal", "equal"),
             degree=body.get("degree"),
@@ -318,6 +320,11 @@ def _schema_message(error: jsonschema.ValidationError, spec_name: str) -> str:
             f"slope, cells, weights; found {found}; "
             "keep exactly one"
         )
+    if best.validator == "anyOf" and ".at." in where:
+        return (
+            f"{spec_name} {where}: expected a factor level (text), a list of levels, or a covariate value (number); "
+            f"found {best.instance!r}; fix the value"
+        )
     return f"{spec_name} {where}: {best.message}; fix the value to match the model spec schema (see README)"
 
 
@@ -343,20 +350,10 @@ def _as_level(value: str | float) -> str:
 
 
 def _read_json(path: Path) -> Any:
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise SpecError(f"model spec {path}: file not found; check the path") from None
-    except IsADirectoryError:
-        raise SpecError(f"model spec {path}: expected a JSON file, found a folder; give the spec file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SpecError(f"model spec {path}: cannot be read ({exc}); check the file") from None
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise SpecError(
-            f"model spec {path} line {exc.lineno}, column {exc.colno}: invalid JSON ({exc.msg}); fix the syntax"
-        ) from None
+    """The spec file's JSON: UTF-8, valid JSON, no absurd nesting, every number a finite float."""
+    if path.is_dir():
+        raise SpecError(f"model spec {path}: expected a JSON file, found a folder; give the spec file")
+    return read_json(path, "model spec", SpecError)
 
 
 def load_spec(path: Path | str) -> ModelSpec:
@@ -442,6 +439,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
     path = Path(path)
     name = path.name
+    check_values(raw, name, SpecError)  # nesting and numbers first: the schema check recurses and converts
     validator = jsonschema.Draft202012Validator(load_schema())
     errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), list(map(str, e.path))))
     if errors:

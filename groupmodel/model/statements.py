@@ -60,20 +60,46 @@ def join(*parts: str) -> str:
     return ", ".join(p for p in parts if p)
 
 
-def at_text(at_levels: Mapping[str, str]) -> str:
-    """``"at f=lv, g=lv"`` for the factor levels a hypothesis is evaluated at; empty when none."""
-    text = ", ".join(f"{f}={lv}" for f, lv in at_levels.items())
+def at_text(at_levels: Mapping[str, str | tuple[str, ...]], skip: Sequence[str] = ()) -> str:
+    """``"at f=lv, g=lv"`` for the single factor levels a hypothesis is evaluated at; empty when none.
+
+    Lists of levels are not here: :func:`averaged_over` and :func:`over_levels` say them.
+    """
+    text = ", ".join(f"{f}={lv}" for f, lv in at_levels.items() if isinstance(lv, str) and f not in skip)
     return f"at {text}" if text else ""
 
 
-def averaged_over(factor_names: Sequence[str], used: Sequence[str], at_levels: Mapping[str, str],
-                  marginal: str) -> str:
-    """How the factors a hypothesis does not name are averaged over; empty when none is left."""
-    others = [f for f in factor_names if f not in used and f not in at_levels]
+def _level_list_text(factor: str, levels: Sequence[str]) -> str:
+    """``scanner (A, B)``: a factor over some of its levels (:func:`crossing` drops the brackets when alone)."""
+    return f"{factor} ({', '.join(levels)})"
+
+
+def crossing(items: Sequence[str]) -> str:
+    """Factors joined by `` x ``; a lone factor over some levels loses its brackets: ``scanner A, B``."""
+    if len(items) == 1 and items[0].endswith(")") and " (" in items[0]:
+        name, levels = items[0][:-1].split(" (", 1)
+        return f"{name} {levels}"
+    return " x ".join(items)
+
+
+def averaged_over(factor_names: Sequence[str], used: Sequence[str],
+                  at_levels: Mapping[str, str | tuple[str, ...]], marginal: str) -> str:
+    """How the factors a hypothesis does not name are averaged over (a factor with an ``at`` list over those
+    levels only: ``averaged equally over scanner A, B``); empty when none is left."""
+    others = [
+        _level_list_text(f, at_levels[f]) if isinstance(at_levels.get(f), tuple) else f
+        for f in factor_names if f not in used and not isinstance(at_levels.get(f), str)
+    ]
     if not others:
         return ""
     how = "averaged equally over" if marginal == "equal" else "weighted by cell counts over"
-    return f"{how} {' x '.join(others)}"
+    return f"{how} {crossing(others)}"
+
+
+def over_levels(factors: Sequence[str], at_levels: Mapping[str, str | tuple[str, ...]]) -> str:
+    """``over scanner A, B`` for the factors a hypothesis is about whose levels an ``at`` list restricts."""
+    parts = [_level_list_text(f, at_levels[f]) for f in factors if isinstance(at_levels.get(f), tuple)]
+    return f"over {crossing(parts)} only" if parts else ""
 
 
 def _factorise(design: Design, w: np.ndarray) -> tuple[np.ndarray, list[str], list[str], dict[str, str]]:
@@ -100,6 +126,13 @@ def _factorise(design: Design, w: np.ndarray) -> tuple[np.ndarray, list[str], li
         if len(nonzero) == 1 and k > 1:
             fixed[f] = design.factors[f].levels[nonzero[0]]
             tensor = moved[..., nonzero[0]]
+            names.pop(axis)
+            continue
+        part = moved[..., nonzero]
+        if 1 < len(nonzero) < k and np.allclose(part, part[..., :1], atol=1e-9 * scale):
+            # An equal average over some levels only (an "at" list): "averaged equally over scanner A, B".
+            tensor = part[..., 0] * len(nonzero)
+            averaged.append(_level_list_text(f, [design.factors[f].levels[j] for j in nonzero]))
             names.pop(axis)
     return tensor, names, averaged, fixed
 
@@ -128,7 +161,7 @@ def describe_cell_weights(design: Design, w: np.ndarray, slope_of: str | None = 
     text = combination(terms) + " = 0"
     extras = []
     if averaged:
-        extras.append("averaged equally over " + " x ".join(reversed(averaged)))
+        extras.append("averaged equally over " + crossing(list(reversed(averaged))))
     if fixed:
         extras.append("at " + ", ".join(f"{f}={lv}" for f, lv in reversed(list(fixed.items()))))
     return join(text, *extras)

@@ -11,7 +11,6 @@ left-out row is listed with its reason.  Nothing vanishes silently.
 from __future__ import annotations
 
 import csv
-import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -20,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import SpecError, TableError
+from .jsonfile import decode_utf8, read_json
 from .spec import ModelSpec
 
 #: Values read as missing.  ``n/a`` is the BIDS marker; an empty field is not valid BIDS but means the same.
@@ -118,10 +118,10 @@ def read_table(path: Path) -> pd.DataFrame:
     if path.is_dir():
         raise TableError(f"participants table {path}: expected a TSV file, found a folder; give the file")
     try:
-        with open(path, encoding="utf-8-sig", newline="") as fh:
-            lines = fh.read().splitlines()
-    except (OSError, UnicodeDecodeError) as exc:
-        raise TableError(f"participants table {path}: cannot be read as UTF-8 text ({exc}); check the file") from None
+        data = path.read_bytes()
+    except OSError as exc:
+        raise TableError(f"participants table {path}: cannot be read ({exc.strerror}); check the file") from None
+    lines = decode_utf8(data, f"participants table {path}", TableError, encoding="utf-8-sig").splitlines()
     lines = [ln for ln in lines if ln.strip()]
     if not lines:
         raise TableError(f"{name}: the file is empty; expected a header row starting with participant_id")
@@ -173,15 +173,15 @@ def read_sidecar_levels(path: Path | None) -> dict[str, tuple[str, ...]]:
     """Levels declared in a BIDS ``participants.json`` (column -> keys of its ``Levels``)."""
     if path is None:
         return {}
-    try:
-        raw = json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise TableError(f"participants sidecar {path}: file not found; fix participants_sidecar in the spec") from None
-    except json.JSONDecodeError as exc:
+    path = Path(path)
+    if not path.exists():
+        raise TableError(f"participants sidecar {path}: file not found; fix participants_sidecar in the spec")
+    if path.is_dir():
         raise TableError(
-            f"participants sidecar {path} line {exc.lineno}, column {exc.colno}: invalid JSON ({exc.msg}); "
-            "fix the syntax"
-        ) from None
+            f"participants sidecar {path}: expected a JSON file (participants.json), found a folder; "
+            "fix participants_sidecar in the spec"
+        )
+    raw = read_json(path, "participants sidecar", TableError, numbers=False)
     out: dict[str, tuple[str, ...]] = {}
     if isinstance(raw, dict):
         for col, desc in raw.items():
@@ -285,6 +285,12 @@ def _left_out(spec: ModelSpec, table: pd.DataFrame, needed: Sequence[str],
                 )
             )
             continue
+        empty = next((c for c in needed if rec[c] == ""), None)
+        if empty is not None:
+            raise TableError(
+                f"{spec.participants.name} row {row}, column {empty!r}: the field is empty; "
+                "write n/a for a missing value (BIDS) or fill it in"
+            )
         missing = [c for c in needed if rec[c] in MISSING]
         if missing:
             what = ", ".join(missing)

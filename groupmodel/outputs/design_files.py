@@ -5,19 +5,53 @@
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import pandas as pd
 
 from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation
 from ..model.checks import cell_counts_by_term
 from .folder import OutputFolder
+from .numbers import tidy
 from .provenance import provenance
 
 if TYPE_CHECKING:
     from ..model.assembly import Model
+    from ..model.hypotheses import Hypothesis
+
+
+def written_hypothesis(h: Hypothesis) -> Hypothesis:
+    """The hypothesis with its weights (over columns and over cells) as written: round-off noise off each row."""
+    cell_w = None if h.cell_weights is None else tidy(h.cell_weights, axis=1)
+    return dataclasses.replace(h, weights=tidy(h.weights, axis=1), cell_weights=cell_w)
+
+
+def design_frame(model: Model) -> pd.DataFrame:
+    """design.tsv: participant_id and the design columns, round-off noise off each column."""
+    frame = model.design_frame()
+    names = model.design.column_names
+    frame[names] = tidy(frame[names].to_numpy(dtype=float), axis=0)
+    return frame
+
+
+def contrasts_frame(model: Model) -> pd.DataFrame:
+    """contrasts.tsv: one line per hypothesis row, round-off noise off each row."""
+    frame = model.contrasts_frame()
+    names = model.design.column_names
+    if len(frame):
+        frame[names] = tidy(frame[names].to_numpy(dtype=float), axis=1)
+    return frame
+
+
+def _factor_dict(coding: Any) -> dict[str, Any]:
+    out = coding.as_dict()
+    if out.get("matrix") is not None:
+        out["matrix"] = tidy(out["matrix"], axis=0).tolist()
+    return out
 
 
 def design_sidecar(model: Model) -> dict[str, Any]:
@@ -30,7 +64,7 @@ def design_sidecar(model: Model) -> dict[str, Any]:
         "participants": str(model.sample.source),
         "n_observations": d.n_observations,
         "columns": d.column_sidecar(),
-        "factors": {f: c.as_dict() for f, c in d.factors.items()},
+        "factors": {f: _factor_dict(c) for f, c in d.factors.items()},
         "covariates": {c: v.as_dict() for c, v in d.covariates.items()},
         "intercept": d.intercept,
         "terms": [":".join(t) if t else "intercept" for t in d.terms],
@@ -44,7 +78,7 @@ def design_sidecar(model: Model) -> dict[str, Any]:
         "cell_counts": cell_counts_by_term(d),
         "cells": [
             {"cell": dict(zip(d.factors, c, strict=True)), "count": int(k), "design_row": r.tolist()}
-            for c, k, r in zip(d.cells, d.cell_counts, d.cell_rows(), strict=True)
+            for c, k, r in zip(d.cells, d.cell_counts, tidy(d.cell_rows(), axis=0), strict=True)
         ],
         "excluded": [e.as_dict() for e in model.sample.exclusions],
         "findings": [f.as_dict() for f in model.findings],
@@ -56,15 +90,15 @@ def contrasts_sidecar(model: Model) -> dict[str, Any]:
     return {
         **provenance(),
         "columns": model.design.column_names,
-        "hypotheses": {name: h.as_dict(model.design) for name, h in model.hypotheses.items()},
+        "hypotheses": {name: written_hypothesis(h).as_dict(model.design) for name, h in model.hypotheses.items()},
     }
 
 
 def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[str]:
     """Write design and contrast files into an open output folder; returns the file names."""
-    out.write_tsv("design.tsv", model.design_frame())
+    out.write_tsv("design.tsv", design_frame(model))
     out.write_json("design.json", design_sidecar(model))
-    out.write_tsv("contrasts.tsv", model.contrasts_frame())
+    out.write_tsv("contrasts.tsv", contrasts_frame(model))
     out.write_json("contrasts.json", contrasts_sidecar(model))
     names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
     if pictures:
@@ -76,10 +110,10 @@ def draw_pictures(model: Model, out: OutputFolder) -> list[str]:
     """design.png and contrasts.png (imports matplotlib); returns the file names."""
     from .figures import plot_contrasts, plot_design
 
-    plot_design(out.file("design.png"), model.design.matrix, model.design.column_names,
+    plot_design(out.file("design.png"), tidy(model.design.matrix, axis=0), model.design.column_names,
                 model.design.participant_ids)
     rows, labels, tests = model.contrast_rows()
-    plot_contrasts(out.file("contrasts.png"), rows, labels, model.design.column_names, tests)
+    plot_contrasts(out.file("contrasts.png"), tidy(rows, axis=1), labels, model.design.column_names, tests)
     return ["design.png", "contrasts.png"]
 
 

@@ -9,7 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .design_files import PictureJob, write_model
+from .design_files import PictureJob, write_model, written_hypothesis
 from .folder import OutputFolder
 from .provenance import provenance
 
@@ -84,16 +84,27 @@ CLUSTER_COLUMNS = {
     "size": "voxels (or vertices)",
     "peak_stat": "most extreme statistic in the cluster's direction",
     "peak_index": "position of the peak in the mask's voxel order",
-    "peak_x, peak_y, peak_z": "peak coordinates in mm (from the image affine)",
-    "com_x, com_y, com_z": "unweighted centre of mass in mm",
+    "peak_i, peak_j, peak_k": "voxel indices of the peak in the image, counted from 0 (volumes only)",
+    "peak_x_mm, peak_y_mm, peak_z_mm": "peak coordinates in mm (from the image affine)",
+    "com_x_mm, com_y_mm, com_z_mm": "unweighted centre of mass in mm",
     "p_fwe": "family-wise error p",
 }
+#: The keys of a hypothesis's weights over cells (contrasts.json) that map sidecars carry too.
+CELL_WEIGHT_KEYS = ("weights_over_cells", "slope_weights_over_cells", "slope_of")
 _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effect": "estimate", "se": "estimate",
             "mlog10p": "none", "residual_variance": "estimate"}
 
 
 def _map_name(grid: Any, stem: str) -> str:
-    return stem + (".gii" if grid.kind == "gifti" else ".nii.gz")
+    """``stem.nii.gz`` for volumes; ``stem.func.gii`` for surface data (the GIFTI name of data over vertices)."""
+    return stem + (".func.gii" if grid.kind == "gifti" else ".nii.gz")
+
+
+def _in_words_of(grid: Any, text: str) -> str:
+    """A note about voxels said of vertices for surface data."""
+    if grid.kind != "gifti":
+        return text
+    return text.replace("voxels", "vertices").replace("voxel's", "vertex's").replace("voxel", "vertex")
 
 
 def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
@@ -101,10 +112,13 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
     out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
     if name is not None:
         h = fit.model.hypotheses[name]
+        written = written_hypothesis(h).as_dict(fit.model.design)
         out.update({
             "test": h.test,
             "statement": h.statement,
-            "weights": {c: h.weights[:, j].tolist() for j, c in enumerate(fit.model.design.column_names)},
+            "weights": written["weights"],
+            # over cell means (over cell slopes for a slope), as in contrasts.json
+            **{k: written[k] for k in CELL_WEIGHT_KEYS if k in written},
             "df1": h.n_rows,
             "df2": fit.df_resid,
             "tail": h.tail,
@@ -139,7 +153,7 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str
         # the sidecar is named after the map's stem: hypothesis names may contain dots
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
-            extra["correction"] = CORRECTION_NOTES[stat]
+            extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
         o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
         written.append(fname)
     for kind, table in fit.tables.get(h.name, {}).items():
@@ -147,7 +161,7 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str
         o.write_tsv(tname, table)
         o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
             fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
-            clusters=CLUSTER_KINDS[kind]))
+            clusters=_in_words_of(fit.grid, CLUSTER_KINDS[kind])))
         written.append(tname)
     return written
 
@@ -171,9 +185,24 @@ def _write_summary(o: OutputFolder, fit: VoxelFit) -> list[str]:
         "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
         "df_resid": fit.df_resid, "mask": fit.mask_report,
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
-        "warnings": fit.warnings, "inference": fit.inference,
+        "warnings": fit.warnings, "inference": _inference_record(fit),
     })
     return ["summary.tsv", "summary.json"]
+
+
+def _inference_record(fit: VoxelFit) -> dict[str, Any] | None:
+    """The inference settings, with the method each hypothesis was tested with (never ``auto``) when
+    permutations ran; the setting asked for is kept as ``method_setting``."""
+    if fit.inference is None or not fit.records:
+        return fit.inference
+    out: dict[str, Any] = {}
+    for key, value in fit.inference.items():
+        if key == "method":
+            out["method"] = {name: rec["method"] for name, rec in fit.records.items()}
+            out["method_setting"] = value
+        else:
+            out[key] = value
+    return out
 
 
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,

@@ -5,6 +5,12 @@ requested one and renamed into place only when every file has been written,
 so an interrupted or failed run leaves nothing half-written.  An existing,
 non-empty output folder is refused unless ``force`` is set.
 
+A run killed outright (``kill -9``, a power cut) cannot clean up: its hidden
+folder stays.  Each hidden folder therefore holds a small owner file (process
+id, host, process start time), and the next run into the same place removes
+those whose process is gone; a folder of a live run, or of another host, is
+never touched.
+
 This module knows nothing about statistics.
 """
 
@@ -14,7 +20,9 @@ import json
 import math
 import os
 import shutil
+import socket
 import tempfile
+from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -55,6 +63,83 @@ def format_tsv(frame: pd.DataFrame, float_format: str | None = None) -> str:
     return frame.to_csv(sep="\t", index=False, na_rep=NA, float_format=float_format, lineterminator="\n")
 
 
+#: The owner file inside a hidden folder being written (removed before the folder is renamed into place).
+OWNER_FILE = ".groupmodel-owner.json"
+#: Prefixes of the hidden folders beside ``--out`` (after ``.<name>``): files being written, a replaced folder.
+HIDDEN_KINDS = (".partial-", ".old-")
+
+
+def _process_start(pid: int) -> str | None:
+    """When process ``pid`` started (clock ticks since boot, Linux), to tell it from a later one with the same
+    id; None where /proc does not say."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    fields = stat.rsplit(")", 1)[1].split()
+    return fields[19] if len(fields) > 19 else None
+
+
+def _process_gone(pid: int, started: str | None) -> bool:
+    """Whether process ``pid`` (started at ``started``) has ended (or its id now names another process)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:  # alive, another user's
+        return False
+    except OSError:
+        return False
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (OSError, IndexError):
+        return False
+    if state in ("Z", "X"):  # ended, not yet reaped by its parent
+        return True
+    now = _process_start(pid)
+    return started is not None and now is not None and now != started
+
+
+def _owner() -> dict[str, Any]:
+    pid = os.getpid()
+    return {"pid": pid, "host": socket.gethostname(), "process_start": _process_start(pid)}
+
+
+@dataclass(frozen=True)
+class StaleFolder:
+    """A hidden folder left beside ``--out`` by a run that was killed, removed by a later run."""
+
+    path: Path
+    pid: int
+
+
+def remove_stale_folders(target: Path) -> tuple[StaleFolder, ...]:
+    """Remove the hidden folders beside ``target`` left by killed runs of this host (their process is gone).
+
+    Only folders named ``.<target name>.partial-*`` or ``.<target name>.old-*`` with an owner file naming this
+    host are considered; a folder of a live process, of another host, or without an owner file is left alone.
+    """
+    parent = target.parent if str(target.parent) else Path(".")
+    removed: list[StaleFolder] = []
+    try:
+        candidates = sorted(p for kind in HIDDEN_KINDS for p in parent.glob(f".{target.name}{kind}*"))
+    except OSError:
+        return ()
+    host = socket.gethostname()
+    for folder in candidates:
+        try:
+            owner = json.loads((folder / OWNER_FILE).read_text(encoding="utf-8"))
+            pid, started = int(owner["pid"]), owner.get("process_start")
+            if owner.get("host") != host or pid == os.getpid() or not _process_gone(pid, started):
+                continue
+        except (OSError, ValueError, KeyError, TypeError, AttributeError):
+            continue  # not ours to judge
+        shutil.rmtree(folder, ignore_errors=True)
+        if not folder.exists():
+            removed.append(StaleFolder(folder, pid))
+    return tuple(removed)
+
+
 class OutputFolder:
     """A folder whose contents appear all at once.
 
@@ -72,6 +157,11 @@ class OutputFolder:
         Replace an existing non-empty folder.  Without it such a folder is an
         :class:`~groupmodel.errors.OutputError` raised at construction, before
         any work is done.
+
+    Attributes
+    ----------
+    removed : tuple of StaleFolder
+        Hidden folders of earlier, killed runs into the same place, removed at construction.
     """
 
     def __init__(self, target: Path | str, force: bool = False) -> None:
@@ -92,6 +182,7 @@ class OutputFolder:
             raise OutputError(f"--out {self.target}: {parent} is a file, not a folder; choose another path")
         if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
             raise OutputError(f"--out {self.target}: the folder {parent} is not writable; choose another path")
+        self.removed = remove_stale_folders(self.target)
         self.path: Path | None = None
 
     def __enter__(self) -> OutputFolder:
@@ -99,6 +190,7 @@ class OutputFolder:
         try:
             parent.mkdir(parents=True, exist_ok=True)
             self.path = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.partial-", dir=parent))
+            (self.path / OWNER_FILE).write_text(json.dumps(_owner()), encoding="utf-8")
         except OSError as exc:
             raise OutputError(
                 f"--out {self.target}: cannot create a folder there ({exc.strerror}); choose another path"
@@ -116,8 +208,10 @@ class OutputFolder:
             shutil.rmtree(self.path, ignore_errors=True)
             return
         try:
+            (self.path / OWNER_FILE).unlink()
             if self.target.exists():
                 old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-", dir=self.path.parent))
+                (old / OWNER_FILE).write_text(json.dumps(_owner()), encoding="utf-8")
                 os.rename(self.target, old / "previous")
                 os.rename(self.path, self.target)
                 shutil.rmtree(old, ignore_errors=True)

@@ -8,8 +8,13 @@ futures with ``result()``) fits the same interface as one more executor.
 from __future__ import annotations
 
 import multiprocessing
-from collections.abc import Callable, Iterable
+import os
+import signal
+import threading
+import time
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from contextlib import contextmanager
 from typing import Any, Protocol, TypeVar
 
 __all__ = ["Executor", "InlineExecutor", "ProcessExecutor", "ThreadExecutor", "thread_executor"]
@@ -84,8 +89,52 @@ class ThreadExecutor(_Base):
         self._pool.shutdown(wait=True, cancel_futures=cancel)
 
 
+def _quiet_worker(initializer: Callable[..., None] | None, *initargs: Any) -> None:
+    """First thing in a worker process: ignore Ctrl-C (the parent handles it and shuts the pool down), then
+    let signals through again and run the caller's initializer."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # also discards a Ctrl-C held back while the worker started
+    if hasattr(signal, "pthread_sigmask"):
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), name="groupmodel-parent", daemon=True).start()
+    if initializer is not None:
+        initializer(*initargs)
+
+
+def _exit_with_parent(parent: int) -> None:
+    """End this worker when its parent is gone (killed, say): the pool would never tell it to stop."""
+    while os.getppid() == parent:
+        time.sleep(0.5)
+    os._exit(0)
+
+
+def _noop() -> None:
+    return None
+
+
+@contextmanager
+def _sigint_held() -> Iterator[None]:
+    """Ctrl-C held back (blocked, not lost) in this thread while worker processes start.
+
+    A child inherits the blocked signal through fork and exec, so a Ctrl-C while it imports cannot print a
+    traceback there; :func:`_quiet_worker` then ignores it for good.  In the parent the signal stays pending
+    (or reaches another thread) and raises KeyboardInterrupt as usual once it is let through.
+    """
+    if not hasattr(signal, "pthread_sigmask"):  # Windows: no signal masks (and no process-group Ctrl-C)
+        yield
+        return
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
+
+
 class ProcessExecutor(_Base):
     """A pool of fresh worker processes ("spawn": no inherited state, safe with threads and BLAS).
+
+    The workers ignore Ctrl-C (SIGINT, which a terminal sends to the whole process group): the parent gets
+    it, and closing the executor shuts them down; they start at once, with Ctrl-C held back in the
+    parent while they are created.
 
     Parameters
     ----------
@@ -100,9 +149,16 @@ class ProcessExecutor(_Base):
         self._pool = ProcessPoolExecutor(
             max_workers=self.workers,
             mp_context=multiprocessing.get_context("spawn"),
-            initializer=initializer,
-            initargs=initargs,
+            initializer=_quiet_worker,
+            initargs=(initializer, *initargs),
         )
+        try:
+            with _sigint_held():  # the pool starts one worker per task submitted while none is idle
+                for _ in range(self.workers):
+                    self._pool.submit(_noop)
+        except BaseException:  # Ctrl-C while they start: stop the ones started
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            raise
 
     def submit(self, fn: Callable[..., T], /, *args: Any) -> Future[T]:
         return self._pool.submit(fn, *args)

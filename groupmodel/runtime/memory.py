@@ -7,7 +7,10 @@ residualised data the engine keeps and for the whole statistic maps of TFCE and 
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+
+from ..errors import InputError
 
 #: Share of the budget given to the image data matrix.
 DATA_SHARE = 0.6
@@ -22,6 +25,14 @@ class MemoryBudget:
     """A memory budget in bytes and its shares."""
 
     total: int
+
+    def __post_init__(self) -> None:
+        ok = isinstance(self.total, int | float) and not isinstance(self.total, bool) and math.isfinite(self.total)
+        if not ok or self.total < 1:
+            raise InputError(
+                f"the memory budget (--memory, memory_bytes) must be a positive number of bytes; got {self.total!r}; "
+                "give e.g. --memory 2GB"
+            )
 
     @property
     def data_bytes(self) -> int:

@@ -159,8 +159,9 @@ def test_exit_codes(tmp_path: Path, table: Path, capsys: pytest.CaptureFixture[s
     good = GALLERY / "correct_effect"
     base = ["check", "--participants", str(good / "participants.tsv"), "--factors", "diet,sleep"]
     assert main(base + ["--design", str(good / "design.txt"), "--contrasts", str(good / "contrasts.txt")]) == 0
-    bad = GALLERY / "rank_deficient"
-    assert main(["check", "--design", str(bad / "design.txt"), "--participants", str(bad / "participants.tsv")]) == 1
+    bad = GALLERY / "not_estimable"
+    assert main(["check", "--design", str(bad / "design.txt"), "--contrasts", str(bad / "contrasts.txt"),
+                 "--participants", str(bad / "participants.tsv")]) == 1
     assert main(base + ["--design", str(tmp_path / "missing.txt")]) == 2
     assert "groupmodel: error: --design" in capsys.readouterr().err
     assert main(base[:3] + ["--factors", "diet,mood", "--design", str(good / "design.txt")]) == 2

@@ -160,16 +160,20 @@ def test_out_is_a_file(tmp_path: Path) -> None:
     assert target.read_text() == "a file"
 
 
-def test_rank_deficient_design_names_dependent_columns(tmp_path: Path) -> None:
-    # scanner is the same split as site: the scanner column is the site column under another name.
+def test_hypothesis_on_confounded_factors_names_the_dependent_columns(tmp_path: Path) -> None:
+    # scanner is the same split as site: the scanner column is the site column under another name, so the
+    # design is rank deficient (a warning) and a site effect cannot be told from a scanner effect (an error).
     spec = {**SPEC, "factors": {"site": {"coding": "treatment"}, "scanner": {"coding": "treatment"}},
-            "terms": ["site", "scanner"], "hypotheses": {}}
-    fails(tmp_path, study(tmp_path, spec=spec), 1, "rank 2 with 3 columns", "column scanner=S1 equals site=south")
+            "terms": ["site", "scanner"], "hypotheses": {"site": {"main": "site"}}}
+    fails(tmp_path, study(tmp_path, spec=spec), 1, "hypothesis site is not estimable",
+          "no participant has site=north, scanner=S1; site=south, scanner=N1",
+          "estimable instead: the same hypothesis in a model without the term scanner")
 
 
-def test_rank_deficient_effect_coding_in_words(tmp_path: Path) -> None:
-    spec = {**SPEC, "factors": {"site": {}, "scanner": {}}, "terms": ["site", "scanner"], "hypotheses": {}}
-    fails(tmp_path, study(tmp_path, spec=spec), 1, "column scanner=N1 equals site=north")
+def test_design_without_residual_df(tmp_path: Path) -> None:
+    # Six participants, six distinct ages, age as a factor with an intercept: rank 6, no residual df.
+    spec = {**SPEC, "factors": {"age": {}}, "covariates": {}, "terms": ["age"], "hypotheses": {}}
+    fails(tmp_path, study(tmp_path, spec=spec), 1, "no residual degrees of freedom (n = 6, rank = 6)")
 
 
 def _empty_cell_study(tmp_path: Path, hypotheses: dict) -> Path:
@@ -186,6 +190,27 @@ def test_non_estimable_hypothesis(tmp_path: Path) -> None:
     err = fails(tmp_path, path, 1, "hypothesis group is not estimable",
                 "no participant has group=control, site=north")
     assert "hypothesis patients" not in err  # the estimable one is not blamed
+
+
+@pytest.mark.parametrize("at, code, fragments", [
+    ({"site": ["north", "west"]}, 2, ["$.hypotheses.h.at.site[1]", "'west' is not a level of site"]),
+    ({"site": ["north", 3]}, 2, ["$.hypotheses.h.at.site[1]", "not of type 'string'"]),
+    ({"site": []}, 2, ["$.hypotheses.h.at.site", "non-empty"]),
+    ({"site": ["north", "north"]}, 2, ["$.hypotheses.h.at.site", "non-unique"]),
+    ({"site": True}, 2, ["$.hypotheses.h.at.site", "a factor level (text), a list of levels, or a covariate value"]),
+    ({"age": ["north"]}, 2, ["$.hypotheses.h.at.age", "expected a number for covariate age, found ['north']"]),
+    ({"group": "patient"}, 2, ["$.hypotheses.h.at.group", "group is the factor this compare hypothesis is about"]),
+])
+def test_bad_at(tmp_path: Path, at: dict, code: int, fragments: list[str]) -> None:
+    spec = {**SPEC, "factors": {"group": {}, "site": {}}, "terms": ["group", "site", "age"],
+            "hypotheses": {"h": {"compare": {"group": ["patient", "control"]}, "at": at}}}
+    fails(tmp_path, study(tmp_path, spec=spec), code, *fragments)
+
+
+def test_main_effect_held_at_one_of_its_own_levels(tmp_path: Path) -> None:
+    spec = {**SPEC, "hypotheses": {"h": {"main": "group", "at": {"group": "patient"}}}}
+    fails(tmp_path, study(tmp_path, spec=spec), 2, "$.hypotheses.h.at.group",
+          "give a list of at least two of its levels, or remove it")
 
 
 def test_hypothesis_that_vanishes(tmp_path: Path) -> None:

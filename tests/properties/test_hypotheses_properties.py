@@ -59,7 +59,7 @@ def statistics(design: Design, hypotheses: dict) -> dict[str, tuple[float, float
     """(statistic, estimate or nan) of every hypothesis, by groupmodel.ols."""
     hyps = build_hypotheses(design, hypotheses)
     assert all(h.estimable for h in hyps.values())
-    tests = [Test(h.name, h.weights, h.test, h.tail) for h in hyps.values()]
+    tests = [Test(h.name, h.weights, h.test, h.test_tail) for h in hyps.values()]
     assert design.sample is not None
     y = design.sample.data["y"].to_numpy(float)[:, None]
     result = fit_chunk(prepare(design.matrix, tests), y)

@@ -18,14 +18,15 @@ from scipy import ndimage, stats
 
 from groupmodel.errors import InputError
 from groupmodel.inference.driver import run_permutations, run_tests
+from groupmodel.inference.freedman_lane import plan_contrast
 from groupmodel.inference.graph import grid_adjacency
 from groupmodel.inference.kernel import tile_width
 from groupmodel.inference.multiple import fdr_bh
 from groupmodel.inference.rearrangements import count_rearrangements, permutation_set
 from groupmodel.inference.results import ClusterResult, TfceResult
 from groupmodel.inference.settings import ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
-from groupmodel.inference.tfce import TfceParams, tfce
-from groupmodel.inference.whole_maps import MapWorkers
+from groupmodel.inference.tfce import TfceParams, default_step, tfce
+from groupmodel.inference.whole_maps import MapWorkers, observe_maps
 
 SETTINGS = settings(max_examples=40, deadline=None)
 
@@ -150,11 +151,30 @@ def test_results_do_not_depend_on_chunk_size_or_memmap(tmp_path):
     ref = results[0]
     for i, r in enumerate(results[1:]):
         data_ref = ref if i < 2 else run_permutations(test, Y.astype(np.float32), perms, maps, Execution(batch_size=50))
+        # Exact where exactness is the claim: p values and cluster sizes are counts (with a tie tolerance of
+        # 100 ulp), and the recorded TFCE step is rounded to 6 significant digits (default_step).
         for name in ("p_perm", "p_fwe", "p_tfce_fwe", "p_cluster_fwe", "cluster_max_null"):
             np.testing.assert_array_equal(_get(r, name), _get(data_ref, name), err_msg=name)
+        assert _get(r, "tfce_params") == _get(data_ref, "tfce_params")
+        # Float statistics to a tolerance: the last bits of a BLAS product depend on its shape.
         for name in ("stat", "max_null", "tfce", "tfce_max_null"):
             np.testing.assert_allclose(_get(r, name), _get(data_ref, name), rtol=1e-12, err_msg=name)
-        assert _get(r, "tfce_params") == _get(data_ref, "tfce_params")
+
+
+def test_tfce_step_does_not_depend_on_the_last_bits_of_the_maximum():
+    # The case: maxima 10.543769596335156 and 10.543769596335176 (a few ulp apart, from two chunk
+    # sizes) gave steps that differed in the last bits; rounded to 6 significant digits they are one step.
+    X, Y, adj, V = _grid_study()
+    plan = plan_contrast(X, np.array([[0.0, 1.0, 0.0]]))
+    stat = np.linspace(-3.0, 3.0, V)
+    top = 10.543769596335156
+    steps = []
+    for ulps in (0, 1, 9, -1):
+        other = stat.copy()
+        other[V // 2] = top + ulps * np.spacing(top)
+        steps.append(observe_maps(other, plan, MapSettings(adjacency=adj, tfce=TfceParams())).spec.tfce.dh)
+    assert steps == [0.105438] * 4
+    assert default_step(0.0) == default_step(float("nan")) == 0.1  # no positive value: a fixed step
 
 
 def test_results_do_not_depend_on_thread_count():

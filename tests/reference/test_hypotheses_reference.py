@@ -178,8 +178,10 @@ TWO_WAY_F = {"main_A": {"main": "A"}, "main_B": {"main": "B"}, "A_by_B": {"inter
 def two_way_cell_weights(cells: pd.DataFrame, counts: np.ndarray) -> dict[str, np.ndarray]:
     """The t hypotheses above as cell weights, written by hand from their definitions."""
     m = lambda **kw: marginal(cells, **kw)  # noqa: E731
-    lin = np.array([-1.0, 0.0, 1.0]) / math.sqrt(2)  # R contr.poly(3), REFERENCES.md
-    quad = np.array([1.0, -2.0, 1.0]) / math.sqrt(6)
+    # R contr.poly(3) (REFERENCES.md) in units of the scores 1, 2, 3: the least-squares slope of the three
+    # means, and the score^2 coefficient of the quadratic through them (numpy.polyfit gives the same)
+    lin = np.array([-1.0, 0.0, 1.0]) / 2
+    quad = np.array([1.0, -2.0, 1.0]) / 2
     return {
         "a1_vs_a3": m(A="a1") - m(A="a3"),
         "a12_vs_a3": (m(A="a1") + m(A="a2")) / 2 - m(A="a3"),
@@ -256,7 +258,8 @@ def test_three_way_every_coding_equals_statsmodels(tmp_path: Path, unbalanced: b
         "a1_vs_a2_at_d3": ({"compare": {"A": ["a1", "a2"]}, "at": {"D": "d3"}}, m(A="a1", D="d3") - m(A="a2", D="d3")),
         "b1_vs_b2": ({"compare": {"B": ["b1", "b2"]}, "tail": "less"}, m(B="b1") - m(B="b2")),
         "mean_a3_b2_d1": ({"mean": {"A": "a3", "B": "b2", "D": "d1"}}, m(A="a3", B="b2", D="d1")),
-        "linear_d": ({"trend": "D"}, (m(D="d3") - m(D="d1")) / math.sqrt(2)),  # contr.poly(3) linear
+        # least-squares slope per unit of the scores 1, 2, 3 (contr.poly(3) linear / sqrt(2))
+        "linear_d": ({"trend": "D"}, (m(D="d3") - m(D="d1")) / 2),
     }
     hyps = {k: v[0] for k, v in THREE_WAY_F.items()} | {k: v[0] for k, v in t_hyps.items()}
     for coding in CODINGS:

@@ -176,9 +176,14 @@ def test_cluster_table_geometry():
     # scipy.ndimage.center_of_mass of the binary cluster, mapped through the affine.
     com_vox = ndimage.center_of_mass(img > 1.0)
     com_mm = affine[:3, :3] @ np.array(com_vox) + affine[:3, 3]
-    np.testing.assert_allclose(table.loc[0, ["com_x", "com_y", "com_z"]].to_numpy(float), com_mm)
+    np.testing.assert_allclose(table.loc[0, ["com_x_mm", "com_y_mm", "com_z_mm"]].to_numpy(float), com_mm)
     peak_mm = affine[:3, :3] @ np.array([3, 4, 2]) + affine[:3, 3]
-    np.testing.assert_allclose(table.loc[0, ["peak_x", "peak_y", "peak_z"]].to_numpy(float), peak_mm)
+    np.testing.assert_allclose(table.loc[0, ["peak_x_mm", "peak_y_mm", "peak_z_mm"]].to_numpy(float), peak_mm)
+    # the peak's voxel indices, as numpy indexes the image (img[3, 4, 2] is the peak)
+    assert table.loc[0, ["peak_i", "peak_j", "peak_k"]].tolist() == [3, 4, 2]
+    assert img[tuple(table.loc[1, ["peak_i", "peak_j", "peak_k"]])] == -2.5
+    assert table.columns[:8].tolist() == ["cluster", "sign", "size", "peak_stat", "peak_index", "peak_i", "peak_j",
+                                          "peak_k"]
     assert table.loc[0, "peak_stat"] == 3.5 and table.loc[1, "peak_stat"] == -2.5
     assert table["p_fwe"].tolist() == [0.01, 0.2]
 

@@ -86,6 +86,9 @@ def test_permutation_p_bounds_and_records(reference_fit) -> None:
         # Reference: scipy.stats.false_discovery_control (Benjamini-Hochberg) on the parametric p map.
         np.testing.assert_allclose(maps["p_fdr"], stats.false_discovery_control(maps["p"], method="bh"))
         assert "tfce" in rec and rec["tfce"]["E"] == 0.5 and rec["tfce"]["H"] == 2.0 and rec["tfce"]["dh"] > 0
+        # The step derived from the observed maximum is recorded with its rule, to 6 significant digits.
+        assert rec["tfce"]["dh_from"] == "largest observed value / 100, rounded to 6 significant digits"
+        assert rec["tfce"]["dh"] == float(f"{rec['tfce']['dh']:.6g}")
         assert rec["cluster"]["z_threshold"] == 2.3
 
 
@@ -107,7 +110,9 @@ def test_cli_writes_permutation_maps_sidecars_and_cluster_tables(study, tmp_path
     code = main(["fit", str(study), "--out", str(out), "--permutations", "30", "--seed", "7", "--tfce",
                  "--cluster-threshold", "2.3"])
     assert code == 0
-    assert "permutation inference: 30 rearrangements" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert "permutation inference: seed 7, Freedman-Lane" in printed
+    assert "  group: row permutation, 30 rearrangements" in printed
     side = json.loads((out / "group_p_tfce_fwe.json").read_text())
     for key in ("hypothesis", "statistic", "method", "permutations", "exhaustive", "seed", "tfce", "df1", "df2"):
         assert key in side, key
@@ -138,10 +143,11 @@ def test_blocks_column_recorded_and_missing_block_refused(study, tmp_path) -> No
 
 @pytest.mark.parametrize("option", ["--threads", "--jobs"])
 def test_zero_threads_or_jobs_is_a_usage_error(study, tmp_path, capsys, option) -> None:
-    code = main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
-    assert code == 2
+    with pytest.raises(SystemExit) as exc:  # refused by the argument parser, before any work
+        main(["fit", str(study), "--out", str(tmp_path / "x"), "--permutations", "10", option, "0"])
+    assert exc.value.code == 2
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and f"{option} must be a whole number >= 1; got 0" in err
+    assert err.count("\n") == 1 and f"argument {option}: expected a whole number >= 1, found 0" in err
     assert not (tmp_path / "x").exists()
 
 

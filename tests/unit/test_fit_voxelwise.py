@@ -276,7 +276,7 @@ def test_gifti_surface_equals_volume(tmp_path: Path, base_fit: VoxelFit) -> None
     assert_same_fit(_as_volume(fit), base_fit, rtol=0.0)
     out = tmp_path / "surface_out"
     write_voxel_fit(fit, out)
-    img = nib.load(out / "b_vs_a_t.gii")
+    img = nib.load(out / "b_vs_a_t.func.gii")
     assert len(img.darrays) == 1
     values = img.darrays[0].data
     assert values.dtype == np.float32

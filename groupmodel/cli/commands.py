@@ -45,7 +45,7 @@ def _fit_table(args: argparse.Namespace) -> int:
     print_model_report(fit.model)
     print()
     print(fit.format())
-    write_table_fit(fit, args.out, force=args.force)
+    write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
     print(f"wrote {args.out}/results.tsv")
     return 0
 
@@ -61,7 +61,7 @@ def _fit_images(args: argparse.Namespace) -> int:
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
                      inference=options)
     print_voxel_fit(fit, options)
-    write_voxel_fit(fit, args.out, force=args.force)
+    write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
     print(f"wrote {args.out}")
     print_disclaimer()
     return 0

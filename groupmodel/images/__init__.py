@@ -26,9 +26,11 @@ Modules (imports point down the list)::
     grid       Grid, file kinds, the short texts messages use for shapes and affines
     sources    ImageRef, ImageSource, resolve_images (a path pattern, a column of paths, one 4-D file)
     headers    header facts (NIfTI header, GIFTI XML attributes), check_images and its comparisons
+    fastread   .nii.gz files read whole and decompressed in threads (isal or zlib); the fast gzip writer
     reading    the values of one image; every image of a source exactly once
     mask       load_mask
-    spill      the spill file, SpillReader, release_pages, in-place compaction
+    packed     rows that keep only the candidates in play, and their in-place compaction
+    spill      the spill file, SpillReader, release_pages, the compaction of RAM and spilled buffers
     masked     MaskedData (the loaded matrix, in chunks)
     loading    load_masked, storage_dtype, load_overhead_bytes, chunk_size_for
     writing    unmask, write_map, write_mask

@@ -1,8 +1,8 @@
 """Reading every image once into the ``(n_obs, n_in_mask)`` data matrix, within a memory budget.
 
-:func:`load_masked` reads each image's candidate voxels (the user mask, or the whole grid) into one flat
-buffer -- in RAM, or in a spill file (:mod:`.spill`) when the budget is short -- while running finite and
-nonzero masks are kept; the buffer is then compacted in place to the analysis mask.
+:func:`load_masked` reads each image's candidate voxels (the user mask, or the whole grid) still in play into
+one flat buffer -- in RAM, or in a spill file (:mod:`.spill`) when the budget is short -- while running finite
+and nonzero masks are kept; the packed rows are then compacted in place to the analysis mask (:mod:`.packed`).
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ from .grid import Grid
 from .headers import check_images
 from .mask import load_mask
 from .masked import Exclusions, MaskedData
+from .packed import NEVER, plan_rows
 from .reading import _iter_arrays
 from .sources import ImageRef, ImageSource, _who
 from .spill import _compact, _new_spill, release_pages
@@ -33,8 +34,9 @@ LOAD_OVERHEAD_IMAGES = 6
 def load_overhead_bytes(grid: Grid) -> int:
     """Working memory :func:`load_masked` may use beyond ``memory_bytes``.
 
-    ``LOAD_OVERHEAD_IMAGES`` float64 single images (the image being read, nibabel's raw and scaled copies,
-    the running finite/nonzero masks and index arrays) plus ``LOAD_OVERHEAD_FIXED``.
+    ``LOAD_OVERHEAD_IMAGES`` float64 single images (the image in use and the two being read in threads, each
+    with nibabel's raw and scaled copies, the running finite/nonzero masks, the first-nonzero/first-NaN
+    records of :mod:`.packed` and the index arrays of the compaction) plus ``LOAD_OVERHEAD_FIXED``.
     """
     return LOAD_OVERHEAD_IMAGES * 8 * grid.n_voxels + LOAD_OVERHEAD_FIXED
 
@@ -88,10 +90,12 @@ def load_masked(
     voxels that are NaN/inf in any image (counted, never filled with 0) and those that are zero in every
     image.  Without a user mask that is the usual default: finite in every image and not zero in all.
 
-    Memory.  Every image's candidate voxels (the whole grid without a user mask) go in one pass into a
-    buffer -- in RAM when ``n_obs * n_candidates * 4 <= memory_bytes``, else a memmap in a temporary folder
-    under ``workdir`` -- while the finite/nonzero masks accumulate; the buffer is then compacted to the mask
-    in place, row by row.  A spilled buffer whose compacted matrix fits in ``memory_bytes`` is copied back
+    Memory.  Every image's candidate voxels (the whole grid without a user mask) still in play -- finite in
+    every image so far and nonzero in one (:mod:`.packed`) -- go in one pass into a buffer reserved for all
+    candidates -- in RAM when ``n_obs * n_candidates * 4 <= memory_bytes``, else a memmap in a temporary
+    folder under ``workdir`` -- while the finite/nonzero masks accumulate; only the part holding values is
+    touched (a zero background never is).  The packed rows are then compacted to the mask in place.  A
+    spilled buffer whose compacted matrix fits in ``memory_bytes`` is copied back
     into RAM and the spill removed.  Beyond ``memory_bytes`` the work needs at most
     :func:`load_overhead_bytes` (six float64 single images plus 16 MiB), for any ``n_obs``.
 
@@ -136,13 +140,16 @@ def load_masked(
     # that data stored with more digits (e.g. NIST StRD values) reach the engine unrounded.
     spill_dir, buf = _allocate(n * n_cand, storage_dtype(grid), memory_bytes, workdir)
     try:
-        tally = _read_all(source, buf, cand, spill_dir is not None, progress)
+        tally, record = _read_all(source, buf, cand, spill_dir is not None, progress)
         exclusions = tally.exclusions()
         warnings = tally.warnings
-        full_mask, keep_idx = _layout(tally, cand)  # frees the running masks as soon as it can
+        first_nonzero, first_nonfinite = tally.first_nonzero, tally.first_nonfinite
+        full_mask, gather = _layout(tally, cand)  # frees the running masks as soon as it can
         del tally, cand
         _require_voxels(full_mask, exclusions, mask, source.origin)
-        data, spill_dir = _compact(buf, n, n_cand, keep_idx, memory_bytes, spill_dir)
+        plan = plan_rows(record.offsets, record.lengths, record.row_of, first_nonzero, first_nonfinite, gather)
+        del first_nonzero, first_nonfinite, gather
+        data, spill_dir = _compact(buf, plan, memory_bytes, spill_dir)
         del buf
     except BaseException:
         if spill_dir is not None:
@@ -192,7 +199,11 @@ def _allocate(
 
 
 class _Tally:
-    """The running finite/nonzero masks over the candidates of the images read so far, and what to report."""
+    """The running finite/nonzero masks over the candidates of the images read so far, and what to report.
+
+    Also records, for every candidate, the stored row where it first became nonzero and where it first became
+    NaN/inf (:mod:`.packed`): together they say which candidates each packed row holds.
+    """
 
     def __init__(self, n: int, n_cand: int) -> None:
         self.n_cand = n_cand
@@ -201,11 +212,14 @@ class _Tally:
         self.nonzero_any = np.zeros(n_cand, dtype=bool)
         self.finite = np.empty(n_cand, dtype=bool)  # scratch, one image
         self.nonzero = np.empty(n_cand, dtype=bool)  # scratch, one image
+        self.in_play = np.zeros(n_cand, dtype=bool)  # finite in every image so far and nonzero in one
+        self.first_nonzero = np.full(n_cand, NEVER, dtype=np.int32)
+        self.first_nonfinite = np.full(n_cand, NEVER, dtype=np.int32)
         self.nonfinite_per_image = np.zeros(n, dtype=np.int64)
         self.warnings: list[str] = []
 
-    def add(self, row: np.ndarray, rows: list[int], ref: ImageRef, origin: str, in_mask: bool) -> None:
-        """Count one image's candidate values ``row`` (used by the observations ``rows``)."""
+    def add(self, row: np.ndarray, seq: int, rows: list[int], ref: ImageRef, origin: str, in_mask: bool) -> None:
+        """Count one image's candidate values ``row`` (stored row ``seq``, used by the observations ``rows``)."""
         finite, nonzero = self.finite, self.nonzero
         np.isfinite(row, out=finite)
         n_finite = int(np.count_nonzero(finite))
@@ -216,6 +230,10 @@ class _Tally:
                 f"(from {origin}); re-create the image or leave the participant out"
             )
         self.nonfinite_per_image[rows] = self.n_cand - n_finite
+        # scratch use of in_play: the candidates that turn NaN/inf here for the first time
+        np.greater(self.finite_all, finite, out=self.in_play)
+        if self.in_play.any():
+            self.first_nonfinite[self.in_play] = seq
         self.finite_all &= finite
         self.finite_any |= finite
         np.not_equal(row, 0, out=nonzero)
@@ -223,13 +241,17 @@ class _Tally:
         if not nonzero.any():
             inside = " inside the mask" if in_mask else ""
             self.warnings.append(f"{_who(ref)} is zero everywhere{inside}: {ref.path}")
+        np.greater(nonzero, self.nonzero_any, out=self.in_play)  # nonzero here for the first time
+        if self.in_play.any():
+            self.first_nonzero[self.in_play] = seq
         self.nonzero_any |= nonzero
+        np.logical_and(self.finite_all, self.nonzero_any, out=self.in_play)
 
     def take_keep(self) -> np.ndarray:
         """Candidates finite in every image and nonzero in some.  Call last: the running masks are dropped
         here (freed), so that the layout of the mask is built without them."""
         keep = self.finite_all & self.nonzero_any
-        del self.finite_all, self.finite_any, self.nonzero_any, self.finite, self.nonzero
+        del self.finite_all, self.finite_any, self.nonzero_any, self.finite, self.nonzero, self.in_play
         return keep
 
     def exclusions(self) -> Exclusions:
@@ -241,42 +263,60 @@ class _Tally:
         )
 
 
+@dataclass
+class _Record:
+    """Where the packed rows went: offsets and lengths in the flat buffer, and each one's observation."""
+
+    offsets: list[int]
+    lengths: list[int]
+    row_of: list[int]
+
+
 def _read_all(
     source: ImageSource,
     buf: np.ndarray,
     cand: _Candidates,
     spilled: bool,
     progress: Callable[[int, int], None] | None,
-) -> _Tally:
-    """Read every image once into its row(s) of the flat ``buf``, tallying finite and nonzero values."""
+) -> tuple[_Tally, _Record]:
+    """Read every image once, packing its candidates in play into ``buf`` (:mod:`.packed`), tallying finite
+    and nonzero values."""
     n = len(source)
-    n_cand = cand.n
-    tally = _Tally(n, n_cand)
+    tally = _Tally(n, cand.n)
+    record = _Record([], [], [])
+    offset = 0
     done = 0
     for rows, arr in _iter_arrays(source):
         first = rows[0]
-        row = buf[first * n_cand : (first + 1) * n_cand]
-        _store(row, arr, cand)
+        row = _candidate_values(arr, cand, buf.dtype)
         del arr
-        tally.add(row, rows, source.refs[first], source.origin, cand.user_mask is not None)
-        for other in rows[1:]:  # a 4-D volume used by several rows
-            buf[other * n_cand : (other + 1) * n_cand] = row
+        tally.add(row, len(record.offsets), rows, source.refs[first], source.origin, cand.user_mask is not None)
+        packed = row[tally.in_play]
+        del row
+        length = int(packed.size)
+        for r in rows:  # a 4-D volume used by several rows is stored once per row
+            buf[offset : offset + length] = packed
+            record.offsets.append(offset)
+            record.lengths.append(length)
+            record.row_of.append(r)
+            offset += length
+        del packed
         if spilled:
             release_pages(buf)
         done += len(rows)
         if progress is not None:
             progress(done, n)
-    return tally
+    return tally, record
 
 
-def _store(row: np.ndarray, arr: np.ndarray, cand: _Candidates) -> None:
-    """Copy one image's candidate voxels into its row (Fortran order for the whole grid)."""
+def _candidate_values(arr: np.ndarray, cand: _Candidates, dtype: np.dtype) -> np.ndarray:
+    """One image's candidate values in storage ``dtype`` (Fortran order for the whole grid)."""
+    flat = arr.reshape(-1, order="F")
+    if cand.cand_f is not None:
+        flat = flat[cand.cand_f]
     # overflow to inf (float64 beyond float32 range) is wanted: such voxels are then left out
     with np.errstate(over="ignore", invalid="ignore"):
-        if cand.cand_f is None:
-            np.copyto(row.reshape(cand.grid.shape[::-1]).T, arr, casting="unsafe")
-        else:
-            np.copyto(row, arr.reshape(-1, order="F")[cand.cand_f], casting="unsafe")
+        return flat.astype(dtype, copy=False)
 
 
 def _require_voxels(full_mask: np.ndarray, exclusions: Exclusions, mask: Path | str | None, origin: str) -> None:
@@ -291,9 +331,8 @@ def _require_voxels(full_mask: np.ndarray, exclusions: Exclusions, mask: Path | 
         )
 
 
-def _layout(tally: _Tally, cand: _Candidates) -> tuple[np.ndarray, np.ndarray | None]:
-    """The analysis mask on the grid, and the gather that takes each row's kept candidates to the mask's
-    C order (None when the row layout already is the final one).
+def _layout(tally: _Tally, cand: _Candidates) -> tuple[np.ndarray, np.ndarray]:
+    """The analysis mask on the grid, and the candidate positions of its voxels in the mask's C order.
 
     The kept candidates are taken out of ``tally`` here, and freed as soon as they are used: this is the
     peak of the work after the reading (index arrays of the whole grid).
@@ -312,5 +351,4 @@ def _layout(tally: _Tally, cand: _Candidates) -> tuple[np.ndarray, np.ndarray | 
         full_mask = full_mask.reshape(shape)
         gather = np.flatnonzero(keep)
         del keep
-    # the row layout already is the final one (surfaces; all candidates kept in C order)
-    return full_mask, None if gather.size == cand.n and np.array_equal(gather, np.arange(cand.n)) else gather
+    return full_mask, gather

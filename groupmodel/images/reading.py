@@ -8,17 +8,24 @@ import nibabel as nib
 import numpy as np
 
 from ..errors import ImageError
+from .fastread import is_fast_path, ordered_map, read_nifti_gz, read_threads
 from .grid import Grid, _exc_text, _fmt_shape
 from .sources import ImageRef, ImageSource, _who
 
 _GIFTI_PARSE_BUFFER = 2**20
 
 
-def _read_array(ref: ImageRef, grid: Grid, origin: str) -> np.ndarray:
-    """All values of one 3-D NIfTI or GIFTI image (one read), shape ``grid.shape``, native dtype."""
+def _read_array(ref: ImageRef, grid: Grid, origin: str, use_isal: bool | None = None) -> np.ndarray:
+    """All values of one 3-D NIfTI or GIFTI image (one read), shape ``grid.shape``, native dtype.
+
+    A ``.nii.gz`` file is read whole and decompressed in one call (:mod:`.fastread`; ``use_isal`` None means
+    isal where installed); the values are those of nibabel's own reading.
+    """
     assert ref.path is not None
     try:
-        if grid.kind == "gifti":
+        if grid.kind != "gifti" and is_fast_path(ref.path):
+            arr = read_nifti_gz(ref.path, use_isal)
+        elif grid.kind == "gifti":
             # nibabel's default 35 MB XML parser buffer would dominate the working memory
             img = nib.load(ref.path, buffer_size=_GIFTI_PARSE_BUFFER)
             arr = np.asarray(img.darrays[0].data)
@@ -39,13 +46,25 @@ def _read_array(ref: ImageRef, grid: Grid, origin: str) -> np.ndarray:
     return arr
 
 
-def _iter_arrays(source: ImageSource) -> Iterator[tuple[list[int], np.ndarray]]:
-    """Yield ``(rows, array)`` for every image, reading each file (or 4-D volume) exactly once."""
+def _iter_arrays(source: ImageSource, use_isal: bool | None = None,
+                 threads: int | None = None) -> Iterator[tuple[list[int], np.ndarray]]:
+    """Yield ``(rows, array)`` for every image, reading each file (or 4-D volume) exactly once.
+
+    Single-image files are read by ``threads`` threads (default :func:`.fastread.read_threads`), in order.
+    """
     grid = source.grid
     assert grid is not None
     if source.mode != "4d":
-        for i, ref in enumerate(source.refs):
-            yield [i], _read_array(ref, grid, source.origin)
+        refs = source.refs
+        n_threads = read_threads(len(refs)) if threads is None else threads
+        if grid.kind == "gifti":
+            n_threads = 1  # the XML parser holds the GIL
+
+        def one(i: int) -> np.ndarray:
+            return _read_array(refs[i], grid, source.origin, use_isal)
+
+        for i, arr in enumerate(ordered_map(one, range(len(refs)), n_threads)):
+            yield [i], arr
         return
     path = source.refs[0].path
     assert path is not None

@@ -2,7 +2,8 @@
 
 A spill is a temporary folder with one preallocated file of values (:func:`_new_spill`), written through a
 numpy memmap whose resident pages are dropped as the work goes (:func:`release_pages`), compacted in place
-to the mask (:func:`_compact`), and read back in column blocks by plain file reads (:class:`SpillReader`).
+to the mask (:func:`_compact`, :mod:`.packed`), and read back in column blocks by plain file reads
+(:class:`SpillReader`).
 """
 
 from __future__ import annotations
@@ -11,12 +12,12 @@ import mmap
 import os
 import shutil
 import tempfile
-from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
+from .packed import PackedRows, compact_packed
 
 _SPILL_NAME = "data.f32"
 
@@ -49,21 +50,14 @@ def _new_spill(workdir: Path | str | None, n_values: int, dtype: type = np.float
     return d, mm
 
 
-def _compact(
-    buf: np.ndarray,
-    n: int,
-    n_cand: int,
-    keep_idx: np.ndarray | None,
-    memory_bytes: int,
-    spill_dir: Path | None,
-) -> tuple[np.ndarray, Path | None]:
-    """Turn the flat ``(n, n_cand)`` buffer into the ``(n, n_keep)`` matrix, without a second full copy."""
-    n_keep = n_cand if keep_idx is None else int(keep_idx.size)
+def _compact(buf: np.ndarray, plan: PackedRows, memory_bytes: int,
+             spill_dir: Path | None) -> tuple[np.ndarray, Path | None]:
+    """Turn the packed rows of the flat ``buf`` into the ``(n, n_keep)`` matrix, without a second full copy."""
+    n, n_keep = plan.n, plan.n_keep
     if spill_dir is None:
-        if keep_idx is not None:
-            _compact_rows(buf, n, n_cand, keep_idx)
-            # shrink the allocation in place (realloc) rather than copying into a smaller array
-            buf.resize(n * n_keep, refcheck=False)
+        compact_packed(buf, plan)
+        # shrink the allocation in place (realloc) rather than copying into a smaller array
+        buf.resize(n * n_keep, refcheck=False)
         return buf.reshape(n, n_keep), None
 
     path = spill_dir / _SPILL_NAME
@@ -71,16 +65,15 @@ def _compact(
     if n * n_keep * itemsize <= memory_bytes:
         # the compacted matrix fits the budget: bring it into RAM row by row and remove the spill
         out = np.empty((n, n_keep), dtype=buf.dtype)
-        for i in range(n):
-            src = buf[i * n_cand : (i + 1) * n_cand]
-            out[i] = src if keep_idx is None else src[keep_idx]
-            if i % 16 == 15:
+        for s in range(n):
+            off, length = int(plan.offsets[s]), int(plan.lengths[s])
+            out[plan.row_of[s]] = plan.expand(s, buf[off : off + length])
+            if s % 16 == 15:
                 release_pages(buf)
         del buf
         shutil.rmtree(spill_dir, ignore_errors=True)
         return out, None
-    if keep_idx is not None:
-        _compact_rows(buf, n, n_cand, keep_idx, release=lambda b=buf: release_pages(b))
+    compact_packed(buf, plan, release=lambda b=buf: release_pages(b))
     assert isinstance(buf, np.memmap)
     dtype = buf.dtype
     buf.flush()
@@ -132,19 +125,3 @@ def release_pages(array: np.ndarray) -> None:
     if isinstance(array, np.memmap) and base is not None and hasattr(base, "madvise"):
         base.flush()
         base.madvise(mmap.MADV_DONTNEED)
-
-
-def _compact_rows(flat: np.ndarray, n: int, n_cand: int, keep_idx: np.ndarray,
-                  release: Callable[[], None] | None = None) -> None:
-    """In place: row i of the result (``keep_idx`` columns) goes to ``flat[i*n_keep:(i+1)*n_keep]``.
-
-    ``keep_idx`` holds distinct positions in any order (a gather, not only a selection).  Row i's
-    destination ends at (i+1)*n_keep <= (i+1)*n_cand, the start of row i+1's source, so no row is
-    overwritten before it is read; each row is copied out (fancy indexing) before it is written back.
-    """
-    n_keep = keep_idx.size
-    for i in range(n):
-        row = flat[i * n_cand : (i + 1) * n_cand][keep_idx]
-        flat[i * n_keep : (i + 1) * n_keep] = row
-        if release is not None and i % 16 == 15:
-            release()

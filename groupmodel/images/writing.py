@@ -9,6 +9,7 @@ from typing import Any
 import nibabel as nib
 import numpy as np
 
+from .fastread import gzip_bytes
 from .grid import Grid, _is_gifti, _is_nifti
 
 
@@ -160,4 +161,8 @@ def _write_nifti(path: Path, data: np.ndarray, grid: Grid, intent: tuple[str, Se
     hdr["descrip"] = description.encode("ascii", "replace")[:79]
     klass = nib.Nifti2Image if isinstance(hdr, nib.Nifti2Header) else nib.Nifti1Image
     img = klass(data, None, hdr)
-    nib.save(img, path)
+    if path.name.lower().endswith(".gz"):
+        # the bytes nib.save would write, compressed in one call at a fast level (see fastread)
+        path.write_bytes(gzip_bytes(img.to_bytes()))
+    else:
+        nib.save(img, path)

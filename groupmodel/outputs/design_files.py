@@ -6,6 +6,7 @@
 from __future__ import annotations
 
 import dataclasses
+import threading
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -101,14 +102,43 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[
     out.write_json("contrasts.json", contrasts_sidecar(model))
     names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
     if pictures:
-        from .figures import plot_contrasts, plot_design
-
-        plot_design(out.file("design.png"), tidy(model.design.matrix, axis=0), model.design.column_names,
-                    model.design.participant_ids)
-        rows, labels, tests = model.contrast_rows()
-        plot_contrasts(out.file("contrasts.png"), tidy(rows, axis=1), labels, model.design.column_names, tests)
-        names += ["design.png", "contrasts.png"]
+        names += draw_pictures(model, out)
     return names
+
+
+def draw_pictures(model: Model, out: OutputFolder) -> list[str]:
+    """design.png and contrasts.png (imports matplotlib); returns the file names."""
+    from .figures import plot_contrasts, plot_design
+
+    plot_design(out.file("design.png"), tidy(model.design.matrix, axis=0), model.design.column_names,
+                model.design.participant_ids)
+    rows, labels, tests = model.contrast_rows()
+    plot_contrasts(out.file("contrasts.png"), tidy(rows, axis=1), labels, model.design.column_names, tests)
+    return ["design.png", "contrasts.png"]
+
+
+class PictureJob:
+    """The pictures of a model drawn in a background thread (matplotlib's import and drawing overlap other
+    writing); :meth:`join` waits and returns the file names, or raises what the drawing raised."""
+
+    def __init__(self, model: Model, out: OutputFolder) -> None:
+        self._names: list[str] = []
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, args=(model, out), name="groupmodel-pictures",
+                                        daemon=True)
+        self._thread.start()
+
+    def _run(self, model: Model, out: OutputFolder) -> None:
+        try:
+            self._names = draw_pictures(model, out)
+        except BaseException as exc:  # handed to join()
+            self._error = exc
+
+    def join(self) -> list[str]:
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._names
 
 
 def write_model_folder(model: Model, out: Path | str, force: bool = False, pictures: bool = True) -> Path:

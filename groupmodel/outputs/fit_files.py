@@ -9,7 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from .design_files import write_model, written_hypothesis
+from .design_files import PictureJob, write_model, written_hypothesis
 from .folder import OutputFolder
 from .provenance import provenance
 
@@ -34,11 +34,11 @@ RESULTS_COLUMNS = {
 }
 
 
-def write_table_fit(fit: TableFit, out: Path | str, force: bool = False) -> Path:
-    """Write results.tsv, results.json and the design files atomically."""
+def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
+    """Write results.tsv, results.json and the design files (with their pictures) atomically."""
     folder = OutputFolder(out, force=force)
     with folder as o:
-        write_model(fit.model, o)
+        write_model(fit.model, o, pictures=pictures)
         o.write_tsv("results.tsv", fit.table)
         o.write_json("results.json", _results_sidecar(fit))
     return Path(out)
@@ -206,16 +206,26 @@ def _inference_record(fit: VoxelFit) -> dict[str, Any] | None:
 
 
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
-                    extra_writer: Callable[[OutputFolder], list[str]] | None = None) -> list[str]:
-    """Write every map with its sidecar, the mask, the design files and a summary, atomically."""
+                    extra_writer: Callable[[OutputFolder], list[str]] | None = None,
+                    pictures: bool = True) -> list[str]:
+    """Write every map with its sidecar, the mask, the design files and a summary, atomically.
+
+    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written.
+    """
     folder = OutputFolder(out, force=force)
     written: list[str] = []
     with folder as o:
-        written += write_model(fit.model, o)
-        for h in fit.model.hypotheses.values():
-            written += _write_hypothesis(o, fit, h)
-        written += _write_residuals_and_mask(o, fit)
-        written += _write_summary(o, fit)
-        if extra_writer is not None:
-            written += extra_writer(o)
+        written += write_model(fit.model, o, pictures=False)
+        job = PictureJob(fit.model, o) if pictures else None
+        try:
+            for h in fit.model.hypotheses.values():
+                written += _write_hypothesis(o, fit, h)
+            written += _write_residuals_and_mask(o, fit)
+            written += _write_summary(o, fit)
+            if extra_writer is not None:
+                written += extra_writer(o)
+        finally:
+            # never leave the thread writing into a folder that is being removed
+            picture_names = job.join() if job is not None else []
+        written[4:4] = picture_names  # listed beside the design files, as before
     return written

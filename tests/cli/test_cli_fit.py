@@ -178,3 +178,20 @@ def test_progress_bar_on_a_terminal(spec: Path, tmp_path: Path) -> None:
     os.close(master)
     assert proc.returncode == 0
     assert "fitting" in b"".join(chunks).decode(errors="replace")
+
+
+def test_fit_without_pictures_never_imports_matplotlib(tmp_path):
+    # the pictures are the only users of matplotlib: a fit with --no-pictures must not pay for its import
+    example = Path(__file__).resolve().parents[2] / "example_study" / "model.json"
+    code = (
+        "import sys\n"
+        "from groupmodel.cli import main\n"
+        f"rc = main([{str(example)!r}, '--out', {str(tmp_path / 'out')!r}, '--no-pictures'])\n"
+        "assert rc == 0, rc\n"
+        "print('matplotlib' in sys.modules)\n"
+    )
+    code = code.replace("main([", "main(['fit', ")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip().splitlines()[-1] == "False"
+    assert not list((tmp_path / "out").glob("*.png"))
+    assert (tmp_path / "out" / "design.tsv").exists()

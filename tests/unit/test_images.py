@@ -19,6 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from nibabel.arrayproxy import ArrayProxy
 
+import groupmodel.images.reading as images_reading
 from groupmodel.images import (
     Grid,
     check_images,
@@ -31,7 +32,9 @@ from groupmodel.images import (
     write_map,
     write_mask,
 )
-from groupmodel.images.spill import _compact_rows
+from groupmodel.images.loading import _Tally
+from groupmodel.images.packed import NEVER, compact_packed, plan_rows
+from groupmodel.images.sources import ImageRef
 
 # a realistic oblique-free affine: x stored right-to-left, origin away from the corner
 AFFINE = np.array([[-3.0, 0, 0, 30.5], [0, 3.0, 0, -42.0], [0, 0, 3.5, -20.25], [0, 0, 0, 1]])
@@ -253,14 +256,23 @@ def test_each_image_read_once_with_small_budget(tmp_path, monkeypatch):
         loads[Path(path).name] += 1
         return orig_load(path, *a, **k)
 
+    def counting_fast(path, *a, **k):  # .nii.gz files are read whole and decompressed once (fastread)
+        loads[Path(path).name] += 1
+        reads[Path(path).name] += 1
+        return orig_fast(path, *a, **k)
+
     def counting_array(self, *a, **k):
-        reads[Path(self.file_like).name] += 1
+        if isinstance(self.file_like, str | Path):
+            reads[Path(self.file_like).name] += 1
         return orig_array(self, *a, **k)
 
     def counting_getitem(self, item):
-        reads[Path(self.file_like).name] += 1
+        if isinstance(self.file_like, str | Path):
+            reads[Path(self.file_like).name] += 1
         return orig_getitem(self, item)
 
+    orig_fast = images_reading.read_nifti_gz
+    monkeypatch.setattr(images_reading, "read_nifti_gz", counting_fast)
     monkeypatch.setattr(nib, "load", counting_load)
     monkeypatch.setattr(ArrayProxy, "__array__", counting_array)
     monkeypatch.setattr(ArrayProxy, "__getitem__", counting_getitem)
@@ -342,20 +354,39 @@ def test_chunks_concatenate_to_data_and_spill_equals_ram(tmp_path, with_nan):
     assert not spill_dir.exists()  # closed by the context manager
 
 
-@settings(max_examples=50, deadline=None)
+@settings(max_examples=150, deadline=None)
 @given(
-    n=st.integers(1, 6),
-    n_cand=st.integers(1, 40),
+    n=st.integers(1, 7),
+    n_cand=st.integers(1, 30),
     data=st.data(),
 )
-def test_in_place_compaction_equals_fancy_indexing(n, n_cand, data):
-    # any distinct positions in any order (load_masked gathers Fortran-order rows into C order)
-    idx = np.array(data.draw(st.permutations(range(n_cand))), dtype=np.int64)
-    idx = idx[: data.draw(st.integers(0, n_cand))]
-    full = np.arange(n * n_cand, dtype=np.float32).reshape(n, n_cand)  # reference: numpy indexing
-    flat = full.ravel().copy()
-    _compact_rows(flat, n, n_cand, idx)
-    np.testing.assert_array_equal(flat[: n * idx.size].reshape(n, idx.size), full[:, idx])
+def test_packed_rows_compact_in_place_to_fancy_indexing(n, n_cand, data):
+    # Images with zeros and NaN anywhere, stored in any observation order: each row keeps only the candidates
+    # still in play (finite so far, nonzero once), then the packed rows are compacted in place.  Reference:
+    # numpy indexing of the full matrix with the mask "finite in every image and nonzero in some".
+    kinds = st.sampled_from([0.0, 0.0, 1.5, -2.0, 3.25, np.nan])
+    full = np.array(data.draw(st.lists(st.lists(kinds, min_size=n_cand, max_size=n_cand), min_size=n,
+                                       max_size=n)), dtype=np.float32)
+    full *= np.arange(1, n_cand + 1, dtype=np.float32)  # distinct values per column
+    full[:, 0] = np.nan_to_num(full[:, 0])  # every image has a finite value (else an ImageError)
+    row_of = data.draw(st.permutations(range(n)))  # stored order -> observation
+    tally = _Tally(n, n_cand)
+    flat = np.full(n * n_cand, -99.0, dtype=np.float32)
+    offsets, lengths, offset = [], [], 0
+    for s, r in enumerate(row_of):
+        tally.add(full[r], s, [r], ImageRef(r, "x", None), "test", False)
+        length = int(np.count_nonzero(tally.in_play))
+        flat[offset : offset + length] = full[r][tally.in_play]
+        offsets.append(offset)
+        lengths.append(length)
+        offset += length
+    keep = tally.finite_all & tally.nonzero_any
+    assert np.all(tally.first_nonzero[keep] < NEVER)
+    gather = np.array(data.draw(st.permutations(np.flatnonzero(keep).tolist())), dtype=np.int64)
+    plan = plan_rows(offsets, lengths, row_of, tally.first_nonzero, tally.first_nonfinite, gather)
+    compact_packed(flat, plan)
+    k = gather.size
+    np.testing.assert_array_equal(flat[: n * k].reshape(n, k), full[:, gather])
 
 
 def test_chunk_size_for_budget():

@@ -141,12 +141,17 @@ def _column_notes(ctx: AuditContext) -> list[AuditFinding]:
     assert ident is not None
     view = ident.view
     out = [_at("columns", "note", "factor_coding", text) for text in ident.coding_texts]
+    # The factors and covariates tried: those named (or the spec's, or the table's), not only those used.
+    req, tried = ctx.request, ctx.alignment.table if ctx.alignment is not None else ident.table
+    tried_f = list(req.factors or (req.spec.model_factors() if req.spec else []) or tried.factors or view.factors)
+    tried_c = list(req.covariates or (req.spec.model_covariates() if req.spec else []) or tried.covariates
+                   or view.covariates)
     for r in ident.roles:
         if r.kind == "unexplained":
             out.append(_at("columns", "warning", "column_unexplained",
                            f"{r.label}: unexplained: it is not a coding of the factors "
-                           f"({', '.join(view.factors) or 'none'}) nor a covariate "
-                           f"({', '.join(view.covariates) or 'none'}) of {ctx.request.participants.name}; if it is "
+                           f"({', '.join(tried_f) or 'none'}) nor a covariate "
+                           f"({', '.join(tried_c) or 'none'}) of {req.participants.name}; if it is "
                            "a covariate or factor of the table, name it with --covariates or --factors; contrasts "
                            "are stated with it held at its mean"))
         elif r.kind == "covariate_mixed":

@@ -19,6 +19,7 @@ import numpy as np
 
 from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import GroupModelError
+from ..model.coding import degree_name
 from ..model.hypotheses import build_hypothesis
 from ..model.statements import describe_cell_weights
 from .cells import HandDesign
@@ -304,11 +305,35 @@ def _state(ctx: AuditContext, con: ContrastReport, canonical: dict[str, Any], fo
                 break
         else:
             partial = _part_of_effect(ctx, con, canonical)
+    elif L.shape[0] == 1:
+        statement = _trend_statement(ctx, con) or statement
     found.append(_finding("note", "contrast_tests", f"{con.title} tests: {statement}"))
     found.extend(partial)
     found.extend(mistakes(ctx, con, got))
     return dataclasses.replace(con, statement=statement, cell_weights=got.w, slope_of=got.slope_of,
                                findings=tuple(found))
+
+
+def _trend_statement(ctx: AuditContext, con: ContrastReport) -> str | None:
+    """A t contrast that is a polynomial trend of a factor the design codes with polynomials (up to rounding)."""
+    hd = _hand(ctx)
+    assert hd is not None and ctx.columns is not None
+    x = ctx.files.x
+    # Typed codes rounded (0.67 for 0.6708) move the contrast by up to the typing tolerance of the columns.
+    tol = 1e-6 + 4 * con.tol + 4 * max(x.tolerance(j) for j in range(x.n_columns))
+    degrees = {(m.factor, m.degree) for r in ctx.roles for m in r.members.values()
+               if m.kind == "polynomial" and len(r.factors) == 1 and m.degree}
+    space = RowSpace.of(hd.matrix)
+    for f, d in sorted(degrees, key=lambda t: (t[0], t[1])):
+        try:
+            h = build_hypothesis(hd, f"trend of {f}", {"trend": f, "degree": d}, space)
+        except GroupModelError:
+            continue
+        if h.estimable and same_rows(con.weights, h.weights, tol):
+            exact = same_rows(con.weights, h.weights, 1e-6 + 4 * con.tol)
+            rounded = "" if exact else " (up to the rounding of the typed codes)"
+            return f"the {degree_name(d)} trend of {f}{rounded}: {h.statement}"
+    return None
 
 
 def _part_of_effect(ctx: AuditContext, con: ContrastReport, canonical: dict[str, Any]) -> list[AuditFinding]:

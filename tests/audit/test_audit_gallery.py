@@ -42,7 +42,7 @@ def _run(case: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> tuple
 
 
 def test_gallery_is_complete():
-    """All kinds of finding (the eight of the first issue, then the reviewer's) have at least one faulty set, and there are correct sets."""
+    """All kinds of finding (the first issue's eight, then the reviewer's) have a faulty set; correct sets exist."""
     kinds = {
         1: {"row_count", "contrast_width", "ragged_contrast", "not_numeric", "not_finite"},
         2: {"rank_deficient", "collinear"},

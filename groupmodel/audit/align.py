@@ -2,7 +2,8 @@
 
 Rows follow the participants table (after the spec's exclusions, or after rows with n/a when that makes the
 count fit) unless the design has a ``participant_id`` column.  With one row too many or too few and no ids,
-every position is tried for the missing or extra row.
+every position is tried for the missing or extra row; extra rows are sought among the participants the spec
+leaves out and among rows that repeat the row before them.
 """
 
 from __future__ import annotations
@@ -156,6 +157,11 @@ def _align_by_order(req: Request, files: Files, choice: TableChoice) -> Alignmen
     # One row too many or too few: try every position (a few hundred quick identifications at most).
     guess = _guess_one(req, files, table, np.asarray(expected)) if abs(diff) == 1 and n <= GUESS_MAX_ROWS \
         else None
+    if guess is None and diff > 0 and n <= GUESS_MAX_ROWS:
+        located = _locate_extra(req, files, table, np.asarray(expected))
+        if located is not None:  # its text ends with the fix
+            found.append(_rows(message + f"; {located[1]}", "row_count"))
+            return Alignment(table, located[0], tuple(found))
     if guess is None:
         found.append(_rows(message + fix + "; the checks that need the table (columns, cells, contrast "
                            "statements) were skipped", "row_count"))
@@ -219,6 +225,31 @@ def _guess_one(req: Request, files: Files, table: PreparedTable, expected: np.nd
             d, align = best[0]
             return align, f"the rows match the participants if design row {d + 1} " \
                           f"({req.design.name} line {x.lines[d]}) is dropped"
+    return None
+
+
+def _locate_extra(req: Request, files: Files, table: PreparedTable, expected: np.ndarray
+                  ) -> tuple[np.ndarray, str] | None:
+    """Extra rows that are the participants the spec leaves out, or rows that repeat the row before them."""
+    x = files.x
+    n, p = x.values.shape
+    ids = table.ids
+    if files.sample is not None and n == len(files.frame):
+        kept = set(expected.tolist())
+        align = np.array([t if t in kept else -1 for t in range(n)], dtype=int)
+        if _score(files, table, align) == p:
+            reasons = {e.participant_id: e.reason for e in files.sample.exclusions}
+            extra = [f"row {t + 1} ({ids[t]}: {reasons.get(ids[t], 'left out')})" for t in range(n) if align[t] < 0]
+            return align, (f"the design has a row for every participant of {req.participants.name}, including "
+                           f"the {len(extra)} the spec leaves out: {listing(extra)}; delete those rows")
+    repeats = [d for d in range(1, n) if np.array_equal(x.values[d], x.values[d - 1])]
+    if len(repeats) == n - len(expected):
+        align = np.full(n, -1)
+        align[[d for d in range(n) if d not in repeats]] = expected
+        if _score(files, table, align) == p:
+            dup = [f"row {d + 1} ({req.design.name} line {x.lines[d]}) repeats row {d} ({ids[align[d - 1]]})"
+                   if align[d - 1] >= 0 else f"row {d + 1} repeats row {d}" for d in repeats]
+            return align, f"{listing(dup)}: delete the repeated row{'s' * (len(dup) != 1)}"
     return None
 
 

@@ -27,6 +27,7 @@ their mean over the design rows) and every covariate its slope row, which is wha
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from itertools import combinations
@@ -186,6 +187,9 @@ def classify_member(factor: str, levels: tuple[str, ...], scores: tuple[float, .
         for d in range(poly.shape[1]):
             c = float(u @ poly[:, d])
             if abs(c) > tol and np.abs(u - c * poly[:, d]).max() <= 2 * tol:
+                # Orthonormal codes typed with few decimals (-0.67 for -0.6708) are those codes, rounded.
+                if tol > 0 and np.abs(u - math.copysign(1.0, c) * poly[:, d]).max() <= tol * (1 + 1e-6):
+                    c = math.copysign(1.0, c)
                 m.poly_degree, m.poly_scale = d + 1, c
                 break
     if idx.size == 1:

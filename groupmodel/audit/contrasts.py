@@ -19,11 +19,12 @@ import numpy as np
 
 from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import GroupModelError
+from ..model.coding import degree_name
 from ..model.hypotheses import build_hypothesis
 from ..model.statements import describe_cell_weights
 from .cells import HandDesign
 from .context import AuditContext
-from .read import AuditFinding, num_text
+from .read import AuditFinding, num_text, row_text
 
 #: An uncentred covariate only matters (a warning; contrasts held at 0) when its mean is this many SDs from 0.
 UNCENTRED_MEAN_SD = 0.1
@@ -296,15 +297,70 @@ def _state(ctx: AuditContext, con: ContrastReport, canonical: dict[str, Any], fo
     holds = "; " + ", ".join(got.hold.values()) if got.hold else ""
     texts = [describe_cell_weights(hd, wr, got.slope_of) for wr in got.w]
     statement = "; and ".join(texts) + holds
+    partial: list[AuditFinding] = []
     if con.test == "F":
         for name, h in canonical.items():
             if h.estimable and same_rows(L, h.weights, 1e-6 + 4 * con.tol):
                 statement = f"{name}: {h.statement}"
                 break
+        else:
+            partial = _part_of_effect(ctx, con, canonical)
+    elif L.shape[0] == 1:
+        statement = _trend_statement(ctx, con) or statement
     found.append(_finding("note", "contrast_tests", f"{con.title} tests: {statement}"))
+    found.extend(partial)
     found.extend(mistakes(ctx, con, got))
     return dataclasses.replace(con, statement=statement, cell_weights=got.w, slope_of=got.slope_of,
                                findings=tuple(found))
+
+
+def _trend_statement(ctx: AuditContext, con: ContrastReport) -> str | None:
+    """A t contrast that is a polynomial trend of a factor the design codes with polynomials (up to rounding)."""
+    hd = _hand(ctx)
+    assert hd is not None and ctx.columns is not None
+    x = ctx.files.x
+    # Typed codes rounded (0.67 for 0.6708) move the contrast by up to the typing tolerance of the columns.
+    tol = 1e-6 + 4 * con.tol + 4 * max(x.tolerance(j) for j in range(x.n_columns))
+    degrees = {(m.factor, m.degree) for r in ctx.roles for m in r.members.values()
+               if m.kind == "polynomial" and len(r.factors) == 1 and m.degree}
+    space = RowSpace.of(hd.matrix)
+    for f, d in sorted(degrees, key=lambda t: (t[0], t[1])):
+        try:
+            h = build_hypothesis(hd, f"trend of {f}", {"trend": f, "degree": d}, space)
+        except GroupModelError:
+            continue
+        if h.estimable and same_rows(con.weights, h.weights, tol):
+            exact = same_rows(con.weights, h.weights, 1e-6 + 4 * con.tol)
+            rounded = "" if exact else " (up to the rounding of the typed codes)"
+            return f"the {degree_name(d)} trend of {f}{rounded}: {h.statement}"
+    return None
+
+
+def _part_of_effect(ctx: AuditContext, con: ContrastReport, canonical: dict[str, Any]) -> list[AuditFinding]:
+    """An F test whose rows span only part of a main effect or interaction: which part is missing."""
+    hd = _hand(ctx)
+    assert hd is not None
+    L = con.weights
+    rank = len(independent_rows(L))
+    for name, h in canonical.items():
+        H = np.atleast_2d(h.weights)
+        full = len(independent_rows(H))
+        if not h.estimable or rank >= full or not (RowSpace.of(H).residual(L) <= 1e-6 + 4 * con.tol).all():
+            continue
+        missing: list[np.ndarray] = []
+        for row in H:  # the effect's own rows that the contrast's rows do not reach
+            trial = np.vstack([L, *missing, row])
+            if len(independent_rows(trial)) > rank + len(missing):
+                missing.append(row)
+        got = _interpret(ctx, np.array(missing), con.tol)
+        words = [describe_cell_weights(hd, w, None) for w in got.w] if got is not None else []
+        rows = "; ".join(row_text(r) for r in missing)
+        return [_finding("warning", "partial_effect",
+                         f"{con.title} ({where_rows(ctx, con)}) tests only part of {name}: {rank} of its {full} "
+                         f"degrees of freedom (F with {rank} numerator degrees of freedom, not {full}); missing"
+                         + (f": {'; and '.join(words)}" if words else "") + f"; to test {name} add the "
+                         f"row{'s' * (len(missing) > 1)} {rows}")]
+    return []
 
 
 def dependents_in_words(x: np.ndarray, names: list[str]) -> list[str]:

@@ -122,16 +122,44 @@ def _not_a_cell_mean(ctx: AuditContext, con: ContrastReport, k: int, words: tupl
     hd, L = ctx.columns.hd, con.weights
     rows = hd.audit_rows
     assert rows is not None
-    diffs = [(int((np.abs(rows[c] - L[k]) > 2 * con.tol + 1e-9).sum()), float(
-        np.linalg.norm(rows[c] - L[k])), c) for c in range(rows.shape[0]) if np.isfinite(rows[c]).all()]
-    nd, _, c = min(diffs)
-    cell = hd.cell_label(hd.cells[c])
-    wrong = [f"{ctx.brief(j)} has {num_text(L[k, j])} where the cell's row has {num_text(rows[c, j])}"
-             for j in range(L.shape[1]) if abs(rows[c, j] - L[k, j]) > 2 * con.tol + 1e-9]
+    tol = 2 * con.tol + 1e-9
+    cands = [(hd.cell_label(hd.cells[c]), rows[c], "cell") for c in range(rows.shape[0]) if np.isfinite(rows[c]).all()]
+    cands += _marginal_means(ctx.columns.factors, hd.cells, rows)
+
+    def key(i: int) -> tuple[int, int, float, int]:
+        label, r, kind = cands[i]
+        return (int(((np.abs(r) > tol) != (np.abs(L[k]) > tol)).sum()), int((np.abs(r - L[k]) > tol).sum()),
+                float(np.linalg.norm(r - L[k])), kind != "cell")
+
+    label, best, kind = cands[min(range(len(cands)), key=key)]
+    noun = "cell's" if kind == "cell" else "marginal mean's"
+    wrong = [f"{ctx.brief(j)} has {num_text(L[k, j])} where the {noun} row has {num_text(best[j])}"
+             for j in range(L.shape[1]) if abs(best[j] - L[k, j]) > tol]
+    off = [j for j in range(L.shape[1]) if abs(best[j] - L[k, j]) > tol]
+    doubled = bool(off) and all(abs(L[k, j] - 2 * best[j]) <= tol for j in off)
+    why = " (the same columns with the design's codes: its +/-0.5 coding puts 0.5 where a +/-1 coding puts 1)" \
+        if kind != "cell" and doubled else ""
     return _finding("warning", "not_a_cell_mean",
                     f"{con.title}{row_note} weights the intercept as a cell mean does (its weights over the "
                     f"{what} sum to {num_text(total)}) but equals no cell's design row; the nearest is "
-                    f"{cell}: {'; '.join(wrong[:4])}; to test that cell's mean use its row {row_text(rows[c])}")
+                    f"{label}{why}: {'; '.join(wrong[:4])}; to test that {'cell' if kind == 'cell' else 'mean'} "
+                    f"use its row {row_text(best)}")
+
+
+def _marginal_means(factors: tuple[str, ...] | list[str], cells: list, rows: np.ndarray
+                    ) -> list[tuple[str, np.ndarray, str]]:
+    """The row of every level's mean over the cells of the other factors (equal weights), with its words."""
+    out: list[tuple[str, np.ndarray, str]] = []
+    if len(factors) < 2:
+        return out
+    for i, f in enumerate(factors):
+        others = " x ".join(g for g in factors if g != f)
+        for level in dict.fromkeys(c[i] for c in cells):
+            sel = [c for c, cell in enumerate(cells) if cell[i] == level]
+            if sel and np.isfinite(rows[sel]).all():
+                out.append((f"the mean of {f}={level} over the levels of {others}", rows[sel].mean(axis=0),
+                            "marginal"))
+    return out
 
 
 def _covariate_at_zero(ctx: AuditContext, con: ContrastReport, got: Interpretation) -> list[AuditFinding]:

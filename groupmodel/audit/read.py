@@ -13,6 +13,7 @@ from __future__ import annotations
 import csv
 import math
 import re
+from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -257,13 +258,13 @@ def _entries(path: Path, data: list[tuple[int, list[str]]], layout: tuple[int, l
     ragged = False
     values = np.full((len(data), len(keep)), np.nan)
     digits = np.zeros((len(data), len(keep)), dtype=int)
-    expected = "as the header has" if has_header else "as the first row has"
+    ref, expected = _expected_width(data, width, has_header)
     for i, (line, fields) in enumerate(data):
-        if len(fields) != width:
+        if len(fields) != ref:
             ragged = True
             problems.append(AuditFinding(
                 "error", "row_length",
-                f"{path.name} line {line} (row {i + 1}): expected {width} entries {expected}, found "
+                f"{path.name} line {line} (row {i + 1}): expected {ref} entries {expected}, found "
                 f"{len(fields)}; give every row the same number of entries",
             ))
         for jj, j in enumerate(keep):
@@ -277,6 +278,18 @@ def _entries(path: Path, data: list[tuple[int, list[str]]], layout: tuple[int, l
             where = f"{path.name} line {line} (row {i + 1}), column {jj + 1}{f' ({names[jj]})' if names else ''}"
             problems.append(_entry_problem(tok, where))
     return values, digits, problems, ragged
+
+
+def _expected_width(data: list[tuple[int, list[str]]], width: int, has_header: bool) -> tuple[int, str]:
+    """The row length every row should have, and why: the header's, most rows', or the longest row's."""
+    if has_header:
+        return width, "as the header has"
+    counts = Counter(len(r) for _, r in data)
+    common = max(counts, key=lambda w: (counts[w], w))
+    if 2 * counts[common] > len(data) and counts[common] > 1:
+        return common, f"as {counts[common]} of the {len(data)} rows have"
+    line = next(n for n, r in data if len(r) == width)
+    return width, f"as the longest row has (line {line})"
 
 
 def _entry_problem(tok: str, where: str) -> AuditFinding:

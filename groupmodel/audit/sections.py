@@ -7,6 +7,8 @@ from __future__ import annotations
 import math
 from itertools import combinations
 
+import numpy as np
+
 from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation
 from ..model.checks import CONDITION_WARN, VIF_WARN
 from .context import AuditContext, file_findings
@@ -84,7 +86,29 @@ def column_findings(ctx: AuditContext) -> list[AuditFinding]:
     """What each column encodes: factors and covariates used (or not), the codings, each column, empty cells."""
     if ctx.columns is None:
         return []
-    return _usage_notes(ctx) + _column_notes(ctx) + _empty_cells(ctx)
+    return _usage_notes(ctx) + _column_notes(ctx) + _empty_cells(ctx) + _no_intercept(ctx)
+
+
+def _no_intercept(ctx: AuditContext) -> list[AuditFinding]:
+    """Sum-to-zero factor columns in a design whose column space does not hold the constant (no intercept)."""
+    ident = ctx.columns
+    assert ident is not None
+    coded = [r for r in ident.roles if r.kind == "factor" and r.members
+             and all(m.kind in ("effect", "polynomial") for m in r.members.values())]
+    if not coded:
+        return []
+    x = ctx.files.x.values
+    ones = np.ones(x.shape[0])
+    fit, *_ = np.linalg.lstsq(x, ones, rcond=None)
+    if np.linalg.norm(x @ fit - ones) <= 1e-8 * math.sqrt(x.shape[0]):
+        return []
+    factors = list(dict.fromkeys(f for r in coded for f in r.factors))
+    cols = ", ".join(r.label for r in coded)
+    return [_at("columns", "error", "no_intercept",
+                f"the design has sum-to-zero codes of {' and '.join(factors)} ({cols}) but no intercept: no "
+                "combination of its columns is constant, so the model forces the grand mean to 0: the residual "
+                "variance is inflated by the grand mean, and with unequal group sizes (the codes are then not "
+                "orthogonal to the constant) every estimate is biased too; add a column of ones (the intercept)")]
 
 
 def _usage_notes(ctx: AuditContext) -> list[AuditFinding]:
@@ -117,12 +141,17 @@ def _column_notes(ctx: AuditContext) -> list[AuditFinding]:
     assert ident is not None
     view = ident.view
     out = [_at("columns", "note", "factor_coding", text) for text in ident.coding_texts]
+    # The factors and covariates tried: those named (or the spec's, or the table's), not only those used.
+    req, tried = ctx.request, ctx.alignment.table if ctx.alignment is not None else ident.table
+    tried_f = list(req.factors or (req.spec.model_factors() if req.spec else []) or tried.factors or view.factors)
+    tried_c = list(req.covariates or (req.spec.model_covariates() if req.spec else []) or tried.covariates
+                   or view.covariates)
     for r in ident.roles:
         if r.kind == "unexplained":
             out.append(_at("columns", "warning", "column_unexplained",
                            f"{r.label}: unexplained: it is not a coding of the factors "
-                           f"({', '.join(view.factors) or 'none'}) nor a covariate "
-                           f"({', '.join(view.covariates) or 'none'}) of {ctx.request.participants.name}; if it is "
+                           f"({', '.join(tried_f) or 'none'}) nor a covariate "
+                           f"({', '.join(tried_c) or 'none'}) of {req.participants.name}; if it is "
                            "a covariate or factor of the table, name it with --covariates or --factors; contrasts "
                            "are stated with it held at its mean"))
         elif r.kind == "covariate_mixed":

@@ -207,3 +207,14 @@ def test_fast_vif_equals_regression_vif() -> None:
     assert fast.keys() == slow.keys()
     for k in fast:
         assert fast[k] == pytest.approx(slow[k], rel=1e-9)
+
+
+def test_rounded_polynomial_codes_are_not_rescaled():
+    """Orthonormal polynomial codes typed with two decimals (-0.67 for -0.6708) are those codes rounded, not the
+    codes 'times 0.9973' (common practice: a typed value stands for every number that rounds to it)."""
+    folder = GALLERY / "correct_rounded_polynomial"
+    report = audit(folder / "design.txt", folder / "contrasts.txt", folder / "participants.tsv",
+                   factors=["caffeine"])
+    texts = [f.message for f in report.findings if f.code == "column"]
+    assert any("linear polynomial of caffeine" in t for t in texts)
+    assert not any("times" in t for t in texts), texts

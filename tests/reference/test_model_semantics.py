@@ -106,6 +106,9 @@ def test_nested_factor_is_coded_fully_within_the_other(tmp_path: Path) -> None:
         beta = np.linalg.lstsq(d.matrix, frame["y"].to_numpy(), rcond=None)[0]
         cells = pd.DataFrame(list(d.cells), columns=["a", "b"])
         assert np.allclose(d.cell_rows() @ beta, ref.predict(cells), atol=1e-8)
+        nested = [c for c in d.column_sidecar() if c["term"] == "a:b"]
+        assert len(nested) == 3 and all("coded_fully" in c["members"][0] for c in nested)  # a coded fully
+        assert all("coded_fully" not in c["members"][1] for c in nested)  # b by its own coding
 
 
 def test_slope_within_each_level_without_the_covariate_main_effect(tmp_path: Path) -> None:
@@ -169,3 +172,26 @@ def test_random_non_hierarchical_term_sets_span_the_same_columns_under_every_cod
         theirs = np.asarray(patsy.dmatrix(formula, frame))
         for p in projectors:
             assert np.allclose(p, theirs @ np.linalg.pinv(theirs), atol=1e-8), (terms, intercept)
+
+
+# ------------------------------------------------------------------------------------------ display of large values
+def test_uncentred_large_covariate_vif_and_mean_are_readable(tmp_path: Path) -> None:
+    # A covariate near 10^6 with a small spread, uncentred, crossed with a factor: the VIF of a=x is beyond
+    # 10^12 (statsmodels' variance_inflation_factor, which regresses each column on the others plus a constant,
+    # cannot resolve it in float64 either), so it is shown as "> 1e12" rather than inf; the covariate's mean in
+    # the statements keeps its whole part (common practice: a value that can be read back).
+    from groupmodel.model.checks import check_design
+
+    rng = np.random.default_rng(0)
+    age = (1e6 + 0.123 + rng.normal(0, 0.3, 40)).round(4)
+    frame = pd.DataFrame({"a": np.tile(["x", "y"], 20), "age": age, "y": rng.normal(0, 1, 40).round(3)})
+    spec = write_study(tmp_path, frame, {
+        "factors": {"a": {}}, "covariates": {"age": {"center": "none"}}, "terms": ["a*age"],
+        "hypotheses": {"main_a": {"main": "a"}},
+    })
+    fit = fit_table(spec, "y")
+    messages = [f.message for f in check_design(fit.model.design)]
+    vif = [m for m in messages if "variance inflation factor" in m and m.startswith("column a=x ")]
+    assert vif and "> 1e12" in vif[0] and " inf " not in vif[0]
+    statement = fit.model.hypotheses["main_a"].statement
+    assert f"age at its mean {int(age.mean())}" in statement, statement

@@ -346,6 +346,32 @@ def _term_block(term: Term, data: pd.DataFrame, factors: Mapping[str, FactorCodi
     return block, labels
 
 
+def _all_columns(terms: list[Term], term_blocks: Mapping[Term, tuple[Subterm, ...]], data: pd.DataFrame,
+                 factors: Mapping[str, FactorCoding], covariates: Mapping[str, CovariateCoding],
+                 ) -> tuple[list[np.ndarray], list[Column], dict[Term, slice]]:
+    """Every term's column blocks (a factor coded fully where the marginality rule says so), its columns and
+    its slice of the design."""
+    blocks: list[np.ndarray] = []
+    columns: list[Column] = []
+    term_columns: dict[Term, slice] = {}
+    start = 0
+    for term in terms:
+        width = 0
+        for sub in term_blocks.get(term, ((),)):
+            codings = {f: make_coding(f, factors[f].levels, "indicator", scores=factors[f].scores) if full
+                       else factors[f] for f, full in sub}
+            block, labels = _term_block(term, data, codings, covariates)
+            blocks.append(block)
+            full_factors = tuple(f for f, full in sub if full)
+            for parts in labels:
+                name = "intercept" if not parts else ":".join(lab if lab is not None else m for m, lab in parts)
+                columns.append(Column(name, term, parts, full_factors))
+            width += block.shape[1]
+        term_columns[term] = slice(start, start + width)
+        start += width
+    return blocks, columns, term_columns
+
+
 def build_design(spec: ModelSpec, sample: Sample) -> Design:
     """Build the design of ``spec`` on the observations of ``sample``.
 
@@ -368,25 +394,8 @@ def build_design(spec: ModelSpec, sample: Sample) -> Design:
     covariates = {c: _covariate_coding(spec, c, data) for c in spec.model_covariates()}
 
     terms: list[Term] = ([()] if spec.intercept else []) + list(spec.terms)
-    blocks: list[np.ndarray] = []
-    columns: list[Column] = []
-    term_columns: dict[Term, slice] = {}
-    start = 0
     term_blocks = term_subterms(spec.terms, factors, spec.intercept)
-    for term in terms:
-        width = 0
-        for sub in term_blocks.get(term, ((),)):
-            codings = {f: make_coding(f, factors[f].levels, "indicator", scores=factors[f].scores) if full
-                       else factors[f] for f, full in sub}
-            block, labels = _term_block(term, data, codings, covariates)
-            blocks.append(block)
-            full_factors = tuple(f for f, full in sub if full)
-            for parts in labels:
-                name = "intercept" if not parts else ":".join(lab if lab is not None else m for m, lab in parts)
-                columns.append(Column(name, term, parts, full_factors))
-            width += block.shape[1]
-        term_columns[term] = slice(start, start + width)
-        start += width
+    blocks, columns, term_columns = _all_columns(terms, term_blocks, data, factors, covariates)
     if not columns:
         raise ModelError(
             f"{spec.name}: the model has no columns (no intercept and no terms); add terms or set intercept true"

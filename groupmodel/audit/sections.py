@@ -9,7 +9,7 @@ from itertools import combinations
 
 import numpy as np
 
-from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation
+from ..engine.linalg import condition_number, has_constant_column, matrix_rank, variance_inflation, vif_text
 from ..model.checks import CONDITION_WARN, VIF_WARN
 from .context import AuditContext, file_findings
 from .contrasts import UNCENTRED_MEAN_SD, ContrastReport, dependents_in_words
@@ -76,7 +76,7 @@ def rank_findings(ctx: AuditContext) -> list[AuditFinding]:
     for col, v in (variance_inflation(x, names) if constant else {}).items():
         if v > VIF_WARN:
             out.append(_at("rank", "warning", "high_vif",
-                           f"{col} has variance inflation factor {v:.3g} (above {VIF_WARN:g}): it is nearly a "
+                           f"{col} has variance inflation factor {vif_text(v)} (above {VIF_WARN:g}): it is nearly a "
                            "combination of the other columns; centre the covariates it involves, or drop one of "
                            "the near-duplicates"))
     return out

@@ -175,6 +175,12 @@ def variance_inflation(matrix: np.ndarray, names: list[str]) -> dict[str, float]
     return variance_inflation_by_regression(matrix, names)
 
 
+def vif_text(v: float) -> str:
+    """A VIF for a message: 3 significant digits; an infinite one (the column's residual below 10^-12 of its
+    variation: beyond what float64 can tell from exact collinearity) as ``"> 1e12"``."""
+    return "> 1e12" if v == float("inf") else f"{v:.3g}"
+
+
 def variance_inflation_by_regression(matrix: np.ndarray, names: list[str]) -> dict[str, float]:
     """VIF by one least-squares regression per column (the definition; slower, robust to singularity)."""
     n, p = matrix.shape

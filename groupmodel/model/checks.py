@@ -21,6 +21,7 @@ from ..engine.linalg import (
     rank_tolerance,
     variance_inflation,
     variance_inflation_by_regression,
+    vif_text,
 )
 from .design import Design
 
@@ -191,7 +192,7 @@ def _collinearity_findings(design: Design, rank: int) -> list[Finding]:
             if v > VIF_WARN:
                 findings.append(Finding(
                     "warning", "high_vif",
-                    f"column {col} has variance inflation factor {v:.3g} (above {VIF_WARN:g}): it is nearly a "
+                    f"column {col} has variance inflation factor {vif_text(v)} (above {VIF_WARN:g}): it is nearly a "
                     "combination of other columns; consider centring or dropping a term",
                 ))
     return findings

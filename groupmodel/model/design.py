@@ -9,6 +9,8 @@ Columns: the intercept first (if any), then the terms in the order given; within
 a term the product of its members' columns, the first member varying slowest
 (``numpy.kron`` order).  An interaction's columns are elementwise products of its
 members' columns (factor by factor, factor by covariate, covariate by covariate).
+A factor whose term lacks its marginal term is coded fully (all its levels; see
+:mod:`.marginality`), so every coding spans the same columns.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ import pandas as pd
 
 from ..errors import ModelError, SpecError
 from .coding import FactorCoding, make_coding
+from .marginality import Subterm, term_subterms
 from .spec import ModelSpec, Term, term_label
 from .table import Sample
 
@@ -97,12 +100,14 @@ class CovariateCoding:
 class Column:
     """One design column.
 
-    ``parts`` has one entry per term member: ``(factor, coding-column label)`` or ``(covariate, None)``.
+    ``parts`` has one entry per term member in the column: ``(factor, coding-column label)`` or
+    ``(covariate, None)``; ``full`` names the factors coded fully (all levels) in it by the marginality rule.
     """
 
     name: str
     term: Term
     parts: tuple[tuple[str, str | None], ...]
+    full: tuple[str, ...] = ()
 
     @property
     def term_label(self) -> str:
@@ -139,6 +144,9 @@ class Design:
     observations: pd.DataFrame
     intercept: bool
     sample: Sample | None = field(default=None, repr=False, compare=False)
+    #: Term -> its column blocks (:func:`.marginality.term_subterms`); a term not listed is one block with every
+    #: factor coded by its contrasts.
+    term_blocks: dict[Term, tuple[Subterm, ...]] = field(default_factory=dict, repr=False, compare=False)
 
     # ----- shape and names -------------------------------------------------
     @property
@@ -203,15 +211,31 @@ class Design:
         }
         return self._row_transformed(levels, transformed)
 
+    def blocks_of(self, term: Term) -> tuple[Subterm, ...]:
+        """A term's column blocks: per block, its factors and whether each is coded fully."""
+        return self.term_blocks.get(term, (tuple((m, False) for m in term if m in self.factors),))
+
+    def coding_of(self, factor: str, full: bool) -> FactorCoding:
+        """A factor's coding in a block: its own, or all its levels (indicator) when coded fully."""
+        if not full:
+            return self.factors[factor]
+        fc = self.factors[factor]
+        return make_coding(factor, fc.levels, "indicator", scores=fc.scores)
+
     def _row_transformed(self, levels: Mapping[str, str], transformed: Mapping[str, float]) -> np.ndarray:
         parts = []
         for term in self.terms:
-            vec = np.ones(1)
-            for m in term:
-                member = self.factors[m].row(levels[m]) if m in self.factors else np.array([transformed[m]])
-                # kron order (first member slowest); outer().ravel() is the same for vectors and much faster
-                vec = np.outer(vec, member).ravel()
-            parts.append(vec)
+            for block in self.blocks_of(term):
+                full = dict(block)
+                vec = np.ones(1)
+                for m in term:
+                    if m in self.factors and m not in full:
+                        continue
+                    member = (self.coding_of(m, full[m]).row(levels[m]) if m in self.factors
+                              else np.array([transformed[m]]))
+                    # kron order (first member slowest); outer().ravel() is the same for vectors and much faster
+                    vec = np.outer(vec, member).ravel()
+                parts.append(vec)
         return np.concatenate(parts)
 
     def cell_row(self, cell: Cell, at: Mapping[str, float] | None = None) -> np.ndarray:
@@ -245,7 +269,12 @@ class Design:
         for col in self.columns:
             members = []
             for m, label in col.parts:
-                if m in self.factors:
+                if m in col.full:
+                    members.append({"factor": m, "column": label, "coding": "indicator", "reference": None,
+                                    "levels": list(self.factors[m].levels),
+                                    "coded_fully": "marginality rule: the term without this factor is not in the "
+                                                   "model, so all its levels are coded within the term"})
+                elif m in self.factors:
                     fc = self.factors[m]
                     members.append({"factor": m, "column": label, "coding": fc.scheme, "reference": fc.reference,
                                     "levels": list(fc.levels)})
@@ -294,12 +323,15 @@ ColumnParts = tuple[tuple[str, str | None], ...]
 
 def _term_block(term: Term, data: pd.DataFrame, factors: Mapping[str, FactorCoding],
                 covariates: Mapping[str, CovariateCoding]) -> tuple[np.ndarray, list[ColumnParts]]:
-    """A term's columns (n, k): elementwise products of its members' columns, the first member slowest; and
-    each column's parts (one ``(member, coding-column label or None)`` per member)."""
+    """A block's columns (n, k): elementwise products of its members' columns, the first member slowest; and
+    each column's parts (one ``(member, coding-column label or None)`` per member).  ``factors`` holds the
+    coding of each factor in the block (a factor of the term not in it is left out)."""
     n = len(data)
     block = np.ones((n, 1))
     labels: list[ColumnParts] = [()]
     for m in term:
+        if m not in covariates and m not in factors:
+            continue
         if m in factors:
             fc = factors[m]
             idx = np.array([fc.levels.index(v) for v in data[m]])
@@ -312,6 +344,32 @@ def _term_block(term: Term, data: pd.DataFrame, factors: Mapping[str, FactorCodi
         block = (block[:, :, None] * member[:, None, :]).reshape(n, -1)
         labels = [old + (new,) for old in labels for new in member_labels]
     return block, labels
+
+
+def _all_columns(terms: list[Term], term_blocks: Mapping[Term, tuple[Subterm, ...]], data: pd.DataFrame,
+                 factors: Mapping[str, FactorCoding], covariates: Mapping[str, CovariateCoding],
+                 ) -> tuple[list[np.ndarray], list[Column], dict[Term, slice]]:
+    """Every term's column blocks (a factor coded fully where the marginality rule says so), its columns and
+    its slice of the design."""
+    blocks: list[np.ndarray] = []
+    columns: list[Column] = []
+    term_columns: dict[Term, slice] = {}
+    start = 0
+    for term in terms:
+        width = 0
+        for sub in term_blocks.get(term, ((),)):
+            codings = {f: make_coding(f, factors[f].levels, "indicator", scores=factors[f].scores) if full
+                       else factors[f] for f, full in sub}
+            block, labels = _term_block(term, data, codings, covariates)
+            blocks.append(block)
+            full_factors = tuple(f for f, full in sub if full)
+            for parts in labels:
+                name = "intercept" if not parts else ":".join(lab if lab is not None else m for m, lab in parts)
+                columns.append(Column(name, term, parts, full_factors))
+            width += block.shape[1]
+        term_columns[term] = slice(start, start + width)
+        start += width
+    return blocks, columns, term_columns
 
 
 def build_design(spec: ModelSpec, sample: Sample) -> Design:
@@ -336,18 +394,8 @@ def build_design(spec: ModelSpec, sample: Sample) -> Design:
     covariates = {c: _covariate_coding(spec, c, data) for c in spec.model_covariates()}
 
     terms: list[Term] = ([()] if spec.intercept else []) + list(spec.terms)
-    blocks: list[np.ndarray] = []
-    columns: list[Column] = []
-    term_columns: dict[Term, slice] = {}
-    start = 0
-    for term in terms:
-        block, labels = _term_block(term, data, factors, covariates)
-        blocks.append(block)
-        for parts in labels:
-            name = "intercept" if not parts else ":".join(lab if lab is not None else m for m, lab in parts)
-            columns.append(Column(name, term, parts))
-        term_columns[term] = slice(start, start + block.shape[1])
-        start += block.shape[1]
+    term_blocks = term_subterms(spec.terms, factors, spec.intercept)
+    blocks, columns, term_columns = _all_columns(terms, term_blocks, data, factors, covariates)
     if not columns:
         raise ModelError(
             f"{spec.name}: the model has no columns (no intercept and no terms); add terms or set intercept true"
@@ -366,4 +414,5 @@ def build_design(spec: ModelSpec, sample: Sample) -> Design:
         observations=observations,
         intercept=spec.intercept,
         sample=sample,
+        term_blocks=term_blocks,
     )

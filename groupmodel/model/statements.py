@@ -11,7 +11,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
-from ..text import number_text
+from ..text import number_text, value_text
 from .design import Design
 
 _num = number_text
@@ -42,11 +42,11 @@ def hold_phrase(design: Design, at_values: Mapping[str, float], skip: str | None
         if name == skip:
             continue
         if name in at_values:
-            parts.append(f"{name} at {_num(at_values[name])}")
+            parts.append(f"{name} at {value_text(at_values[name])}")
         elif cov.within:
             parts.append(f"{name} at each {cov.within} level's own mean")
         else:
-            parts.append(f"{name} at its mean {_num(cov.mean)}")
+            parts.append(f"{name} at its mean {value_text(cov.mean)}")
     return ("; " + ", ".join(parts)) if parts else ""
 
 

@@ -11,6 +11,7 @@ left-out row is listed with its reason.  Nothing vanishes silently.
 from __future__ import annotations
 
 import csv
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -300,9 +301,26 @@ def _left_out(spec: ModelSpec, table: pd.DataFrame, needed: Sequence[str],
     return exclusions, keep
 
 
+def _as_number(v: str) -> float | None:
+    try:
+        x = float(v)
+    except ValueError:
+        return None
+    return x if math.isfinite(x) else None
+
+
+def _sorted_levels(observed: list[str]) -> tuple[str, ...]:
+    """Observed levels in numeric order when every one reads as a finite number (``7 < 10 < 25``), else as text."""
+    numbers = [_as_number(v) for v in observed]
+    if all(x is not None for x in numbers):
+        return tuple(v for _, v in sorted(zip(numbers, observed, strict=True)))  # ties ("1", "1.0"): by text
+    return tuple(sorted(observed))
+
+
 def _factor_levels(spec: ModelSpec, f: str, values: list[str], rows: list[int],
                    sidecar_levels: Mapping[str, tuple[str, ...]], notes: list[str]) -> tuple[str, ...]:
-    """A factor's levels: declared in the spec, else in participants.json, else the sorted observed values.
+    """A factor's levels: declared in the spec, else in participants.json, else the sorted observed values
+    (numerically when every one reads as a finite number, else as text).
 
     Values outside declared levels are refused; sidecar levels nobody has are left out (with a note).
     """
@@ -317,7 +335,7 @@ def _factor_levels(spec: ModelSpec, f: str, values: list[str], rows: list[int],
         sidecar_name = spec.participants_sidecar.name if spec.participants_sidecar else "participants.json"
         source = f"{sidecar_name} {f}.Levels"
     else:
-        declared = tuple(sorted(observed))
+        declared = _sorted_levels(observed)
         source = ""
     if source:
         for r, v in zip(rows, values, strict=True):

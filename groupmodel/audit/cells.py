@@ -115,9 +115,10 @@ def _covariate_cells(role: ColumnRole, grid: _Grid, mean: float, rows: np.ndarra
         b = _factor_value(role, grid.sub_index(s, idx), view) if s else role.cov_scale
         sa = grid.sub_index(a, idx)
         ga = int(np.ravel_multi_index(sa, view.dims(a))) if a else 0
-        if role.centre_kind == "mean":
-            # Centred at its mean up to the rounding of the typed centre: hold the covariate at that
-            # centre, so the column is exactly 0 in every cell as its author meant.
+        if role.centre_kind == "mean" or (role.centre_kind == "within" and role.within in grid.factors):
+            # Centred at its mean up to the rounding of the typed centre (or at each level's own mean when
+            # centred within levels): hold the covariate at that centre, so the column is exactly 0 in every
+            # cell as its author meant.
             rows[ci] = 0.0
             slopes[ci] = b
             continue

@@ -20,6 +20,7 @@ import numpy as np
 from ..engine.linalg import ESTIMABILITY_TOL, RowSpace, dependent_columns, independent_rows
 from ..errors import GroupModelError
 from ..model.coding import degree_name
+from ..model.design import CovariateCoding
 from ..model.hypotheses import build_hypothesis
 from ..model.statements import describe_cell_weights
 from .cells import HandDesign
@@ -218,13 +219,14 @@ def _bases(ctx: AuditContext) -> list[tuple[str | None, dict[str, str], np.ndarr
     rows = hd.audit_rows
     real = list(ctx.columns.covariates)
     out: list[tuple[str | None, dict[str, str], np.ndarray]] = []
-    hold_mean = {c: f"{c} at its mean {num_text(cv.mean)}" for c, cv in hd.covariates.items()}
+    hold_mean = {c: _hold_text(c, cv) for c, cv in hd.covariates.items()}
     out.append((None, hold_mean, rows))
     for c in hd.covariates:
         out.append((c, {k: v for k, v in hold_mean.items() if k != c}, hd.audit_slopes[c]))
     for k in range(1, len(real) + 1):
         for zs in combinations(real, k):
-            if any(abs(hd.covariates[c].mean) <= UNCENTRED_MEAN_SD * hd.covariates[c].sd for c in zs):
+            if any(abs(hd.covariates[c].mean) <= UNCENTRED_MEAN_SD * hd.covariates[c].sd or hd.covariates[c].within
+                   for c in zs):
                 continue
             shifted = rows - sum(hd.audit_slopes[c] * hd.covariates[c].mean for c in zs)
             hold = dict(hold_mean)
@@ -232,6 +234,14 @@ def _bases(ctx: AuditContext) -> list[tuple[str | None, dict[str, str], np.ndarr
                 hold[c] = f"{c} at 0 (not at its mean {num_text(hd.covariates[c].mean)})"
             out.append((None, hold, shifted))
     return out
+
+
+def _hold_text(name: str, cov: CovariateCoding) -> str:
+    """Where a hand design holds a covariate when it states cell means: at its mean, or at each level's own."""
+    if cov.within and isinstance(cov.center, dict):
+        own = ", ".join(f"{num_text(m)} at {lv}" for lv, m in cov.center.items())
+        return f"{name} at each {cov.within} level's own mean ({own}), so not adjusted for {name}"
+    return f"{name} at its mean {num_text(cov.mean)}"
 
 
 def _interpret(ctx: AuditContext, L: np.ndarray, tol: float) -> Interpretation | None:

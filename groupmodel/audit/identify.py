@@ -127,8 +127,14 @@ def _hand_design(files: Files, table: PreparedTable, align: np.ndarray, found: t
         obs[c] = view.covariates[c][v]
     codings = {f: make_coding(f, view.factors[f], "effect", None, view.scores[f]) for f in factors}
     covcodes: dict[str, CovariateCoding] = {}
+    within = {r.covariate: r.within for r in roles if r.centre_kind == "within" and r.within in factors}
     for c in covariates:
-        covcodes[c] = CovariateCoding(c, "mean", means[c], None, 1.0, means[c], sds[c])
+        w = within.get(c)
+        if w is not None:  # held at each level's own mean (see fill_cells)
+            own = {lv: float(obs[c][obs[w] == lv].mean()) for lv in view.factors[w] if (obs[w] == lv).any()}
+            covcodes[c] = CovariateCoding(c, "within", own, w, 1.0, means[c], sds[c])
+        else:
+            covcodes[c] = CovariateCoding(c, "mean", means[c], None, 1.0, means[c], sds[c])
     for j, name in pseudo.items():
         col = x.values[v, j]
         m = float(col.mean())

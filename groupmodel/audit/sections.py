@@ -201,7 +201,31 @@ def covariate_findings(ctx: AuditContext) -> list[AuditFinding]:
     """Covariates uncentred in an interaction, or confounded with a factor."""
     if ctx.columns is None:
         return []
-    return _uncentred(ctx) + [f for c in ctx.columns.covariates for f in _confounded(ctx, c)]
+    return (_uncentred(ctx) + _within_centred(ctx)
+            + [f for c in ctx.columns.covariates for f in _confounded(ctx, c)])
+
+
+def _within_centred(ctx: AuditContext) -> list[AuditFinding]:
+    """A covariate centred within a factor's levels: that factor's comparisons are not adjusted for it."""
+    ident = ctx.columns
+    assert ident is not None
+    view = ident.view
+    out = []
+    seen: set[tuple[str, str]] = set()
+    for r in ident.roles:
+        if r.centre_kind != "within" or not r.covariate or not r.within or (r.covariate, r.within) in seen:
+            continue
+        c, f = r.covariate, r.within
+        seen.add((c, f))
+        vals, codes = view.covariates[c][view.valid], view.codes[f][view.valid]
+        own = ", ".join(f"{num_text(float(vals[codes == i].mean()))} at {lv}"
+                        for i, lv in enumerate(view.factors[f]) if (codes == i).any())
+        out.append(_at("covariates", "warning", "within_centred_covariate",
+                       f"{r.label}: covariate {c} centred within each level of {f} (its own mean subtracted in "
+                       f"each: {own}): the {f} comparisons are then between levels at their own mean {c}, not "
+                       f"adjusted for {c}; to adjust for it, subtract the overall mean "
+                       f"({num_text(ident.means[c])}) instead"))
+    return out
 
 
 def _uncentred(ctx: AuditContext) -> list[AuditFinding]:

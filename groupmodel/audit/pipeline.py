@@ -38,6 +38,7 @@ from .cells import HandDesign
 from .context import AuditContext, check_shape, make_request, read_inputs
 from .contrasts import ContrastReport, assess_contrasts
 from .identify import identify_columns
+from .pasted import pasted_covariate_findings
 from .read import AuditFinding
 from .report import SECTIONS, AuditReport
 from .sections import (
@@ -60,6 +61,7 @@ PIPELINE: tuple[Callable[[AuditContext], list[AuditFinding]], ...] = (
     shape_findings,
     row_and_image_findings,
     column_findings,
+    pasted_covariate_findings,
     rank_findings,
     contrast_findings,
     covariate_findings,

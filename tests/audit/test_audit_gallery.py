@@ -58,7 +58,7 @@ def test_gallery_is_complete():
         9: {"no_intercept", "extra_rows_excluded", "extra_row_duplicate", "marginal_mean_half_coding",
             "unexplained_named_factors", "short_first_contrast", "partial_main_effect", "correct_rounded_polynomial"},
         # covariates: centred within groups, the wrong column pasted
-        10: {"covariate_centred_within"},
+        10: {"covariate_centred_within", "covariate_wrong_column", "covariate_wrong_column_named"},
     }
     for kind, cases in kinds.items():
         assert cases <= set(CASES), (kind, cases - set(CASES))

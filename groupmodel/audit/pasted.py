@@ -20,7 +20,7 @@ from .context import AuditContext
 from .read import AuditFinding
 from .table_view import TableView, _is_float
 
-__all__ = ["pasted_covariate_findings"]
+__all__ = ["named_mismatch_candidates", "other_table_column", "pasted_covariate_findings"]
 
 
 def _warn(message: str) -> AuditFinding:
@@ -67,15 +67,12 @@ def _named_mismatch(ctx: AuditContext) -> list[AuditFinding]:
         return []
     where = "--covariates" if req.covariates else (req.spec_path.name if req.spec_path else "the spec")
     unused = [c for c in named if c not in ident.covariates]
-    frame = ctx.files.frame
-    view = ident.view
-    candidates = [str(c) for c in frame.columns
-                  if c != "participant_id" and c not in named and c not in view.factors]
+    candidates = named_mismatch_candidates(ctx)
     out = []
     for r in ident.roles:
         if r.kind != "unexplained":
             continue
-        found = _other_column(ctx, r, candidates)
+        found = other_table_column(ctx, r, candidates)
         if found is None:
             continue
         meant = " or ".join(unused) if unused else ", ".join(named)
@@ -86,7 +83,18 @@ def _named_mismatch(ctx: AuditContext) -> list[AuditFinding]:
     return out
 
 
-def _other_column(ctx: AuditContext, role: ColumnRole, candidates: list[str]) -> str | None:
+def named_mismatch_candidates(ctx: AuditContext) -> list[str]:
+    """The table columns an unexplained column may hold instead of a named covariate (none when none named)."""
+    req, ident = ctx.request, ctx.columns
+    assert ident is not None
+    named = list(req.covariates or (req.spec.model_covariates() if req.spec else []))
+    if not named:
+        return []
+    return [str(c) for c in ctx.files.frame.columns
+            if c != "participant_id" and c not in named and c not in ident.view.factors]
+
+
+def other_table_column(ctx: AuditContext, role: ColumnRole, candidates: list[str]) -> str | None:
     """The first numeric table column (not a named covariate) the column is an exact covariate function of."""
     ident = ctx.columns
     assert ident is not None

@@ -85,3 +85,10 @@ def test_gallery_case(case: str, tmp_path: Path, capsys: pytest.CaptureFixture[s
     else:
         assert bad, f"{case}: a faulty set was accepted without a warning or error"
 
+
+
+def test_wrong_covariate_column_is_one_finding(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A column holding another table column than --covariates names is said once, not also as unexplained."""
+    _, report, _, _ = _run("covariate_wrong_column_named", tmp_path, capsys)
+    codes = [f["code"] for f in report["findings"] if f["severity"] == "warning"]
+    assert codes == ["covariate_mismatch"]

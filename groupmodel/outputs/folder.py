@@ -177,8 +177,7 @@ class OutputLock:
         except (OSError, ValueError, KeyError, TypeError, AttributeError):
             owner, alive = {}, True  # unreadable (being written, say): not ours to judge
         if alive is False:
-            self.path.unlink(missing_ok=True)
-            self.stale = StaleLock(self.path, int(owner["pid"]))
+            self._remove_stale(owner)
             return
         self._remove_created()
         who = (f"process {owner.get('pid', '?')} on {owner.get('host', '?')}, started {owner.get('started', '?')}"
@@ -187,6 +186,27 @@ class OutputLock:
             f"--out {self.target}: another run is writing there ({who}; lock {self.path}); "
             "wait for it to end or choose another path"
         )
+
+    def _remove_stale(self, owner: dict[str, Any]) -> None:
+        """Move the dead run's lock aside and delete it; should another run have replaced it meanwhile (both saw
+        the same dead lock), put that run's lock back instead."""
+        aside = self.path.with_name(f"{self.path.name}.stale-{os.getpid()}")
+        try:
+            os.rename(self.path, aside)
+        except FileNotFoundError:
+            return  # removed by another run meanwhile
+        try:
+            moved = json.loads(aside.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            moved = None
+        if moved != owner:
+            try:
+                os.link(aside, self.path)  # fails if yet another lock is there: that one holds
+            except OSError:
+                pass
+        else:
+            self.stale = StaleLock(self.path, int(owner["pid"]))
+        aside.unlink(missing_ok=True)
 
     def _make_parent(self) -> None:
         parent = self.path.parent

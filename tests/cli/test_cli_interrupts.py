@@ -149,16 +149,21 @@ def _start_tfce_fit(tmp_path: Path, out: Path, env: dict[str, str]) -> subproces
 
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from /proc (Linux)")
-def test_sigterm_during_tfce_workers_ends_like_ctrl_c(tmp_path: Path) -> None:
-    """SIGTERM to the main process only (as a batch system at its time limit): exit 143 (128 + SIGTERM), one
-    line, workers gone, no hidden folder, no lock, no spill file left in TMPDIR."""
+@pytest.mark.parametrize("to_group", [False, True], ids=["main-process", "process-group"])
+def test_sigterm_during_tfce_workers_ends_like_ctrl_c(tmp_path: Path, to_group: bool) -> None:
+    """SIGTERM to the main process (as a batch system at its time limit), or to every process of the group (as
+    some send it): exit 143 (128 + SIGTERM), one line, workers gone, no hidden folder, no lock, no spill file
+    left in TMPDIR."""
     tmp = tmp_path / "tmp"
     tmp.mkdir()
     out = tmp_path / "results"
     proc = _start_tfce_fit(tmp_path, out, {**_env(), "TMPDIR": str(tmp)})
     try:
         assert list(tmp.glob("groupmodel-spill-*")), "the data were expected to spill (--memory 1MB)"
-        proc.send_signal(signal.SIGTERM)
+        if to_group:
+            os.killpg(proc.pid, signal.SIGTERM)
+        else:
+            proc.send_signal(signal.SIGTERM)
         stdout, stderr = proc.communicate(timeout=300)
     finally:
         if proc.poll() is None:

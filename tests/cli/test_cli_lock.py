@@ -108,3 +108,15 @@ def test_the_output_folder_follows_the_umask(tmp_path: Path, umask: int, mode: i
     finally:
         os.umask(previous)
     assert stat.S_IMODE((tmp_path / "out").stat().st_mode) == mode
+
+
+def test_a_lock_replaced_meanwhile_by_another_run_is_kept(tmp_path: Path) -> None:
+    """Two runs both judged the same dead lock; the first already put its own in place: the second must not
+    remove it."""
+    live = {"pid": os.getppid(), "host": socket.gethostname(), "process_start": None}
+    dead = {"pid": 999_999_999, "host": socket.gethostname(), "process_start": "1"}
+    lock = OutputLock(tmp_path / "out")
+    lock.path.write_text(json.dumps(live))
+    lock._remove_stale(dead)
+    assert json.loads(lock.path.read_text()) == live and lock.stale is None
+    assert [p.name for p in tmp_path.iterdir()] == [".out.lock"]

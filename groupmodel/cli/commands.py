@@ -6,12 +6,18 @@ import argparse
 from typing import Any
 
 from ..errors import OutputError
-from ..outputs.folder import OutputFolder
-from .printing import print_disclaimer, print_model_report, print_removed, print_voxel_fit
+from ..outputs.folder import OutputFolder, OutputLock
+from .printing import print_disclaimer, print_model_report, print_removed, print_stale_lock, print_voxel_fit
 
 
 def cmd_build(args: argparse.Namespace) -> int:
     """``groupmodel build``: build the model, report it, write the design files (none when it has errors)."""
+    with OutputLock(args.out) as lock:  # a second run into the same --out is refused at once
+        print_stale_lock(lock.stale)
+        return _build(args)
+
+
+def _build(args: argparse.Namespace) -> int:
     from ..model.assembly import build
     from ..outputs.design_files import write_model
 
@@ -31,6 +37,12 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
+    with OutputLock(args.out) as lock:  # a second run into the same --out is refused at once
+        print_stale_lock(lock.stale)
+        return _fit(args)
+
+
+def _fit(args: argparse.Namespace) -> int:
     print_removed(OutputFolder(args.out, force=args.force).removed)  # refuse an existing folder before any work
     if args.outcome:
         return _fit_table(args)

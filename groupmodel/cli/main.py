@@ -8,14 +8,22 @@ code: 0 ok, 1 the model or data has problems, 2 usage or unreadable input.
 When the reader of its output goes away (``groupmodel check ... | head``), it stops quietly with exit code
 141 (128 + SIGPIPE, as a command killed by the broken pipe), the recipe of the Python documentation's
 "Note on SIGPIPE".
+
+SIGTERM (what a batch system sends at its time limit) is handled as Ctrl-C: it raises :class:`Terminated`, a
+kind of KeyboardInterrupt, so the same clean-up runs (worker processes stopped, spill file and hidden folders
+removed, the lock released), then one line and exit code 143 (128 + SIGTERM).
 """
 
 from __future__ import annotations
 
+import argparse
 import os
+import signal
 import sys
+import threading
 import traceback
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from types import FrameType
 
 from ..errors import GroupModelError
 from .commands import COMMANDS
@@ -23,6 +31,17 @@ from .parser import make_parser
 
 #: Exit code when the reader of the output went away: 128 + SIGPIPE, as a command killed by the broken pipe.
 EXIT_BROKEN_PIPE = 141
+#: Exit code after SIGTERM: 128 + SIGTERM.
+EXIT_TERMINATED = 143
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM received: a KeyboardInterrupt, so every clean-up written for Ctrl-C runs for it too."""
+
+
+def _on_sigterm(signum: int, frame: FrameType | None) -> None:
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # once: a second SIGTERM must not interrupt the clean-up
+    raise Terminated()
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -53,6 +72,17 @@ def _run(argv: Sequence[str] | None) -> int:
     command = COMMANDS.get(args.command)
     if command is None:
         return 2
+    if threading.current_thread() is not threading.main_thread():  # signal handlers belong to the main thread
+        return _call(command, args)
+    previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        return _call(command, args)
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def _call(command: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> int:
+    """Run ``command``; errors, Ctrl-C and SIGTERM become one line on stderr and the exit code."""
     try:
         return command(args)
     except GroupModelError as exc:
@@ -60,6 +90,9 @@ def _run(argv: Sequence[str] | None) -> int:
             traceback.print_exc()
         sys.stderr.write(f"groupmodel: error: {exc}\n")
         return exc.exit_code
+    except Terminated:
+        sys.stderr.write("groupmodel: terminated (SIGTERM); nothing was written\n")
+        return EXIT_TERMINATED
     except KeyboardInterrupt:
         sys.stderr.write("groupmodel: interrupted; nothing was written\n")
         return 130

@@ -10,7 +10,7 @@ if TYPE_CHECKING:
     from ..analysis.corrections import InferenceOptions
     from ..analysis.voxel_fit import VoxelFit
     from ..model.assembly import Model
-    from ..outputs.folder import StaleFolder
+    from ..outputs.folder import StaleFolder, StaleLock
 
 
 def print_removed(removed: tuple[StaleFolder, ...]) -> None:
@@ -18,6 +18,12 @@ def print_removed(removed: tuple[StaleFolder, ...]) -> None:
     if removed:
         names = ", ".join(f"{r.path.name} (process {r.pid})" for r in removed)
         print(f"removed {names}: left beside --out by an earlier run that was killed before it finished")
+
+
+def print_stale_lock(stale: StaleLock | None) -> None:
+    """One line when the lock of a killed earlier run into the same --out was replaced."""
+    if stale is not None:
+        print(f"replaced {stale.path.name}: the lock of process {stale.pid}, which ended without releasing it")
 
 
 def print_model_report(model: Model) -> None:

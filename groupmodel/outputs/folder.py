@@ -21,7 +21,9 @@ import math
 import os
 import shutil
 import socket
+import sys
 import tempfile
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
@@ -105,6 +107,161 @@ def _owner() -> dict[str, Any]:
     return {"pid": pid, "host": socket.gethostname(), "process_start": _process_start(pid)}
 
 
+#: The lock file beside ``--out`` (``.<name>.lock``) held by the run writing there.
+LOCK_SUFFIX = ".lock"
+
+
+def _owner_alive_here(owner: dict[str, Any]) -> bool | None:
+    """Whether the process of an owner record is alive: True/False on this host, None on another host."""
+    if owner.get("host") != socket.gethostname():
+        return None
+    return not _process_gone(int(owner["pid"]), owner.get("process_start"))
+
+
+@dataclass(frozen=True)
+class StaleLock:
+    """The lock of a killed run into the same ``--out``, replaced by this run."""
+
+    path: Path
+    pid: int
+
+
+class OutputLock:
+    """A lock file beside ``--out`` held while one run works towards it, so that a second run into the same
+    place is refused at once instead of replacing the first one's results (or failing hours later).
+
+    The file ``.<name>.lock`` is created atomically (``O_CREAT | O_EXCL``) and holds the owner record of the
+    hidden folders (process id, host, process start time) plus the wall-clock start and the command line.
+    A lock whose process is gone (same host) is replaced and reported in :attr:`stale`; a live one, or one of
+    another host, refuses the run with an :class:`~groupmodel.errors.OutputError` (exit code 2).  Use as a
+    context manager; the lock is released on exit, whatever the outcome.
+    """
+
+    def __init__(self, target: Path | str) -> None:
+        self.target = Path(target)
+        parent = self.target.parent if str(self.target.parent) else Path(".")
+        self.path = parent / f".{self.target.name}{LOCK_SUFFIX}"
+        self.stale: StaleLock | None = None
+        self._created: list[Path] = []
+        self._held = False
+
+    def __enter__(self) -> OutputLock:
+        check_parent(self.target)
+        self._make_parent()
+        record = {**_owner(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"), "command": sys.argv}
+        for _ in range(3):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o666)
+            except FileExistsError:
+                self._judge_existing()
+                continue
+            except OSError as exc:
+                self._remove_created()
+                raise OutputError(
+                    f"--out {self.target}: cannot create the lock file {self.path} ({exc.strerror}); "
+                    "choose another path"
+                ) from exc
+            with os.fdopen(fd, "w", encoding="utf-8") as handle:
+                handle.write(json.dumps(record, ensure_ascii=False))
+            self._held = True
+            return self
+        raise OutputError(f"--out {self.target}: could not take the lock {self.path}; try again")
+
+    def _judge_existing(self) -> None:
+        """Remove the existing lock file if its run is gone (on this host); else refuse this run."""
+        try:
+            owner = json.loads(self.path.read_text(encoding="utf-8"))
+            alive = _owner_alive_here(owner)
+        except FileNotFoundError:
+            return  # released meanwhile: try again
+        except (OSError, ValueError, KeyError, TypeError, AttributeError):
+            owner, alive = {}, True  # unreadable (being written, say): not ours to judge
+        if alive is False:
+            self._remove_stale(owner)
+            return
+        self._remove_created()
+        who = (f"process {owner.get('pid', '?')} on {owner.get('host', '?')}, started {owner.get('started', '?')}"
+               if owner else "a run whose lock file cannot be read")
+        raise OutputError(
+            f"--out {self.target}: another run is writing there ({who}; lock {self.path}); "
+            "wait for it to end or choose another path"
+        )
+
+    def _remove_stale(self, owner: dict[str, Any]) -> None:
+        """Move the dead run's lock aside and delete it; should another run have replaced it meanwhile (both saw
+        the same dead lock), put that run's lock back instead."""
+        aside = self.path.with_name(f"{self.path.name}.stale-{os.getpid()}")
+        try:
+            os.rename(self.path, aside)
+        except FileNotFoundError:
+            return  # removed by another run meanwhile
+        try:
+            moved = json.loads(aside.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            moved = None
+        if moved != owner:
+            try:
+                os.link(aside, self.path)  # fails if yet another lock is there: that one holds
+            except OSError:
+                pass
+        else:
+            self.stale = StaleLock(self.path, int(owner["pid"]))
+        aside.unlink(missing_ok=True)
+
+    def _make_parent(self) -> None:
+        parent = self.path.parent
+        missing = []
+        while not parent.exists() and parent != parent.parent:
+            missing.append(parent)
+            parent = parent.parent
+        try:
+            for folder in reversed(missing):
+                folder.mkdir()
+                self._created.append(folder)
+        except OSError as exc:
+            self._remove_created()
+            raise OutputError(
+                f"--out {self.target}: cannot create a folder there ({exc.strerror}); choose another path"
+            ) from exc
+
+    def _remove_created(self) -> None:
+        """Remove the parent folders this lock created, if nothing else was put in them."""
+        for folder in reversed(self._created):
+            try:
+                folder.rmdir()
+            except OSError:
+                break
+        self._created = []
+
+    def __exit__(self, *exc: object) -> None:
+        if self._held:
+            try:
+                owner = json.loads(self.path.read_text(encoding="utf-8"))
+                if int(owner["pid"]) == os.getpid():
+                    self.path.unlink()
+            except (OSError, ValueError, KeyError, TypeError):
+                pass
+            self._held = False
+        if not self.target.exists():
+            self._remove_created()
+
+
+def check_parent(target: Path) -> None:
+    """Refuse a ``--out`` whose parent is a file or not writable."""
+    parent = target.parent if str(target.parent) else Path(".")
+    if parent.exists() and not parent.is_dir():
+        raise OutputError(f"--out {target}: {parent} is a file, not a folder; choose another path")
+    if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(f"--out {target}: the folder {parent} is not writable; choose another path")
+
+
+def _umask() -> int:
+    """The process's umask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @dataclass(frozen=True)
 class StaleFolder:
     """A hidden folder left beside ``--out`` by a run that was killed, removed by a later run."""
@@ -177,11 +334,7 @@ class OutputFolder:
                     f"--out {self.target}: the folder exists and is not empty; "
                     "choose another path or add --force to replace it"
                 )
-        parent = self.target.parent if str(self.target.parent) else Path(".")
-        if parent.exists() and not parent.is_dir():
-            raise OutputError(f"--out {self.target}: {parent} is a file, not a folder; choose another path")
-        if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
-            raise OutputError(f"--out {self.target}: the folder {parent} is not writable; choose another path")
+        check_parent(self.target)
         self.removed = remove_stale_folders(self.target)
         self.path: Path | None = None
 
@@ -209,6 +362,7 @@ class OutputFolder:
             return
         try:
             (self.path / OWNER_FILE).unlink()
+            os.chmod(self.path, 0o777 & ~_umask())  # as any folder the user creates (mkdtemp makes it 0700)
             if self.target.exists():
                 old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-", dir=self.path.parent))
                 (old / OWNER_FILE).write_text(json.dumps(_owner()), encoding="utf-8")

@@ -128,3 +128,54 @@ def test_a_shell_pipeline_into_head(tmp_path: Path) -> None:
     proc = subprocess.run(["sh", "-c", script], capture_output=True, text=True, env=_env(), cwd=tmp_path,
                           timeout=120)
     assert proc.stdout.count("\n") == 1 and proc.stderr == "", proc.stderr
+
+
+def _start_tfce_fit(tmp_path: Path, out: Path, env: dict[str, str]) -> subprocess.Popen[bytes]:
+    """A TFCE fit with 2 worker processes, returned once the workers are up and have taken their batches."""
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "groupmodel.cli", "fit", str(EXAMPLE / "model.json"), "--out", str(out),
+         "--permutations", "20000", "--tfce", "--jobs", "2", "--memory", "1MB"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True, env=env, cwd=tmp_path,
+    )
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and proc.poll() is None:
+        if len([c for c in _children(proc.pid) if b"spawn_main" in c[2]]) >= 2:
+            break
+        time.sleep(0.1)
+    assert proc.poll() is None, proc.communicate()
+    time.sleep(1.0)
+    return proc
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from /proc (Linux)")
+@pytest.mark.parametrize("to_group", [False, True], ids=["main-process", "process-group"])
+def test_sigterm_during_tfce_workers_ends_like_ctrl_c(tmp_path: Path, to_group: bool) -> None:
+    """SIGTERM to the main process (as a batch system at its time limit), or to every process of the group (as
+    some send it): exit 143 (128 + SIGTERM), one line, workers gone, no hidden folder, no lock, no spill file
+    left in TMPDIR."""
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    out = tmp_path / "results"
+    proc = _start_tfce_fit(tmp_path, out, {**_env(), "TMPDIR": str(tmp)})
+    try:
+        assert list(tmp.glob("groupmodel-spill-*")), "the data were expected to spill (--memory 1MB)"
+        if to_group:
+            os.killpg(proc.pid, signal.SIGTERM)
+        else:
+            proc.send_signal(signal.SIGTERM)
+        stdout, stderr = proc.communicate(timeout=300)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    err = stderr.decode()
+    assert proc.returncode == 143, err
+    assert "Traceback" not in err and "Error" not in err, err
+    assert err.count("\n") == 1 and err.startswith("groupmodel: terminated"), err
+    assert not out.exists() and not list(tmp_path.glob(".results*"))
+    assert not list(tmp.glob("groupmodel-spill-*"))
+    deadline = time.monotonic() + 30
+    while _group_alive(proc.pid) and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert _group_alive(proc.pid) == []

@@ -13,6 +13,7 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -56,39 +57,55 @@ def _env() -> dict[str, str]:
     return {**os.environ, "PYTHONPATH": os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")])}
 
 
+def _start_tfce_fit(tmp_path: Path, out: Path, env: dict[str, str], *extra: str) -> subprocess.Popen[bytes]:
+    """A TFCE fit with 2 worker processes, returned once the workers are up and have taken their batches."""
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "groupmodel.cli", "fit", str(EXAMPLE / "model.json"), "--out", str(out),
+         "--permutations", "20000", "--tfce", "--jobs", "2", *extra],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True, env=env, cwd=tmp_path,
+    )
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and proc.poll() is None:  # the permutation phase: workers are up
+        if len([c for c in _children(proc.pid) if b"spawn_main" in c[2]]) >= 2:
+            break
+        time.sleep(0.1)
+    assert proc.poll() is None, proc.communicate()
+    time.sleep(1.0)  # let the workers take their first batches
+    return proc
+
+
+def _stop(proc: subprocess.Popen[bytes], send: Callable[[], None]) -> str:
+    """Send the signal, wait for the run to end (killing its group if it does not) and return its stderr."""
+    try:
+        send()
+        _, stderr = proc.communicate(timeout=300)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    return stderr.decode()
+
+
+def _assert_group_ends(pgid: int) -> None:
+    """The workers end with their parent: no live process of the group within 30 s."""
+    deadline = time.monotonic() + 30
+    while _group_alive(pgid) and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert _group_alive(pgid) == []
+
+
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from /proc (Linux)")
 def test_ctrl_c_during_tfce_workers_ends_quietly(tmp_path: Path) -> None:
     """SIGINT to the whole process group (as a terminal sends it) while TFCE nulls run in 2 worker processes."""
     out = tmp_path / "results"
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "groupmodel.cli", "fit", str(EXAMPLE / "model.json"), "--out", str(out),
-         "--permutations", "20000", "--tfce", "--jobs", "2"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True, env=_env(), cwd=tmp_path,
-    )
-    try:
-        deadline = time.monotonic() + 300
-        while time.monotonic() < deadline and proc.poll() is None:  # the permutation phase: workers are up
-            if len([c for c in _children(proc.pid) if b"spawn_main" in c[2]]) >= 2:
-                break
-            time.sleep(0.1)
-        assert proc.poll() is None, proc.communicate()
-        time.sleep(1.0)  # let the workers take their first batches
-        os.killpg(proc.pid, signal.SIGINT)
-        stdout, stderr = proc.communicate(timeout=300)
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait()
-    err = stderr.decode()
+    proc = _start_tfce_fit(tmp_path, out, _env())
+    err = _stop(proc, lambda: os.killpg(proc.pid, signal.SIGINT))
     assert proc.returncode == 130, err
     assert "Traceback" not in err and "Error" not in err, err
     assert err.count("\n") == 1 and err.startswith("groupmodel: interrupted"), err
     assert not out.exists() and not list(tmp_path.glob(".results*"))
-    deadline = time.monotonic() + 30  # the workers end with their parent
-    while _group_alive(proc.pid) and time.monotonic() < deadline:
-        time.sleep(0.2)
-    assert _group_alive(proc.pid) == []
+    _assert_group_ends(proc.pid)
 
 
 COMMANDS = {
@@ -130,23 +147,6 @@ def test_a_shell_pipeline_into_head(tmp_path: Path) -> None:
     assert proc.stdout.count("\n") == 1 and proc.stderr == "", proc.stderr
 
 
-def _start_tfce_fit(tmp_path: Path, out: Path, env: dict[str, str]) -> subprocess.Popen[bytes]:
-    """A TFCE fit with 2 worker processes, returned once the workers are up and have taken their batches."""
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "groupmodel.cli", "fit", str(EXAMPLE / "model.json"), "--out", str(out),
-         "--permutations", "20000", "--tfce", "--jobs", "2", "--memory", "1MB"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True, env=env, cwd=tmp_path,
-    )
-    deadline = time.monotonic() + 300
-    while time.monotonic() < deadline and proc.poll() is None:
-        if len([c for c in _children(proc.pid) if b"spawn_main" in c[2]]) >= 2:
-            break
-        time.sleep(0.1)
-    assert proc.poll() is None, proc.communicate()
-    time.sleep(1.0)
-    return proc
-
-
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from /proc (Linux)")
 @pytest.mark.parametrize("to_group", [False, True], ids=["main-process", "process-group"])
@@ -157,25 +157,13 @@ def test_sigterm_during_tfce_workers_ends_like_ctrl_c(tmp_path: Path, to_group: 
     tmp = tmp_path / "tmp"
     tmp.mkdir()
     out = tmp_path / "results"
-    proc = _start_tfce_fit(tmp_path, out, {**_env(), "TMPDIR": str(tmp)})
-    try:
-        assert list(tmp.glob("groupmodel-spill-*")), "the data were expected to spill (--memory 1MB)"
-        if to_group:
-            os.killpg(proc.pid, signal.SIGTERM)
-        else:
-            proc.send_signal(signal.SIGTERM)
-        stdout, stderr = proc.communicate(timeout=300)
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait()
-    err = stderr.decode()
+    proc = _start_tfce_fit(tmp_path, out, {**_env(), "TMPDIR": str(tmp)}, "--memory", "1MB")
+    assert list(tmp.glob("groupmodel-spill-*")), "the data were expected to spill (--memory 1MB)"
+    err = _stop(proc, (lambda: os.killpg(proc.pid, signal.SIGTERM)) if to_group
+                else (lambda: proc.send_signal(signal.SIGTERM)))
     assert proc.returncode == 143, err
     assert "Traceback" not in err and "Error" not in err, err
     assert err.count("\n") == 1 and err.startswith("groupmodel: terminated"), err
     assert not out.exists() and not list(tmp_path.glob(".results*"))
     assert not list(tmp.glob("groupmodel-spill-*"))
-    deadline = time.monotonic() + 30
-    while _group_alive(proc.pid) and time.monotonic() < deadline:
-        time.sleep(0.2)
-    assert _group_alive(proc.pid) == []
+    _assert_group_ends(proc.pid)

@@ -11,7 +11,7 @@ Numerics (the engine runs at every voxel and on the NIST StRD test data, so it i
   above the rank tolerance (default ``S.max() * max(n, p) * eps``, as ``numpy.linalg.matrix_rank``)
   give the rank ``r`` and ``df_resid = n - r``.  ``X'X`` is never formed or inverted.
 * Rank-deficient designs are allowed; every test row ``L`` must be estimable, i.e. lie in the row
-  space of ``X``: ``||L - L V_r V_r'|| <= ESTIMABILITY_RTOL * ||L||``, otherwise
+  space of ``X``: ``||L - L V_r V_r'|| <= ESTIMABILITY_TOL * ||L||`` (:mod:`groupmodel.engine.linalg`), otherwise
   :class:`~groupmodel.errors.EstimabilityError`.  Effects are then unique, whatever generalised
   inverse is used; the engine uses the pseudo-inverse.
 * If the constant vector lies in the column space of ``X``, each voxel's mean is subtracted before
@@ -52,11 +52,10 @@ import numpy as np
 
 from ..errors import EstimabilityError, InputError, ModelError
 from . import tails
-from .linalg import ESTIMABILITY_TOL, RowSpace, rank_tolerance, rows_dependent
+from .linalg import RowSpace, rank_tolerance, rows_dependent
 
 __all__ = [
     "ChunkResult",
-    "ESTIMABILITY_RTOL",
     "Prepared",
     "Test",
     "TestResult",
@@ -65,9 +64,6 @@ __all__ = [
 ]
 
 _EPS = float(np.finfo(np.float64).eps)
-#: Relative tolerance of the estimability check ``||L - L V_r V_r'|| <= tol * ||L||``: the one in
-#: :mod:`groupmodel.engine.linalg` (see there why 1e-8).
-ESTIMABILITY_RTOL = ESTIMABILITY_TOL
 #: The constant vector counts as in the column space of X when ``||1 - U U' 1|| <= this * sqrt(n)``;
 #: otherwise the data are fitted uncentred (correct, only without the protection against offsets).
 CONSTANT_RTOL = 1e-9

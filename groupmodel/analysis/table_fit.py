@@ -13,6 +13,7 @@ from ..errors import ModelError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..text import DISCLAIMER
+from .strata_fit import StrataTableFit, fit_strata_table
 
 #: Columns of results.tsv, in order.
 RESULT_COLUMNS = ["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
@@ -70,7 +71,7 @@ def require_fittable(model: Model) -> None:
         raise ModelError(f"{model.spec.name}: the spec has no hypotheses to test; add a 'hypotheses' object")
 
 
-def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
+def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit | StrataTableFit:
     """Fit every hypothesis of ``spec`` to the numeric table column ``outcome``.
 
     Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.
@@ -79,6 +80,8 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
         spec = load_spec(spec)
     model = build(spec, numeric_columns=[outcome])
     require_fittable(model)
+    if model.strata is not None:  # within-participant factors: each hypothesis in its error stratum
+        return fit_strata_table(model, outcome)
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)

@@ -44,7 +44,29 @@ def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, picture
     return Path(out)
 
 
+#: The further columns of results.tsv for a model with within-participant factors.
+STRATA_COLUMNS = {
+    "stratum": "error stratum: between (participant averages), within (within contrasts) or mixed (a weighted "
+               "sum over within cells that is neither)",
+    "epsilon_gg": "Greenhouse-Geisser (1959) epsilon (F tests with more than one within df; else n/a)",
+    "epsilon_hf": "Huynh-Feldt (1976) epsilon, Lecoutre (1991) form, at most 1 (as epsilon_gg)",
+    "p_gg": "p of F on df1 x epsilon_gg and df2 x epsilon_gg (as epsilon_gg)",
+    "participants": "participants who entered the hypothesis (a missing within cell it needs leaves one out)",
+}
+
+
 def _results_sidecar(fit: TableFit) -> dict[str, Any]:
+    if hasattr(fit, "strata_sidecar"):  # within-participant factors: the strata say what was fitted
+        return {
+            **provenance(),
+            "outcome": fit.outcome,
+            "n_observations": fit.model.design.n_observations,
+            "columns": {**RESULTS_COLUMNS, **STRATA_COLUMNS},
+            "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
+                           for n, h in fit.model.hypotheses.items()},
+            "strata": fit.strata_sidecar(),
+            "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        }
     return {
         **provenance(),
         "outcome": fit.outcome,

@@ -1,0 +1,155 @@
+"""Fitting hypotheses in their error strata (within-participant factors; see :mod:`groupmodel.model.strata`).
+
+Each hypothesis's transformed data ``Z`` (participants x c x voxels: participant averages, within contrasts or
+weighted sums) are fitted with the between-participant design ``X``; with ``B = X^+ Z`` and ``L`` the between
+rows, ``D = L B`` (a x c per voxel):
+
+* ``SSH = trace(D' [L X^+ X^+' L']^-1 D)``, ``df1 = a c``; ``SSE`` the residual sum of squares over all c
+  columns, ``df2 = (n - rank X) c``; ``F = (SSH / df1) / (SSE / df2)``: the classical split-plot F with
+  sphericity assumed (for c = 1 the ordinary OLS F or t on the transformed values);
+* with c > 1, from ``S`` the c x c residual cross-products of the orthonormal contrasts: the Greenhouse-Geisser
+  epsilon ``tr(S)^2 / (c tr(S^2))`` (Greenhouse and Geisser 1959), the Huynh-Feldt epsilon
+  ``min(1, ((d + 1) c e - 2) / (c (d - c e)))`` with ``d = n - rank X`` (Huynh and Feldt 1976, with the
+  Lecoutre 1991 correction of N to d + 1) and the GG-corrected p of F on ``(df1 e, df2 e)`` df.
+
+Everything is per voxel and pure: the same function serves the table-level fit (one "voxel") and chunks of
+images.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from ..engine.linalg import matrix_rank
+from ..engine.tails import f_tests, t_tests
+from ..model.assembly import Model
+from ..model.strata import StratumTest
+from ..text import DISCLAIMER
+
+#: Columns of results.tsv for a model with within-participant factors, in order.
+STRATA_RESULT_COLUMNS = ["hypothesis", "stratum", "test", "tail", "estimate", "se", "statistic", "df1", "df2",
+                         "p", "z", "epsilon_gg", "epsilon_hf", "p_gg", "participants"]
+
+
+@dataclass(frozen=True)
+class StratumResult:
+    """One hypothesis fitted in its stratum; arrays of shape (v,), NaN where not applicable."""
+
+    estimate: np.ndarray
+    se: np.ndarray
+    statistic: np.ndarray
+    p: np.ndarray
+    z: np.ndarray
+    df1: float
+    df2: float
+    epsilon_gg: np.ndarray
+    epsilon_hf: np.ndarray
+    p_gg: np.ndarray
+    participants: int
+
+
+def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResult:
+    """Fit transformed data ``z`` (n, c, v) with the between design ``x`` (n, p) and test ``test``."""
+    n, c, v = z.shape
+    pinv = np.linalg.pinv(x)
+    df_e = n - matrix_rank(x)
+    flat = z.reshape(n, c * v)
+    coef = pinv @ flat
+    resid = (flat - x @ coef).reshape(n, c, v)
+    sse = np.einsum("ncv,ncv->v", resid, resid)
+    lw = test.between_weights
+    a = lw.shape[0]
+    d = (lw @ coef).reshape(a, c, v)
+    m = lw @ pinv @ pinv.T @ lw.T
+    nan = np.full(v, np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if test.test == "t" and a * c == 1:
+            sigma2 = sse / df_e
+            est = d[0, 0]
+            se = np.sqrt(m[0, 0] * sigma2)
+            stat = est / se
+            p, _, zz = t_tests(stat, df_e, test.tail)  # type: ignore[arg-type]
+            return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, n)
+        ssh = np.einsum("acv,ab,bcv->v", d, np.linalg.inv(m), d)
+        df1, df2 = float(a * c), float(df_e * c)
+        stat = (ssh / df1) / (sse / df2)
+        p, _, zz = f_tests(stat, df1, df2)
+        if c == 1:
+            return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, n)
+        gg, hf = sphericity_epsilons(resid, df_e)
+        p_gg, _, _ = f_tests(stat, df1 * gg, df2 * gg)
+    return StratumResult(nan, nan, stat, p, zz, df1, df2, gg, hf, p_gg, n)
+
+
+def sphericity_epsilons(resid: np.ndarray, df_e: int) -> tuple[np.ndarray, np.ndarray]:
+    """Greenhouse-Geisser and Huynh-Feldt epsilons from residuals of orthonormal contrasts (n, c, v)."""
+    c = resid.shape[1]
+    s = np.einsum("ncv,ndv->cdv", resid, resid)
+    trace = np.einsum("ccv->v", s)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gg = trace**2 / (c * np.einsum("cdv,cdv->v", s, s))
+        hf = np.minimum(1.0, ((df_e + 1) * c * gg - 2) / (c * (df_e - c * gg)))
+    return gg, hf
+
+
+def fit_strata_values(model: Model, values: np.ndarray) -> dict[str, StratumResult]:
+    """Every hypothesis fitted in its stratum to values over the observations (n_obs, v)."""
+    strata = model.strata
+    assert strata is not None
+    return {name: fit_stratum(strata.design_of(name), t, strata.transformed(name, values))
+            for name, t in strata.tests.items()}
+
+
+@dataclass
+class StrataTableFit:
+    """The table-level fit of a model with within-participant factors to one outcome column."""
+
+    model: Model
+    outcome: str
+    results: dict[str, StratumResult]
+    table: pd.DataFrame
+
+    def format(self) -> str:
+        strata = self.model.strata
+        assert strata is not None
+        lines = [f"outcome {self.outcome}: {strata.n_observations} observations of "
+                 f"{len(strata.participant_ids)} participants; each hypothesis in its error stratum"]
+        frame = self.table.copy()
+        for col in ("estimate", "se", "statistic", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p"):
+            frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
+        lines.append(frame.to_string(index=False))
+        lines.append(DISCLAIMER)
+        return "\n".join(lines)
+
+    def strata_sidecar(self) -> dict[str, object]:
+        """What results.json adds for the strata: each hypothesis's stratum and transformed data."""
+        strata = self.model.strata
+        assert strata is not None
+        return {n: t.as_dict(strata) for n, t in strata.tests.items()}
+
+
+def strata_table(model: Model, results: dict[str, StratumResult]) -> pd.DataFrame:
+    strata = model.strata
+    assert strata is not None
+    records = []
+    for name, r in results.items():
+        t = strata.tests[name]
+        records.append({
+            "hypothesis": name, "stratum": t.stratum, "test": t.test, "tail": t.tail,
+            "estimate": float(r.estimate[0]), "se": float(r.se[0]), "statistic": float(r.statistic[0]),
+            "df1": r.df1, "df2": r.df2, "p": float(r.p[0]), "z": float(r.z[0]),
+            "epsilon_gg": float(r.epsilon_gg[0]), "epsilon_hf": float(r.epsilon_hf[0]), "p_gg": float(r.p_gg[0]),
+            "participants": r.participants,
+        })
+    return pd.DataFrame.from_records(records, columns=STRATA_RESULT_COLUMNS)
+
+
+def fit_strata_table(model: Model, outcome: str) -> StrataTableFit:
+    """Table-level fit of a built model with strata (``model`` built with ``numeric_columns=[outcome]``)."""
+    y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
+    results = fit_strata_values(model, y)
+    return StrataTableFit(model, outcome, results, strata_table(model, results))
+

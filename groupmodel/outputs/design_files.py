@@ -18,6 +18,7 @@ from ..model.checks import cell_counts_by_term
 from .folder import OutputFolder
 from .numbers import tidy
 from .provenance import provenance
+from .strata_files import strata_sidecar, write_strata
 
 if TYPE_CHECKING:
     from ..model.assembly import Model
@@ -82,6 +83,7 @@ def design_sidecar(model: Model) -> dict[str, Any]:
         ],
         "excluded": [e.as_dict() for e in model.sample.exclusions],
         "findings": [f.as_dict() for f in model.findings],
+        **({"strata": strata_sidecar(model.strata)} if model.strata is not None else {}),
     }
 
 
@@ -100,7 +102,7 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[
     out.write_json("design.json", design_sidecar(model))
     out.write_tsv("contrasts.tsv", contrasts_frame(model))
     out.write_json("contrasts.json", contrasts_sidecar(model))
-    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", *write_strata(model, out)]
     if pictures:
         names += draw_pictures(model, out)
     return names

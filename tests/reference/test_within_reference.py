@@ -254,3 +254,29 @@ def test_missing_within_cell_leaves_participant_out_where_needed(tmp_path: Path)
     diff = smf.ols("d ~ C(g)", pd.DataFrame({"d": wide.s1 - wide.s0, "g": groups})).fit()  # statsmodels OLS
     means = diff.params["Intercept"] + np.array([0, diff.params["C(g)[T.g1]"], diff.params["C(g)[T.g2]"]])
     np.testing.assert_allclose(row(fit, "early")["estimate"], means.mean(), rtol=1e-10)
+
+
+def test_simple_effects_with_at_equal_ols_on_transformed_values(tmp_path: Path) -> None:
+    data = split_plot(seed=23)
+    spec = write_study(tmp_path, people_of(data, ["group"]), data.drop(columns="group"), {
+        "factors": {"group": {}, "session": {"within": True}}, "terms": ["group*session"],
+        "hypotheses": {"gain_g1": {"compare": {"session": ["s2", "s0"]}, "at": {"group": "g1"}},
+                       "g1_vs_g0_at_s1": {"compare": {"group": ["g1", "g0"]}, "at": {"session": "s1"}},
+                       "mean_s2": {"mean": {"session": "s2"}}}})
+    fit = fit_table(spec, "y")
+    wide = data.pivot(index="participant_id", columns="session", values="y")
+    groups = data.groupby("participant_id")["group"].first()
+    frame = pd.DataFrame({"d": wide.s2 - wide.s0, "s1": wide.s1, "s2": wide.s2, "g": groups})
+    gain = smf.ols("d ~ C(g)", frame).fit().t_test("Intercept + C(g)[T.g1] = 0")  # statsmodels OLS t_test
+    r = row(fit, "gain_g1")
+    assert r["stratum"] == "within"
+    np.testing.assert_allclose([r["estimate"], r["statistic"], r["p"]],
+                               [float(np.squeeze(gain.effect)), float(np.squeeze(gain.tvalue)), float(gain.pvalue)],
+                               rtol=1e-8)
+    at_s1 = smf.ols("s1 ~ C(g)", frame).fit().t_test("C(g)[T.g1] = 0")  # statsmodels OLS t_test
+    r = row(fit, "g1_vs_g0_at_s1")
+    assert r["stratum"] == "mixed"
+    np.testing.assert_allclose([r["estimate"], r["statistic"]],
+                               [float(np.squeeze(at_s1.effect)), float(np.squeeze(at_s1.tvalue))], rtol=1e-8)
+    mean_s2 = smf.ols("s2 ~ C(g)", frame).fit().t_test("Intercept + C(g)[T.g1] / 3 + C(g)[T.g2] / 3 = 0")
+    np.testing.assert_allclose(row(fit, "mean_s2")["statistic"], float(np.squeeze(mean_s2.tvalue)), rtol=1e-8)

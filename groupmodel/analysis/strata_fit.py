@@ -49,6 +49,8 @@ class StratumResult:
     epsilon_hf: np.ndarray
     p_gg: np.ndarray
     participants: int
+    log_p: np.ndarray
+    residual_variance: np.ndarray
 
 
 def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResult:
@@ -71,17 +73,17 @@ def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResul
             est = d[0, 0]
             se = np.sqrt(m[0, 0] * sigma2)
             stat = est / se
-            p, _, zz = t_tests(stat, df_e, test.tail)  # type: ignore[arg-type]
-            return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, n)
+            p, log_p, zz = t_tests(stat, df_e, test.tail)  # type: ignore[arg-type]
+            return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, n, log_p, sigma2)
         ssh = np.einsum("acv,ab,bcv->v", d, np.linalg.inv(m), d)
         df1, df2 = float(a * c), float(df_e * c)
         stat = (ssh / df1) / (sse / df2)
-        p, _, zz = f_tests(stat, df1, df2)
+        p, log_p, zz = f_tests(stat, df1, df2)
         if c == 1:
-            return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, n)
+            return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, n, log_p, sse / df2)
         gg, hf = sphericity_epsilons(resid, df_e)
         p_gg, _, _ = f_tests(stat, df1 * gg, df2 * gg)
-    return StratumResult(nan, nan, stat, p, zz, df1, df2, gg, hf, p_gg, n)
+    return StratumResult(nan, nan, stat, p, zz, df1, df2, gg, hf, p_gg, n, log_p, sse / df2)
 
 
 def sphericity_epsilons(resid: np.ndarray, df_e: int) -> tuple[np.ndarray, np.ndarray]:

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..engine.ols import Prepared, fit_chunk, prepare
-from ..errors import InputError
+from ..errors import InputError, ModelError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..runtime.memory import DATA_SHARE, MemoryBudget
@@ -26,6 +26,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .strata_voxels import strata_degrees, strata_pass
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -71,6 +72,12 @@ class VoxelFit:
     inference: dict[str, Any] | None = None
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+    #: Hypothesis -> (df1, df2) where they differ by hypothesis (within-participant factors: its stratum).
+    degrees: dict[str, tuple[int, int]] = field(default_factory=dict)
+
+    def df_of(self, name: str) -> tuple[int, int]:
+        """A hypothesis's numerator and denominator degrees of freedom."""
+        return self.degrees.get(name, (self.model.hypotheses[name].n_rows, self.df_resid))
 
     @property
     def elements(self) -> str:
@@ -90,8 +97,8 @@ class VoxelFit:
                 "hypothesis": h.name,
                 "test": h.test,
                 "tail": h.tail,
-                "df1": h.n_rows,
-                "df2": self.df_resid,
+                "df1": self.df_of(h.name)[0],
+                "df2": self.df_of(h.name)[1],
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
@@ -178,15 +185,25 @@ def fit_images(
     require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
-    prepared = prepare(model.design.matrix, model.tests())
+    if model.strata is not None and inference.active:
+        raise ModelError(f"{spec.name}: permutation inference of within-participant factors is not available yet; "
+                         "fit without permutations (--permutations 0)")
+    prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
     data = _load(source, mask if mask is not None else spec.mask, budget, progress)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
-            n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
-            chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
+            n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) + 3 for h in model.hypotheses.values()) + 1
+            chunk_voxels = chunk_size_for(model.design.n_observations, len(model.hypotheses),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        degrees: dict[str, tuple[int, int]] = {}
+        if prepared is None:  # within-participant factors: each hypothesis in its error stratum
+            maps, resid_var = strata_pass(model, data, chunk_voxels, progress)
+            degrees = strata_degrees(model)
+            df_resid = int(min(d[1] for d in degrees.values()))
+        else:
+            maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+            df_resid = prepared.df_resid
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
@@ -202,10 +219,10 @@ def fit_images(
             "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
             "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
         }
-        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
-                        tables={n: r.tables for n, r in permuted.items()})
+                        tables={n: r.tables for n, r in permuted.items()}, degrees=degrees)
     finally:
         data.close()
 

@@ -90,6 +90,8 @@ CORRECTION_NOTES = {
     "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
     "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
     "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
+    "p_gg": "Greenhouse-Geisser (1959) corrected p: F on df1 x epsilon_gg and df2 x epsilon_gg (uncorrected for "
+            "multiple comparisons)",
     "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
@@ -141,10 +143,12 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
             "weights": written["weights"],
             # over cell means (over cell slopes for a slope), as in contrasts.json
             **{k: written[k] for k in CELL_WEIGHT_KEYS if k in written},
-            "df1": h.n_rows,
-            "df2": fit.df_resid,
+            "df1": fit.df_of(name)[0],
+            "df2": fit.df_of(name)[1],
             "tail": h.tail,
         })
+        if fit.model.strata is not None:  # within-participant factors: where and on what it was tested
+            out["stratum"] = fit.model.strata.tests[name].as_dict(fit.model.strata)
     else:
         out.update({"df2": fit.df_resid})
     out.update(extra)
@@ -152,12 +156,12 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
     return out
 
 
-def _intent(stat: str, h: Hypothesis, df_resid: int) -> tuple[str, tuple[int, ...]] | None:
+def _intent(stat: str, df: tuple[int, int]) -> tuple[str, tuple[int, ...]] | None:
     """The NIfTI intent of a map: t and F with their degrees of freedom, z and p without; others none."""
     if stat == "t":
-        return ("t test", (df_resid,))
+        return ("t test", (df[1],))
     if stat == "F":
-        return ("f test", (h.n_rows, df_resid))
+        return ("f test", df)
     if stat in ("z", "p"):
         return (_INTENTS[stat], ())
     return None
@@ -170,7 +174,7 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str
     written: list[str] = []
     for stat, values in fit.maps[h.name].items():
         fname = _map_name(fit.grid, f"{h.name}_{stat}")
-        write_map(o.file(fname), values, fit.mask, fit.grid, intent=_intent(stat, h, fit.df_resid),
+        write_map(o.file(fname), values, fit.mask, fit.grid, intent=_intent(stat, fit.df_of(h.name)),
                   description=f"groupmodel {h.name} {stat}"[:79])
         # the sidecar is named after the map's stem: hypothesis names may contain dots
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}

@@ -26,6 +26,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .strata_inference import strata_permutation_inference
 from .strata_voxels import strata_degrees, strata_pass
 from .table_fit import require_fittable
 
@@ -185,9 +186,9 @@ def fit_images(
     require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
-    if model.strata is not None and inference.active:
-        raise ModelError(f"{spec.name}: permutation inference of within-participant factors is not available yet; "
-                         "fit without permutations (--permutations 0)")
+    if model.strata is not None and inference.active and inference.blocks:
+        raise ModelError(f"{spec.name}: exchangeability blocks are set by the strata for within-participant "
+                         "factors (whole participants); remove the blocks setting")
     prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
     data = _load(source, mask if mask is not None else spec.mask, budget, progress)
     try:
@@ -300,6 +301,9 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
         done_before[name] = done
 
     try:
+        if model.strata is not None:  # within-participant factors: rearranged in each hypothesis's stratum
+            return strata_permutation_inference(model, data, options, budget.permutation_bytes, chunk_voxels,
+                                                progress=report)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
                                      progress=report)

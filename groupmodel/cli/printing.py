@@ -81,7 +81,8 @@ def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
     for name, rec in fit.records.items():
         method = _METHOD_WORDS.get(rec.get("method"), rec.get("method"))
         lines.append(f"  {name}: {method}, {rec.get('permutations')} rearrangements"
-                     f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}")
+                     f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}"
+                     f"{'; ' + rec['stratum'] + ' stratum: ' + rec['rearranged'] if 'stratum' in rec else ''}")
     return "\n".join(lines)
 
 

@@ -72,6 +72,9 @@ class StratumTest:
     left_out: tuple[tuple[str, str], ...]
     transformed: str
     problems: tuple[str, ...] = ()
+    #: The between rows over the between-participant cells (before the design's cell rows): is the between
+    #: part a mean (weights not summing to 0) or a comparison?  Decides sign flips or permutations.
+    between_cells: np.ndarray | None = None
 
     @property
     def within_df(self) -> int:
@@ -249,7 +252,8 @@ def _stratum_test(strata: Strata, design: Design, h: Hypothesis, hs: HypothesisS
         problems.append(f"in the {stratum} stratum its weights are not estimable from the between-participant "
                         f"design of the {len(entered)} participants who enter it (check for empty groups)")
     return StratumTest(h.name, stratum, h.test, h.tail, within_weights, lb, entered, left_out,
-                       _transformed_text(strata, stratum, within_weights), tuple(problems))
+                       _transformed_text(strata, stratum, within_weights), tuple(problems),
+                       None if h.on_slopes else lrows)
 
 
 def _refused(h: Hypothesis, empty: tuple[np.ndarray, np.ndarray], why: str) -> StratumTest:

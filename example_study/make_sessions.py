@@ -29,7 +29,7 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
-from make_images import AFFINE, SHAPE, brain_mask, bump, smooth_noise
+from make_images import AFFINE, brain_mask, bump, smooth_noise
 
 HERE = Path(__file__).resolve().parent / "sessions"
 SEED = 20240612

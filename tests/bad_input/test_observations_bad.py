@@ -73,3 +73,21 @@ def test_missing_within_value_is_an_exclusion_with_reason(tmp_path: Path) -> Non
     (ex,) = model.sample.exclusions
     assert ex.participant_id == "sub-03" and "observations.tsv row 6" in ex.reason and "session" in ex.reason
     assert [p for p, _ in model.strata.tests["s"].left_out] == ["sub-03"]
+
+
+def test_one_test_over_two_strata_is_refused(tmp_path: Path) -> None:
+    spec = {**SPEC, "hypotheses": {"w": {"weights": [{"intercept": 1}, {"session=post": 1}]},
+                                   "grand": {"weights": {"intercept": 1}}}}
+    model = build(study(tmp_path, spec=spec))
+    (err,) = [f for f in model.errors if f.code == "stratum"]
+    assert "hypothesis w cannot be tested: it tests participant averages and within-participant contrasts" \
+        in err.message and "split it" in err.message
+    assert model.strata.tests["grand"].stratum == "between"  # raw weights that cell means reproduce are placed
+
+
+def test_participant_ids_must_be_in_the_participants_table_only_once(tmp_path: Path) -> None:
+    (tmp_path / "participants.tsv").write_text(PEOPLE + "sub-01\tb\n")
+    (tmp_path / "observations.tsv").write_text("participant_id\tsession\ty\tage\n" + OBS)
+    (tmp_path / "model.json").write_text(json.dumps(SPEC))
+    with pytest.raises(TableError, match="participant_id 'sub-01' appears 2 times"):
+        build(tmp_path / "model.json")

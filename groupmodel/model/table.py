@@ -481,7 +481,7 @@ def _select_with_observations(spec: ModelSpec, sidecar_levels: dict[str, tuple[s
             exclusions.append(Exclusion(row["participant_id"], int(row["row"]),
                                         f"no usable row in {spec.observations.name}"))
     return Sample(data=data, exclusions=tuple(exclusions), levels={**people.levels, **data.attrs["levels"]},
-                  source=spec.observations, notes=people.notes + data.attrs["notes"], table=joined,
+                  source=spec.participants, notes=people.notes + data.attrs["notes"], table=joined,
                   sidecar_levels=dict(sidecar_levels), numeric_columns=tuple(numeric_columns),
                   extra_exclusions=extra, participants_table=ptable, observations_table=obs)
 

@@ -83,7 +83,8 @@ def design_sidecar(model: Model) -> dict[str, Any]:
         ],
         "excluded": [e.as_dict() for e in model.sample.exclusions],
         "findings": [f.as_dict() for f in model.findings],
-        **({"strata": strata_sidecar(model.strata)} if model.strata is not None else {}),
+        **({"observations": str(model.spec.observations), "strata": strata_sidecar(model.strata)}
+           if model.strata is not None else {}),
     }
 
 

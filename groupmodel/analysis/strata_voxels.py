@@ -56,6 +56,12 @@ def _average_map(model: Model) -> tuple[np.ndarray, np.ndarray]:
     return out, strata.between.matrix[complete]
 
 
+def average_df(model: Model) -> int:
+    """Residual df of the participant averages (the residual variance map of a model with strata)."""
+    _, x = _average_map(model)
+    return int(x.shape[0] - matrix_rank(x))
+
+
 def strata_pass(model: Model, data: Any, chunk_voxels: int,
                 progress: bool) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
     """Every hypothesis's maps in its stratum, and the residual variance of the participant averages (the

@@ -27,7 +27,7 @@ from .corrections import (
     permutation_inference,
 )
 from .strata_inference import strata_permutation_inference
-from .strata_voxels import strata_degrees, strata_pass
+from .strata_voxels import average_df, strata_degrees, strata_pass
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -201,7 +201,7 @@ def fit_images(
         if prepared is None:  # within-participant factors: each hypothesis in its error stratum
             maps, resid_var = strata_pass(model, data, chunk_voxels, progress)
             degrees = strata_degrees(model)
-            df_resid = int(min(d[1] for d in degrees.values()))
+            df_resid = average_df(model)  # of residual_variance: the participant averages' (between stratum)
         else:
             maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
             df_resid = prepared.df_resid

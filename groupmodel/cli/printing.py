@@ -54,8 +54,10 @@ def print_exclusions(model: Model) -> None:
 def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
     """A voxelwise fit before its files are written: sample and mask, warnings, hypotheses, inference, summary."""
     m = fit.model
-    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
-          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
+    shape = (f"{m.design.n_columns} columns, {fit.df_resid} residual df" if m.strata is None else
+             f"{len(m.strata.participant_ids)} participants, each hypothesis in its error stratum (df in the summary)")
+    print(f"{m.spec.name}: {m.design.n_observations} observations, {shape}; "
+          f"{fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
           f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
     print_exclusions(m)
     for w in fit.warnings:

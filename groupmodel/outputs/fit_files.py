@@ -148,7 +148,8 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
             "tail": h.tail,
         })
         if fit.model.strata is not None:  # within-participant factors: where and on what it was tested
-            out["stratum"] = fit.model.strata.tests[name].as_dict(fit.model.strata)
+            out["stratum"] = fit.model.strata.tests[name].stratum
+            out["stratum_test"] = fit.model.strata.tests[name].as_dict(fit.model.strata)
     else:
         out.update({"df2": fit.df_resid})
     out.update(extra)

@@ -280,3 +280,22 @@ def test_simple_effects_with_at_equal_ols_on_transformed_values(tmp_path: Path) 
                                [float(np.squeeze(at_s1.effect)), float(np.squeeze(at_s1.tvalue))], rtol=1e-8)
     mean_s2 = smf.ols("s2 ~ C(g)", frame).fit().t_test("Intercept + C(g)[T.g1] / 3 + C(g)[T.g2] / 3 = 0")
     np.testing.assert_allclose(row(fit, "mean_s2")["statistic"], float(np.squeeze(mean_s2.tvalue)), rtol=1e-8)
+
+
+def test_split_plot_epsilons_from_pooled_within_group_covariance(tmp_path: Path) -> None:
+    data = split_plot(seed=29, per_group=(6, 7, 8), k=4)
+    spec = write_study(tmp_path, people_of(data, ["group"]), data.drop(columns="group"), {
+        "factors": {"group": {}, "session": {"within": True}}, "terms": ["group*session"],
+        "hypotheses": {"session": {"main": "session"}, "gxs": {"interaction": ["group", "session"]}}})
+    fit = fit_table(spec, "y")
+    wide = data.pivot(index="participant_id", columns="session", values="y")
+    groups = data.groupby("participant_id")["group"].first()
+    centred = wide - wide.groupby(groups).transform("mean")
+    n, g, k = len(wide), 3, 4
+    pooled = centred.T @ centred / (n - g)  # pooled within-group covariance of the repeated measures
+    eps = box_epsilon(pooled.to_numpy())  # Box 1954 / Greenhouse & Geisser 1959
+    hf = ((n - g + 1) * (k - 1) * eps - 2) / ((k - 1) * (n - g - (k - 1) * eps))  # Huynh & Feldt 1976 with
+    # Lecoutre's 1991 correction (N -> N - g + 1), from memory
+    for name in ("session", "gxs"):
+        np.testing.assert_allclose(row(fit, name)["epsilon_gg"], eps, rtol=1e-10)
+        np.testing.assert_allclose(row(fit, name)["epsilon_hf"], min(1.0, hf), rtol=1e-10)

@@ -299,3 +299,22 @@ def test_split_plot_epsilons_from_pooled_within_group_covariance(tmp_path: Path)
     for name in ("session", "gxs"):
         np.testing.assert_allclose(row(fit, name)["epsilon_gg"], eps, rtol=1e-10)
         np.testing.assert_allclose(row(fit, name)["epsilon_hf"], min(1.0, hf), rtol=1e-10)
+
+
+def test_covariate_slope_on_averages_and_at_one_session(tmp_path: Path) -> None:
+    data = split_plot(seed=31)
+    people = people_of(data, ["group"])
+    people = people.assign(age=np.round(np.random.default_rng(31).uniform(20, 60, len(people)), 1))
+    spec = write_study(tmp_path, people, data.drop(columns="group"), {
+        "factors": {"group": {}, "session": {"within": True}}, "covariates": {"age": {}},
+        "terms": ["group*session", "age"],
+        "hypotheses": {"age": {"slope": "age"}, "age_at_s2": {"slope": "age", "at": {"session": "s2"}}}})
+    fit = fit_table(spec, "y")
+    wide = data.pivot(index="participant_id", columns="session", values="y").join(people.set_index("participant_id"))
+    wide["avg"] = wide[["s0", "s1", "s2"]].mean(axis=1)
+    for name, column, stratum in (("age", "avg", "between"), ("age_at_s2", "s2", "mixed")):
+        ref = smf.ols(f"{column} ~ C(group, Sum) + age", wide).fit()  # statsmodels OLS on transformed values
+        r = row(fit, name)
+        assert r["stratum"] == stratum
+        np.testing.assert_allclose([r["estimate"], r["statistic"], r["p"]],
+                                   [ref.params["age"], ref.tvalues["age"], ref.pvalues["age"]], rtol=1e-8)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -12,6 +12,7 @@ from ..engine.ols import ChunkResult, fit_chunk, prepare
 from ..errors import ModelError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
+from ..outputs.provenance import RunClock
 from ..text import DISCLAIMER
 
 #: Columns of results.tsv, in order.
@@ -26,6 +27,7 @@ class TableFit:
     outcome: str
     result: ChunkResult
     table: pd.DataFrame
+    clock: RunClock = field(default_factory=RunClock.start)  # when the fit started (recorded with the results)
 
     def format(self) -> str:
         """The results table for a terminal."""
@@ -75,6 +77,7 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
 
     Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.
     """
+    clock = RunClock.start()
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     model = build(spec, numeric_columns=[outcome])
@@ -82,4 +85,4 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)
-    return TableFit(model, outcome, result, results_table(model, result))
+    return TableFit(model, outcome, result, results_table(model, result), clock)

@@ -17,6 +17,7 @@ from ..engine.ols import Prepared, fit_chunk, prepare
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
+from ..outputs.provenance import RunClock, RunInputs
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
 from .corrections import (
@@ -71,6 +72,8 @@ class VoxelFit:
     inference: dict[str, Any] | None = None
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+    inputs: RunInputs | None = None  # the files read (for the provenance of every sidecar)
+    clock: RunClock = field(default_factory=RunClock.start)  # when the fit started
 
     @property
     def elements(self) -> str:
@@ -169,6 +172,7 @@ def fit_images(
     """
     from ..images import chunk_size_for
 
+    clock = RunClock.start()
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
@@ -205,7 +209,9 @@ def fit_images(
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
-                        tables={n: r.tables for n, r in permuted.items()})
+                        tables={n: r.tables for n, r in permuted.items()},
+                        inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
+                                                 [(r.path, r.volume) for r in source.refs]), clock=clock)
     finally:
         data.close()
 

@@ -19,8 +19,10 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def _build(args: argparse.Namespace) -> int:
     from ..model.assembly import build
-    from ..outputs.design_files import write_model
+    from ..outputs.design_files import write_build
+    from ..outputs.provenance import RunClock
 
+    clock = RunClock.start()
     folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
     print_removed(folder.removed)
     model = build(args.spec)
@@ -29,7 +31,7 @@ def _build(args: argparse.Namespace) -> int:
         print("nothing written: the model has errors (see above)")
         model.raise_for_errors()  # the same one line on stderr and exit code 1 as every other error
     with folder as out:
-        names = write_model(model, out, pictures=not args.no_pictures)
+        names = write_build(model, out, pictures=not args.no_pictures, command=getattr(args, "argv", None), clock=clock)
     print(f"wrote {args.out}: {', '.join(names)}")
     print_disclaimer()
     return 0
@@ -57,7 +59,7 @@ def _fit_table(args: argparse.Namespace) -> int:
     print_model_report(fit.model)
     print()
     print(fit.format())
-    write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
+    write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))
     print(f"wrote {args.out}/results.tsv")
     return 0
 
@@ -73,7 +75,7 @@ def _fit_images(args: argparse.Namespace) -> int:
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
                      inference=options)
     print_voxel_fit(fit, options)
-    write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
+    write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))
     print(f"wrote {args.out}")
     print_disclaimer()
     return 0

@@ -61,11 +61,16 @@ def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
 def expected_files() -> set[str]:
     names = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
              "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
-             "mask.nii.gz", "mask.json"}
+             "mask.nii.gz", "mask.json", "dataset_description.json", "outputs.json"}
     for name, h in HYPOTHESES.items():
         for stat in (F_MAPS if "main" in h else T_MAPS):
-            names |= {f"{name}_{stat}.nii.gz", f"{name}_{stat}.json"}
+            names |= {f"hypotheses/{name}/{stat}.nii.gz", f"hypotheses/{name}/{stat}.json"}
     return names
+
+
+def files_in(folder: Path) -> set[str]:
+    """Every file under ``folder``, as relative POSIX paths."""
+    return {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()}
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess:
@@ -86,18 +91,18 @@ def test_fit_writes_every_map_and_nothing_on_stderr(spec: Path, tmp_path: Path) 
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""
     assert "\r" not in proc.stdout  # no progress bar leaked into stdout either
-    assert set(p.name for p in out.iterdir()) == expected_files()
+    assert files_in(out) == expected_files()
     assert "18 observations" in proc.stdout and "wrote" in proc.stdout
     for name in HYPOTHESES:
         assert name in proc.stdout
-    for path in out.glob("*.nii.gz"):
+    for path in out.rglob("*.nii.gz"):
         img = nib.load(path)
         assert np.allclose(img.affine, AFFINE)
         if path.name != "mask.nii.gz":
             assert img.get_data_dtype() == np.float32
     summary = json.loads((out / "summary.json").read_text())
     assert summary["n_observations"] == 18 and summary["df_resid"] == 18 - 4
-    side = json.loads((out / "dose_F.json").read_text())
+    side = json.loads((out / "hypotheses/dose/F.json").read_text())
     assert side["hypothesis"] == "dose" and side["statistic"] == "F" and side["df1"] == 2
 
 
@@ -114,7 +119,7 @@ def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
     assert [p.name for p in out.iterdir()] == ["old.txt"]
     proc = run_cli("fit", str(spec), "--out", str(out), "--force")
     assert proc.returncode == 0, proc.stderr
-    assert set(p.name for p in out.iterdir()) == expected_files()
+    assert files_in(out) == expected_files()
 
 
 def test_exit_codes_in_process(spec: Path, tmp_path: Path, capsys) -> None:
@@ -145,7 +150,7 @@ def test_memory_option_gives_the_same_maps(spec: Path, tmp_path: Path, capsys) -
     assert main(["fit", str(spec), "--out", str(tmp_path / "a")]) == 0
     assert main(["fit", str(spec), "--out", str(tmp_path / "b"), "--memory", "20KB"]) == 0
     capsys.readouterr()
-    for name in ("dose_F", "high_vs_low_t", "score_effect", "residual_variance"):
+    for name in ("hypotheses/dose/F", "hypotheses/high_vs_low/t", "hypotheses/score/effect", "residual_variance"):
         a = np.asanyarray(nib.load(tmp_path / "a" / f"{name}.nii.gz").dataobj)
         b = np.asanyarray(nib.load(tmp_path / "b" / f"{name}.nii.gz").dataobj)
         np.testing.assert_array_equal(a, b)

@@ -64,7 +64,7 @@ def test_image_fit_with_permutations(study, tmp_path: Path) -> None:
     summary = json.loads((tmp_path / "maps" / "summary.json").read_text())
     text = json.dumps(summary)
     assert str(len(frame) - 6) in text
-    sidecar = json.loads((tmp_path / "maps" / "caffeine_at_A_p_fwe.json").read_text())
+    sidecar = json.loads((tmp_path / "maps" / "hypotheses/caffeine_at_A/p_fwe.json").read_text())
     assert sidecar["df2"] == len(frame) - 6 and sidecar["permutations"] == 20
 
 

@@ -26,8 +26,11 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "example_study"
-#: Keys whose values legitimately change between versions or runs.
-VOLATILE_KEYS = {"software_version"}
+#: Keys whose values legitimately change between versions, runs or machines: versions, the time fields of the
+#: run record, the digest of the image list (it holds modification times, set anew by every checkout) and the
+#: command line in dataset_description.json (it holds --out).
+VOLATILE_KEYS = {"software_version", "software_versions", "started", "wall_time_seconds", "list_sha256",
+                 "Description"}
 
 
 def _run(name: str, args: list[str], out: Path) -> None:

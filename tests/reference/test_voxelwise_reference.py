@@ -215,7 +215,7 @@ def test_written_maps_read_back(study) -> None:
         kinds = T_MAPS if h.test == "t" else F_MAPS
         assert set(fit.maps[h.name]) == set(kinds)
         for stat in kinds:
-            img = nib.load(out / f"{h.name}_{stat}.nii.gz")
+            img = nib.load(out / "hypotheses" / h.name / f"{stat}.nii.gz")
             assert img.get_data_dtype() == np.float32
             assert img.shape == SHAPE
             assert np.allclose(img.affine, AFFINE, rtol=0, atol=1e-6)
@@ -235,7 +235,7 @@ def test_written_maps_read_back(study) -> None:
                     assert _rel(value, float(adjusted[where]), floor) <= RTOL_F32, (h.name, stat, col)
                     continue
                 assert _rel(value, ref[h.name][stat], floor) <= RTOL_F32, (h.name, stat, col)
-            side = json.loads((out / f"{h.name}_{stat}.json").read_text())
+            side = json.loads((out / "hypotheses" / h.name / f"{stat}.json").read_text())
             for key in SIDECAR_KEYS:
                 assert key in side, (h.name, stat, key)
             assert side["hypothesis"] == h.name and side["statistic"] == stat
@@ -257,7 +257,7 @@ def test_written_maps_read_back(study) -> None:
     col = next(iter(refs))
     for h in fit.model.hypotheses.values():
         if h.test == "F":
-            side = json.loads((out / f"{h.name}_F.json").read_text())
+            side = json.loads((out / "hypotheses" / h.name / "F.json").read_text())
             assert side["df1"] == refs[col][h.name]["df1"] and side["df2"] == refs[col][h.name]["df2"]
 
 

@@ -58,6 +58,10 @@ class VoxelFit:
         Hypothesis -> what its permutation maps were made with (method, J, exhaustive, seed, TFCE, ...).
     tables : dict
         Hypothesis -> kind (``voxel_fwe``, ``tfce_fwe``, ``cluster_extent_fwe``) -> cluster table.
+    inputs : RunInputs or None
+        The files the fit read (spec, participants table and JSON, mask, images), for the provenance record.
+    clock : RunClock
+        When the fit started (recorded with its wall time).
     """
 
     model: Model

@@ -215,7 +215,8 @@ def fit_images(
                         records={n: r.record for n, r in permuted.items()},
                         tables={n: r.tables for n, r in permuted.items()},
                         inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
-                                                 [(r.path, r.volume) for r in source.refs]), clock=clock)
+                                                 [(r.path, r.volume) for r in source.refs], model.sample),
+                        clock=clock)
     finally:
         data.close()
 

@@ -153,7 +153,7 @@ def write_build(model: Model, o: OutputFolder, pictures: bool = True, command: S
     record, dataset_description.json and the index; returns the file names."""
     from .dataset import dataset_description, finish_folder
 
-    run = run_record(RunInputs.of_spec(model.spec), clock or RunClock.start())
+    run = run_record(RunInputs.of_spec(model.spec, sample=model.sample), clock or RunClock.start())
     names = write_model(model, o, pictures=pictures, run=run)
     return names + finish_folder(o, dataset_description("design", model.spec, command_line(command)))
 

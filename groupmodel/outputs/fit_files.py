@@ -43,7 +43,7 @@ def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, picture
     """Write results.tsv, results.json and the design files (with their pictures) atomically, then
     dataset_description.json and the index outputs.json."""
     folder = OutputFolder(out, force=force)
-    run = run_record(RunInputs.of_spec(fit.model.spec), fit.clock)
+    run = run_record(RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
         write_model(fit.model, o, pictures=pictures, run=run)
         o.write_tsv("results.tsv", fit.table)
@@ -226,7 +226,7 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
     """
     folder = OutputFolder(out, force=force)
     written: list[str] = []
-    run = run_record(fit.inputs or RunInputs.of_spec(fit.model.spec), fit.clock)
+    run = run_record(fit.inputs or RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
         written += write_model(fit.model, o, pictures=False, run=run)
         job = PictureJob(fit.model, o) if pictures else None

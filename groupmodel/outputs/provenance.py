@@ -75,15 +75,18 @@ class RunInputs:
     observations: Path | None = None
     mask: Path | None = None
     images: tuple[tuple[Path, int | None], ...] = ()
+    participants_sha256: str | None = None  # of the bytes the run read, when known (else the file is hashed)
 
     @classmethod
-    def of_spec(cls, spec: Any, mask: Path | str | None = None,
-                images: Sequence[tuple[Path, int | None]] = ()) -> RunInputs:
-        """The inputs of ``spec`` (a ModelSpec); ``observations`` only where the spec has such a key."""
+    def of_spec(cls, spec: Any, mask: Path | str | None = None, images: Sequence[tuple[Path, int | None]] = (),
+                sample: Any = None) -> RunInputs:
+        """The inputs of ``spec`` (a ModelSpec); ``observations`` only where the spec has such a key; with the
+        ``sample`` read from the participants table, the SHA-256 of the bytes it was read from."""
         observations = getattr(spec, "observations", None)
+        digest = getattr(getattr(sample, "table", None), "attrs", {}).get("sha256")
         return cls(spec=spec.path, participants=spec.participants, participants_sidecar=spec.participants_sidecar,
                    observations=Path(observations) if isinstance(observations, str | Path) else None,
-                   mask=None if mask is None else Path(mask), images=tuple(images))
+                   mask=None if mask is None else Path(mask), images=tuple(images), participants_sha256=digest)
 
 
 def sha256_file(path: Path | str) -> str:
@@ -95,10 +98,10 @@ def sha256_file(path: Path | str) -> str:
     return digest.hexdigest()
 
 
-def _file_record(path: Path | None) -> dict[str, str] | None:
+def _file_record(path: Path | None, digest: str | None = None) -> dict[str, str] | None:
     if path is None:
         return None
-    return {"path": str(path), "sha256": sha256_file(path)}
+    return {"path": str(path), "sha256": digest or sha256_file(path)}
 
 
 def image_list_record(images: Sequence[tuple[Path, int | None]]) -> dict[str, Any]:
@@ -129,7 +132,8 @@ def run_record(inputs: RunInputs, clock: RunClock) -> dict[str, Any]:
 
     Computed once per folder written; the wall time runs from the start of the run to this call.
     """
-    files = {"spec": _file_record(inputs.spec), "participants": _file_record(inputs.participants),
+    files = {"spec": _file_record(inputs.spec),
+             "participants": _file_record(inputs.participants, inputs.participants_sha256),
              "participants_sidecar": _file_record(inputs.participants_sidecar)}
     if inputs.observations is not None:
         files["observations"] = _file_record(inputs.observations)

@@ -339,3 +339,18 @@ def test_surface_summary_gives_the_peak_vertex(other_runs: dict[str, Path]) -> N
         stat = "F" if name == "group" else "t"
         values = nib.load(find(out, name, stat)).darrays[0].data.astype(np.float64)
         assert summary.loc[name, "peak_vertex"] == int(np.argmax(np.abs(values)))
+
+
+def test_refresh_index_adds_a_file_written_later(tmp_path: Path) -> None:
+    # e.g. a report rebuilt from a finished folder: the index is rewritten from the files there.
+    from groupmodel.outputs.index import refresh_index
+
+    spec = make_study(tmp_path / "study")
+    out = tmp_path / "out"
+    assert main(["build", str(spec), "--out", str(out), "--no-pictures"]) == 0
+    (out / "report.html").write_text("<!doctype html><title>t</title>")
+    refresh_index(out)
+    entries = {e.path: e for e in read_index(out)}
+    assert set(entries) == files_in(out) - {"outputs.json"}
+    assert entries["report.html"].kind == "report"
+    assert not [p for p in out.iterdir() if p.name.startswith(".")]

@@ -13,6 +13,7 @@ from ..errors import ModelError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..text import DISCLAIMER
+from .cell_means import cell_means
 
 #: Columns of results.tsv, in order.
 RESULT_COLUMNS = ["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
@@ -26,6 +27,7 @@ class TableFit:
     outcome: str
     result: ChunkResult
     table: pd.DataFrame
+    cell_means: pd.DataFrame | None = None
 
     def format(self) -> str:
         """The results table for a terminal."""
@@ -82,4 +84,4 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)
-    return TableFit(model, outcome, result, results_table(model, result))
+    return TableFit(model, outcome, result, results_table(model, result), cell_means(model.design, y))

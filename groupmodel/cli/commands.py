@@ -20,6 +20,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 def _build(args: argparse.Namespace) -> int:
     from ..model.assembly import build
     from ..outputs.design_files import write_model
+    from ..outputs.report import write_report
 
     folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
     print_removed(folder.removed)
@@ -30,6 +31,7 @@ def _build(args: argparse.Namespace) -> int:
         model.raise_for_errors()  # the same one line on stderr and exit code 1 as every other error
     with folder as out:
         names = write_model(model, out, pictures=not args.no_pictures)
+        names += write_report(out, pictures=not args.no_pictures)
     print(f"wrote {args.out}: {', '.join(names)}")
     print_disclaimer()
     return 0
@@ -58,7 +60,7 @@ def _fit_table(args: argparse.Namespace) -> int:
     print()
     print(fit.format())
     write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
-    print(f"wrote {args.out}/results.tsv")
+    print(f"wrote {args.out}/results.tsv and {args.out}/report.html")
     return 0
 
 
@@ -111,8 +113,26 @@ def _split_names(text: str | None) -> list[str] | None:
     return [t.strip() for t in text.split(",") if t.strip()]
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    """``groupmodel report DIR``: build report.html again from the files of an output folder."""
+    from ..outputs.report import REPORT_NAME, report_html
+
+    text = report_html(args.folder, pictures=not args.no_pictures, background=args.background)
+    target = args.folder / REPORT_NAME
+    tmp = target.with_name(f".{REPORT_NAME}.partial")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(target)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise OutputError(f"{target}: cannot be written ({exc.strerror}); check the folder's permissions") from None
+    print(f"wrote {target}")
+    print_disclaimer()
+    return 0
+
+
 #: Sub-command name -> its function.
-COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check}
+COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check, "report": cmd_report}
 
 
 def inference_overrides(args: argparse.Namespace) -> dict[str, Any]:

@@ -94,13 +94,24 @@ def contrasts_sidecar(model: Model) -> dict[str, Any]:
     }
 
 
+def included_frame(model: Model) -> pd.DataFrame:
+    """participants_included.tsv: each included observation with its factor levels and raw covariate (and
+    outcome) values, in design-row order (the report summarises covariates per cell from it)."""
+    data = model.sample.data
+    d = model.design
+    keep = ["participant_id", *d.factors, *[c for c in d.covariates if c in data],
+            *[c for c in model.sample.numeric_columns if c in data and c not in d.covariates]]
+    return data[list(dict.fromkeys(keep))].reset_index(drop=True)
+
+
 def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[str]:
     """Write design and contrast files into an open output folder; returns the file names."""
     out.write_tsv("design.tsv", design_frame(model))
     out.write_json("design.json", design_sidecar(model))
     out.write_tsv("contrasts.tsv", contrasts_frame(model))
     out.write_json("contrasts.json", contrasts_sidecar(model))
-    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+    out.write_tsv("participants_included.tsv", included_frame(model))
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "participants_included.tsv"]
     if pictures:
         names += draw_pictures(model, out)
     return names
@@ -143,8 +154,11 @@ class PictureJob:
 
 def write_model_folder(model: Model, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
     """Write the design files atomically into ``out``; refuses a model with errors (ModelError)."""
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     model.raise_for_errors()
     with folder as o:
         write_model(model, o, pictures=pictures)
+        write_report(o, pictures=pictures)
     return Path(out)

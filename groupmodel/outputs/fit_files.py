@@ -36,11 +36,16 @@ RESULTS_COLUMNS = {
 
 def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
     """Write results.tsv, results.json and the design files (with their pictures) atomically."""
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     with folder as o:
         write_model(fit.model, o, pictures=pictures)
         o.write_tsv("results.tsv", fit.table)
         o.write_json("results.json", _results_sidecar(fit))
+        if fit.cell_means is not None:
+            o.write_tsv("cell_means.tsv", fit.cell_means)
+        write_report(o, pictures=pictures)
     return Path(out)
 
 
@@ -175,7 +180,24 @@ def _write_residuals_and_mask(o: OutputFolder, fit: VoxelFit) -> list[str]:
     mname = _map_name(fit.grid, "mask")
     write_mask(o.file(mname), fit.mask, fit.grid)
     o.write_json("mask.json", {"statistic": "mask", **fit.mask_report, **provenance(("software_version",))})
-    return [fname, mname]
+    return [fname, mname, *_write_participant_check(o, fit)]
+
+
+def _write_participant_check(o: OutputFolder, fit: VoxelFit) -> list[str]:
+    """The mean of the input images (the report's background) and each participant's mean |residual|."""
+    from ..images import write_map
+
+    names = []
+    if fit.mean_input is not None:
+        fname = _map_name(fit.grid, "mean_input")
+        write_map(o.file(fname), fit.mean_input, fit.mask, fit.grid, description="groupmodel mean input image")
+        o.write_json("mean_input.json", map_sidecar(fit, None, "mean_input",
+                                                    description="mean of the input images over the observations"))
+        names.append(fname)
+    if fit.participant_residuals is not None:
+        o.write_tsv("participants_residuals.tsv", fit.participant_residuals)
+        names.append("participants_residuals.tsv")
+    return names
 
 
 def _write_summary(o: OutputFolder, fit: VoxelFit) -> list[str]:
@@ -210,8 +232,11 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                     pictures: bool = True) -> list[str]:
     """Write every map with its sidecar, the mask, the design files and a summary, atomically.
 
-    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written.
+    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written; the
+    report (report.html, without figures when ``pictures`` is off) is written last, from the files.
     """
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     written: list[str] = []
     with folder as o:
@@ -227,5 +252,6 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
         finally:
             # never leave the thread writing into a folder that is being removed
             picture_names = job.join() if job is not None else []
-        written[4:4] = picture_names  # listed beside the design files, as before
+        written[5:5] = picture_names  # listed beside the design files, as before
+        written += write_report(o, pictures=pictures)
     return written

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 #: Robust z above which an observation's mean absolute residual is called unusual.
-UNUSUAL_Z = 3.5
+UNUSUAL_Z = 5.0
 
 
 def chunk_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:

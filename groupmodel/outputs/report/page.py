@@ -61,6 +61,12 @@ def esc(text: Any) -> str:
     return html.escape(str(text), quote=True)
 
 
+def num(x: float) -> str:
+    """A number without round-off noise: 4 significant digits, whole numbers without decimals; a tiny value
+    (a p value of 2e-10) is kept, not written as 0."""
+    return number_text(x, whole_tol=1e-9 * min(1.0, abs(x))) if x != 0 else "0"
+
+
 def value(v: Any) -> str:
     """A table value as text: counts whole, other numbers without round-off noise, missing as n/a."""
     if v is None:
@@ -70,7 +76,7 @@ def value(v: Any) -> str:
     if isinstance(v, int):
         return str(v)
     if isinstance(v, float):
-        return "n/a" if math.isnan(v) else number_text(v)
+        return "n/a" if math.isnan(v) else num(v)
     try:
         f = float(v)  # numpy scalars
     except (TypeError, ValueError):
@@ -79,7 +85,7 @@ def value(v: Any) -> str:
         return str(int(f))
     if hasattr(v, "dtype") and getattr(v.dtype, "kind", "") == "b":
         return "yes" if bool(v) else "no"
-    return "n/a" if math.isnan(f) else number_text(f)
+    return "n/a" if math.isnan(f) else num(f)
 
 
 def _is_number(v: Any) -> bool:
@@ -136,4 +142,4 @@ def document(title: str, subtitle: str, sections: Sequence[tuple[str, str, str]]
             f'<nav class="contents" aria-label="contents">{nav}</nav><main>{body}</main></body></html>\n')
 
 
-__all__ = ["CSS", "document", "esc", "figure", "paragraph", "section", "table", "value"]
+__all__ = ["CSS", "document", "esc", "figure", "num", "paragraph", "section", "table", "value"]

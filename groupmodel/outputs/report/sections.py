@@ -9,9 +9,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ...text import DISCLAIMER, number_text
+from ...text import DISCLAIMER
 from .data import FolderData
-from .page import esc, figure, paragraph, table
+from .page import esc, figure, num, paragraph, table
 from .picture import Picture
 from .sensitivity import ALPHA, POWER, sensitivity
 
@@ -148,7 +148,7 @@ def _correlations(x: np.ndarray, names: list[str]) -> str:
             v = float(r[a, b]) + 0.0
             v = round(v, 12) + 0.0
             shade = f"rgba(181,84,47,{abs(v) * 0.55:.2f})" if a != b else "transparent"
-            cells.append(f'<td class="num" style="background:{shade}">{number_text(round(v, 2) + 0.0)}</td>')
+            cells.append(f'<td class="num" style="background:{shade}">{num(round(v, 2) + 0.0)}</td>')
         body.append(f"<tr><th>{esc(names[ja])}</th>{''.join(cells)}</tr>")
     return (f'<div class="wide"><table id="correlations"><thead><tr><th></th>{head}</tr></thead><tbody>'
             f'{"".join(body)}</tbody></table></div>'
@@ -187,7 +187,7 @@ def _cell_weights_html(h: dict[str, Any]) -> str:
     n_rows = len(np.atleast_1d(cells[0]["weight"]))
     for i in range(n_rows):
         parts = [f"{esc(', '.join(map(str, c['cell'].values())) or 'all')}: "
-                 f"{number_text(float(np.atleast_1d(c['weight'])[i]))}"
+                 f"{num(float(np.atleast_1d(c['weight'])[i]))}"
                  for c in cells if float(np.atleast_1d(c["weight"])[i]) != 0.0]
         lines.append(("row " + str(i + 1) + ": " if n_rows > 1 else "") + "; ".join(parts))
     prefix = f"slope of {esc(h['slope_of'])} in " if h.get("slope_of") else ""
@@ -207,18 +207,18 @@ def sensitivity_section(d: FolderData, sigma: float | None, tests: int, sigma_wo
         tail = h.get("tail", "two-sided")
         a = sensitivity(x, w, h["test"], tail, ALPHA, sigma)
         b = sensitivity(x, w, h["test"], tail, bonf, sigma)
-        factor = "; ".join(number_text(f) for f in a.se_factor)
+        factor = "; ".join(num(f) for f in a.se_factor)
         if h["test"] == "t":
             rows.append((name, "t", factor, a.smallest_effect, b.smallest_effect))
         else:
-            rows.append((name, "F", factor, f"lambda {number_text(a.noncentrality)}, f {number_text(a.cohen_f)}",
-                         f"lambda {number_text(b.noncentrality)}, f {number_text(b.cohen_f)}"))
+            rows.append((name, "F", factor, f"lambda {num(a.noncentrality)}, f {num(a.cohen_f)}",
+                         f"lambda {num(b.noncentrality)}, f {num(b.cohen_f)}"))
     text = (f"The standard error factor sqrt(L (X'X)^-1 L') depends on the design alone. Smallest effect "
             f"detected with {int(POWER * 100)}% power: for a t test |L b| in {sigma_words}; for an F test the "
             "noncentrality lambda of the noncentral F and Cohen's f = sqrt(lambda / n). Levels: uncorrected "
-            f"p < {number_text(ALPHA)}, and Bonferroni p < {number_text(ALPHA)} / {tests} = {number_text(bonf)}.")
-    headers = ["hypothesis", "test", "SE factor", f"smallest effect, p < {number_text(ALPHA)}",
-               f"smallest effect, Bonferroni p < {number_text(bonf)}"]
+            f"p < {num(ALPHA)}, and Bonferroni p < {num(ALPHA)} / {tests} = {num(bonf)}.")
+    headers = ["hypothesis", "test", "SE factor", f"smallest effect, p < {num(ALPHA)}",
+               f"smallest effect, Bonferroni p < {num(bonf)}"]
     return ("sensitivity", "Sensitivity", paragraph(text) + table(headers, rows, ident="sensitivity-table"))
 
 
@@ -229,7 +229,7 @@ def table_fit_section(d: FolderData, pictures: bool) -> Section:
     outcome = side.get("outcome", "outcome")
     sd = float(np.sqrt(side["residual_variance"])) if "residual_variance" in side else float("nan")
     body = [paragraph(f"Outcome {outcome}: {side.get('n_observations')} observations, {side.get('df_resid')} "
-                      f"residual degrees of freedom, residual SD {number_text(sd)}."),
+                      f"residual degrees of freedom, residual SD {num(sd)}."),
             table(list(d.results.columns), d.results.itertuples(index=False, name=None), ident="results")]
     if d.cell_means is not None:
         body.append("<h3>Estimated cell means</h3>")

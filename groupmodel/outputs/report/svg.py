@@ -6,8 +6,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from ...text import number_text
-from .page import esc
+from .page import esc, num
 
 INK = "#2b2d42"
 BAR = "#7a8fa6"
@@ -22,7 +21,7 @@ def _frame(body: str, label: str, xlabel: str, ylabel: str, ymax: float) -> str:
     ticks = "".join(
         f'<line x1="{LEFT - 4}" y1="{TOP + ph - ph * f:.1f}" x2="{LEFT}" y2="{TOP + ph - ph * f:.1f}" '
         f'stroke="{INK}"/><text x="{LEFT - 6}" y="{TOP + ph - ph * f + 4:.1f}" font-size="10" '
-        f'text-anchor="end" fill="{INK}">{esc(number_text(ymax * f))}</text>' for f in (0, 0.5, 1))
+        f'text-anchor="end" fill="{INK}">{esc(num(ymax * f))}</text>' for f in (0, 0.5, 1))
     return (f'<svg xmlns="http://www.w3.org/2000/svg" role="img" aria-label="{esc(label)}" width="{W}" '
             f'height="{H}" viewBox="0 0 {W} {H}" class="chart">'
             f'<rect x="0" y="0" width="{W}" height="{H}" fill="white"/>{body}'
@@ -66,7 +65,7 @@ def residual_dots(ids: Sequence[str], values: np.ndarray, unusual: np.ndarray, l
         y = TOP + ph - ph * values[i] / ymax
         colour = ALERT if unusual[i] else DOT
         parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="3" fill="{colour}"><title>{esc(ids[i])}: '
-                     f"{esc(number_text(values[i]))}</title></circle>")
+                     f"{esc(num(values[i]))}</title></circle>")
         if unusual[i]:
             parts.append(f'<text x="{x - 5:.1f}" y="{y - 5:.1f}" font-size="10" text-anchor="end" '
                          f'fill="{ALERT}">{esc(ids[i])}</text>')

@@ -12,9 +12,8 @@ import pandas as pd
 
 from ...engine.participant_check import UNUSUAL_Z
 from ...errors import InputError
-from ...text import number_text
 from .data import FolderData, load_map
-from .page import esc, figure, paragraph, table
+from .page import esc, figure, num, paragraph, table
 from .picture import Picture
 from .svg import p_histogram, residual_dots
 
@@ -102,7 +101,7 @@ def _threshold(d: FolderData, name: str, grid: Grid) -> tuple[np.ndarray | None,
     if path is None:
         return None, ""
     return (_masked(load_map(path), grid) < UNCORRECTED_P,
-            f"p < {number_text(UNCORRECTED_P)} UNCORRECTED (no permutation results in this folder)")
+            f"p < {num(UNCORRECTED_P)} UNCORRECTED (no permutation results in this folder)")
 
 
 def _hypothesis(d: FolderData, grid: Grid, name: str, pictures: bool) -> str:
@@ -118,7 +117,7 @@ def _hypothesis(d: FolderData, grid: Grid, name: str, pictures: bool) -> str:
     assert shown is not None
     parts.append(paragraph(f"Shown: {int(np.count_nonzero(shown))} of {z.size} {grid.elements} at {words}."))
     if grid.surface:
-        parts.append(_top_vertices(z, p, shown, name))
+        parts.append(_top_vertices(z, p, shown, name, np.flatnonzero(grid.mask)))
     else:
         pic, ks = _slices(grid, z, shown) if pictures else (None, [])
         parts.append(figure(pic, f"Axial slices k = {', '.join(map(str, ks))} of the z map over the "
@@ -144,7 +143,7 @@ def _limit(z: np.ndarray, shown: np.ndarray) -> float:
 
 
 def _limit_text(z: np.ndarray, shown: np.ndarray) -> str:
-    return number_text(_limit(z, shown))
+    return num(_limit(z, shown))
 
 
 def _slices(grid: Grid, z: np.ndarray, shown: np.ndarray) -> tuple[Picture, list[int]]:
@@ -155,12 +154,13 @@ def _slices(grid: Grid, z: np.ndarray, shown: np.ndarray) -> tuple[Picture, list
     return montage(bg, over, grid.mask, limit=_limit(z, shown))
 
 
-def _top_vertices(z: np.ndarray, p: np.ndarray, shown: np.ndarray, name: str) -> str:
+def _top_vertices(z: np.ndarray, p: np.ndarray, shown: np.ndarray, name: str, vertices: np.ndarray) -> str:
+    """The TOP_VERTICES vertices of largest |z|, with their vertex index on the surface."""
     index = np.flatnonzero(np.isfinite(z))
     order = index[np.argsort(-np.abs(z[index]), kind="stable")][:TOP_VERTICES]
-    rows = [(int(i), float(z[i]), float(p[i]), bool(shown[i])) for i in order]
-    return ("<h3>Top vertices</h3>" + table(["vertex (in the mask's order)", "z", "p", "past the threshold"],
-                                            rows, ident=f"top-{name}"))
+    rows = [(int(vertices[i]), float(z[i]), float(p[i]), bool(shown[i])) for i in order]
+    return (f"<h3>Top {TOP_VERTICES} vertices by |z|</h3>"
+            + table(["vertex", "z", "p", "past the threshold"], rows, ident=f"top-{name}"))
 
 
 def _clusters(d: FolderData, name: str) -> str:
@@ -184,9 +184,9 @@ def _residuals(d: FolderData, grid: Grid, pictures: bool) -> str:
     path = d.locations.map(None, "residual_variance")
     if path is not None:
         sd = np.sqrt(np.clip(_masked(load_map(path), grid), 0, None))
-        parts.append(paragraph(f"Residual SD over the mask: median {number_text(float(np.median(sd)))}, "
-                               f"2nd to 98th percentile {number_text(float(np.percentile(sd, 2)))} to "
-                               f"{number_text(float(np.percentile(sd, 98)))}."))
+        parts.append(paragraph(f"Residual SD over the mask: median {num(float(np.median(sd)))}, "
+                               f"2nd to 98th percentile {num(float(np.percentile(sd, 2)))} to "
+                               f"{num(float(np.percentile(sd, 98)))}."))
         if not grid.surface:
             pic = None
             top = float(np.percentile(sd, 99))
@@ -196,7 +196,7 @@ def _residuals(d: FolderData, grid: Grid, pictures: bool) -> str:
                 bg = grid.background if grid.background is not None else grid.mask.astype(float)
                 pic = montage(bg, _unmask(sd, grid.mask), grid.mask, limit=top, cmap="cividis")[0]
             parts.append(figure(pic, "Residual standard deviation, in the units of the input images: dark blue "
-                                f"0 to light yellow {number_text(top)} (99th percentile) and above.",
+                                f"0 to light yellow {num(top)} (99th percentile) and above.",
                                 "residual SD map"))
     parts.append(_participants(d, pictures))
     return "".join(parts)
@@ -208,9 +208,9 @@ def _participants(d: FolderData, pictures: bool) -> str:
         return paragraph("No per-participant check in this folder (participants_residuals.tsv).", "note")
     unusual = r["unusual"].astype(str).str.lower().isin(["true", "1", "yes"]).to_numpy()
     named = r.loc[unusual, "participant_id"].astype(str).tolist()
-    words = (f"Unusual: {', '.join(named)} (mean |residual| more than {number_text(UNUSUAL_Z)} robust SDs above "
+    words = (f"Unusual: {', '.join(named)} (mean |residual| more than {num(UNUSUAL_Z)} robust SDs above "
              "the median): look at these images before reading the results." if named
-             else f"No participant stands out (none more than {number_text(UNUSUAL_Z)} robust SDs above the median).")
+             else f"No participant stands out (none more than {num(UNUSUAL_Z)} robust SDs above the median).")
     ids = r["participant_id"].astype(str).tolist()
     pic = (residual_dots(ids, r["mean_abs_residual"].to_numpy(float), unusual, "per-participant residuals")
            if pictures else None)

@@ -44,6 +44,11 @@ figcaption { font-size: 12px; color: var(--soft); max-width: 640px; }
 .finding-warning { color: #8a5a00; }
 .caution { border-left: 4px solid var(--rule); padding: 6px 12px; background: var(--band); }
 code { font-size: 13px; }
+@media (max-width: 1000px) {
+  nav.contents { position: static; width: auto; padding: 8px 28px; }
+  nav.contents a { display: inline-block; margin-right: 14px; }
+  main { padding-right: 28px; }
+}
 @media print {
   @page { size: A4; margin: 14mm; }
   body { background: white; font-size: 11pt; }

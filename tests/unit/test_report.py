@@ -378,3 +378,36 @@ def test_report_reads_an_index_when_there_is_one(runs: dict[str, Path], tmp_path
     (moved / "outputs.json").write_text(json.dumps({"files": files}))
     a, b = Page(report_html(flat, pictures=False)), Page(report_html(moved, pictures=False))
     assert a.tables == b.tables and a.ids == b.ids
+
+
+def test_uncorrected_clusters_label_as_the_inference_does() -> None:
+    # Reference: groupmodel.inference.clusters.label_clusters on a 26-neighbour grid graph (numbering by size,
+    # ties by lowest element) against the report's scipy.ndimage.label version, on random two-sided marks.
+    from groupmodel.inference.clusters import label_clusters
+    from groupmodel.inference.graph import grid_adjacency
+    from groupmodel.outputs.report.uncorrected_clusters import _label
+
+    rng = np.random.default_rng(4)
+    mask = rng.random((9, 8, 7)) < 0.8
+    for density in (0.05, 0.3, 0.6):
+        marks = np.sign(rng.normal(size=mask.sum())) * (rng.random(mask.sum()) < density)
+        a, b = _label(mask, marks), label_clusters(marks, 0.5, grid_adjacency(mask, 26), two_sided=True)
+        np.testing.assert_array_equal(a.labels, b.labels)
+        np.testing.assert_array_equal(a.sizes, b.sizes)
+        np.testing.assert_array_equal(a.signs, b.signs)
+
+
+def test_uncorrected_cluster_peaks_are_in_the_z_maps(runs: dict[str, Path]) -> None:
+    # Reference: the z map read with nibabel at the shown voxel indices (float32 map: 4 digits on the page).
+    folder = runs["plain"]
+    _, page = read_page(folder)
+    checked = 0
+    for name in json.loads((folder / "contrasts.json").read_text())["hypotheses"]:
+        header, *rows = page.tables[f"clusters-{name}"]
+        z = np.asarray(nib.load(folder / f"{name}_z.nii.gz").dataobj, dtype=float)
+        for row in rows:
+            cell = dict(zip(header, row, strict=True))
+            value = z[int(cell["peak_i"]), int(cell["peak_j"]), int(cell["peak_k"])]
+            np.testing.assert_allclose(float(cell["peak_z"]), value, rtol=5e-4)
+            checked += 1
+    assert checked >= 8

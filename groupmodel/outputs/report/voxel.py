@@ -127,8 +127,23 @@ def _hypothesis(d: FolderData, grid: Grid, name: str, pictures: bool) -> str:
     parts.append(figure(p_histogram(p, grid.elements, f"p value histogram of {name}") if pictures else None,
                         "Uncorrected p values over the mask; the dashed line is the count expected with no "
                         "effect anywhere.", f"p value histogram of {name}"))
-    parts.append(_clusters(d, name))
+    parts.append(_clusters(d, name) if d.locations.cluster_tables(name) or grid.surface
+                 else _uncorrected_clusters(d, grid, name, z, shown, words))
     return "".join(parts)
+
+
+def _uncorrected_clusters(d: FolderData, grid: Grid, name: str, z: np.ndarray, shown: np.ndarray,
+                          words: str) -> str:
+    from .uncorrected_clusters import clusters_shown
+
+    mask_path = d.locations.map(None, "mask")
+    assert mask_path is not None
+    frame = clusters_shown(grid.mask, mask_path, z, shown)
+    head = f"<h3>Clusters at {esc(words)}</h3>" + paragraph(
+        "Groups of touching voxels (26 neighbours) among those shown; no family-wise error control.", "note")
+    if frame.empty:
+        return head + paragraph("No cluster.")
+    return head + table(list(frame.columns), frame.itertuples(index=False, name=None), ident=f"clusters-{name}")
 
 
 def _unmask(values: np.ndarray, mask: np.ndarray) -> np.ndarray:

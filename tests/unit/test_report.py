@@ -411,3 +411,20 @@ def test_uncorrected_cluster_peaks_are_in_the_z_maps(runs: dict[str, Path]) -> N
             np.testing.assert_allclose(float(cell["peak_z"]), value, rtol=5e-4)
             checked += 1
     assert checked >= 8
+
+
+def test_a_failing_report_never_costs_the_results(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                   capsys: pytest.CaptureFixture) -> None:
+    import groupmodel.outputs.report as report
+
+    def broken(*args: object, **kwargs: object) -> str:
+        raise ValueError("a drawing problem")
+
+    monkeypatch.setattr(report, "report_html", broken)
+    out = tmp_path / "out"
+    assert main(["build", str(EXAMPLE / "model.json"), "--out", str(out), "--no-pictures"]) == 0
+    assert (out / "design.tsv").is_file()
+    text, page = read_page(out)
+    assert "a drawing problem" in text and "groupmodel report" in text
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "report.html could not be built" in err

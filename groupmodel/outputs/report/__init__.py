@@ -7,12 +7,13 @@ Where the files are is known to :mod:`.locate` only.
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 from ..folder import OutputFolder
 from .data import read_folder
 from .locate import locate
-from .page import document
+from .page import document, esc
 from .sections import (
     caution_section,
     design_section,
@@ -60,9 +61,22 @@ def report_html(root: Path | str, pictures: bool = True, background: Path | None
 
 
 def write_report(out: OutputFolder, pictures: bool = True) -> list[str]:
-    """Write report.html into an open output folder from the files already in it; returns its name."""
+    """Write report.html into an open output folder from the files already in it; returns its name.
+
+    A report that cannot be built never costs the results: report.html then says what went wrong and how to
+    build it again (``groupmodel report DIR --debug``), and one warning line goes to stderr.
+    """
     assert out.path is not None, "use OutputFolder as a context manager"
-    out.write_text(REPORT_NAME, report_html(out.path, pictures=pictures))
+    try:
+        text = report_html(out.path, pictures=pictures)
+    except Exception as exc:  # noqa: BLE001 - the maps and tables are worth more than the report
+        problem = f"{type(exc).__name__}: {exc}"
+        sys.stderr.write(f"groupmodel: warning: report.html could not be built ({problem}); the other files are "
+                         f"written; try groupmodel report {out.target} --debug\n")
+        text = document("groupmodel report", "not built", [("problem", "The report could not be built", (
+            f"<p>{esc(problem)}</p><p>The other files of this folder are complete. Build the report again with "
+            f"<code>groupmodel report {esc(str(out.target))} --debug</code>.</p>"))])
+    out.write_text(REPORT_NAME, text)
     return [REPORT_NAME]
 
 

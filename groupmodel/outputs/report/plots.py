@@ -48,10 +48,10 @@ def slice_positions(mask: np.ndarray, count: int = 8) -> list[int]:
 
 def png_picture(rgb: np.ndarray) -> Picture:
     """A PNG data URI of an (h, w, 3) array of floats in [0, 1]."""
-    from matplotlib.image import imsave
+    from PIL import Image  # matplotlib's own PNG writer
 
     buf = io.BytesIO()
-    imsave(buf, np.clip(rgb, 0, 1), format="png")
+    Image.fromarray(np.round(np.clip(rgb, 0, 1) * 255).astype(np.uint8), "RGB").save(buf, "PNG")
     return Picture("data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii"),
                    rgb.shape[1], rgb.shape[0])
 

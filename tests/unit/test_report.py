@@ -428,3 +428,13 @@ def test_a_failing_report_never_costs_the_results(tmp_path: Path, monkeypatch: p
     assert "a drawing problem" in text and "groupmodel report" in text
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "report.html could not be built" in err
+
+
+def test_participant_check_and_mean_image_do_not_depend_on_the_chunk_size() -> None:
+    # Reference: the same fit in one chunk and in chunks of 97 voxels (sums add up; only summation order differs).
+    from groupmodel.fit import fit_images
+
+    one = fit_images(EXAMPLE / "model.json", chunk_voxels=10**6, progress=False)
+    many = fit_images(EXAMPLE / "model.json", chunk_voxels=97, progress=False)
+    pd.testing.assert_frame_equal(one.participant_residuals, many.participant_residuals, rtol=1e-12)
+    np.testing.assert_array_equal(one.mean_input, many.mean_input)  # per voxel: the same arithmetic

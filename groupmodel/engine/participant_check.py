@@ -18,15 +18,29 @@ import numpy as np
 UNUSUAL_Z = 5.0
 
 
+#: Elements of an (n, block) working array: blocks of voxels small enough to stay in cache, so that no
+#: (n, v) float64 copy of a chunk is made.
+_BLOCK_ELEMENTS = 1 << 16
+
+
 def chunk_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
     """Sum over the voxels of one chunk of each observation's |residual|: shape (n,).
 
     ``design`` (n, p), ``y`` (n, v) and ``beta`` (p, v) from the fit of the chunk; voxels whose residuals
-    are not finite are left out.
+    are not finite are left out.  Worked through in blocks of voxels (no (n, v) temporary).
     """
-    resid = np.abs(np.asarray(y, dtype=np.float64) - design @ beta)
-    finite = np.isfinite(resid).all(axis=0)
-    return resid[:, finite].sum(axis=1)
+    x = np.asarray(design, dtype=np.float64)
+    n, v = np.shape(y)
+    total = np.zeros(n)
+    step = max(64, _BLOCK_ELEMENTS // max(n, 1))
+    for lo in range(0, v, step):
+        hi = min(lo + step, v)
+        resid = np.array(y[:, lo:hi], dtype=np.float64)
+        resid -= x @ beta[:, lo:hi]
+        np.abs(resid, out=resid)
+        finite = np.isfinite(resid).all(axis=0)
+        total += resid[:, finite].sum(axis=1)
+    return total
 
 
 @dataclass

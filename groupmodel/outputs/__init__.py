@@ -3,7 +3,8 @@
 - :mod:`.folder`: the atomic output folder, JSON and TSV text;
 - :mod:`.provenance`: the header (software, version, research-use note) every sidecar carries;
 - :mod:`.design_files`: design.tsv/json, contrasts.tsv/json and their pictures (:mod:`.figures`);
-- :mod:`.fit_files`: results of a table fit; maps, sidecars, cluster tables and summary of a voxel fit.
+- :mod:`.fit_files`: results of a table fit; maps, sidecars, cluster tables and summary of a voxel fit;
+- :mod:`.report`: report.html, built from the files of a folder (where they are: :mod:`.report.locate` only).
 """
 
 from .folder import NA, OutputFolder, dumps_json, format_tsv

@@ -14,6 +14,7 @@ from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..outputs.provenance import RunClock
 from ..text import DISCLAIMER
+from .cell_means import cell_means
 
 #: Columns of results.tsv, in order.
 RESULT_COLUMNS = ["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z"]
@@ -28,6 +29,7 @@ class TableFit:
     result: ChunkResult
     table: pd.DataFrame
     clock: RunClock = field(default_factory=RunClock.start)  # when the fit started (recorded with the results)
+    cell_means: pd.DataFrame | None = None
 
     def format(self) -> str:
         """The results table for a terminal."""
@@ -85,4 +87,5 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str) -> TableFit:
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)
-    return TableFit(model, outcome, result, results_table(model, result), clock)
+    return TableFit(model, outcome, result, results_table(model, result), clock,
+                    cell_means=cell_means(model.design, y))

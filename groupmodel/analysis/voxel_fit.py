@@ -27,6 +27,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .participant_check import ParticipantCheck, residual_table
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -62,6 +63,10 @@ class VoxelFit:
         The files the fit read (spec, participants table and JSON, mask, images), for the provenance record.
     clock : RunClock
         When the fit started (recorded with its wall time).
+    mean_input : ndarray, shape (n_in_mask,), or None
+        The mean of the input images (the background of the report's slices).
+    participant_residuals : DataFrame or None
+        Each observation's mean absolute residual across the mask (:mod:`.participant_check`).
     """
 
     model: Model
@@ -78,6 +83,8 @@ class VoxelFit:
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
     inputs: RunInputs | None = None  # the files read (for the provenance of every sidecar)
     clock: RunClock = field(default_factory=RunClock.start)  # when the fit started
+    mean_input: np.ndarray | None = None
+    participant_residuals: pd.DataFrame | None = None
 
     @property
     def elements(self) -> str:
@@ -194,7 +201,7 @@ def fit_images(
             n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
@@ -216,7 +223,8 @@ def fit_images(
                         tables={n: r.tables for n, r in permuted.items()},
                         inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
                                                  [(r.path, r.volume) for r in source.refs], model.sample),
-                        clock=clock)
+                        clock=clock, mean_input=extras[0],
+                        participant_residuals=residual_table(model.design.participant_ids, extras[1]))
     finally:
         data.close()
 
@@ -233,19 +241,24 @@ def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: 
         bar.close()
 
 
-def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int,
-                     progress: bool) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
+def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool
+                     ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
-    chunk (the corrected p maps are allocated here and filled by the corrections)."""
+    chunk (the corrected p maps are allocated here and filled by the corrections); also the mean input
+    image and the per-participant residual sums."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
             for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
+    mean_input = np.empty(n_vox)
+    check = ParticipantCheck.empty(model.design.n_observations)
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
         for cols, y in data.chunks(chunk_voxels):
-            res = fit_chunk(prepared, y)
+            res = fit_chunk(prepared, y, beta=True)
             resid_var[cols] = res.residual_variance
+            mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
+            check.add(model.design.matrix, y, res.beta)
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
@@ -260,7 +273,7 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
-    return maps, resid_var
+    return maps, resid_var, (mean_input, check)
 
 
 def elements_of(grid: Any) -> str:

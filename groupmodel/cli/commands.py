@@ -60,7 +60,7 @@ def _fit_table(args: argparse.Namespace) -> int:
     print()
     print(fit.format())
     write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))
-    print(f"wrote {args.out}/results.tsv")
+    print(f"wrote {args.out}/results.tsv and {args.out}/report.html")
     return 0
 
 
@@ -113,8 +113,29 @@ def _split_names(text: str | None) -> list[str] | None:
     return [t.strip() for t in text.split(",") if t.strip()]
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    """``groupmodel report DIR``: build report.html again from the files of an output folder."""
+    from ..outputs.index import INDEX_NAME, refresh_index
+    from ..outputs.report import REPORT_NAME, report_html
+
+    text = report_html(args.folder, pictures=not args.no_pictures, background=args.background)
+    target = args.folder / REPORT_NAME
+    tmp = target.with_name(f".{REPORT_NAME}.partial")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(target)
+        if (args.folder / INDEX_NAME).exists():
+            refresh_index(args.folder)  # the index lists report.html too
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise OutputError(f"{target}: cannot be written ({exc.strerror}); check the folder's permissions") from None
+    print(f"wrote {target}")
+    print_disclaimer()
+    return 0
+
+
 #: Sub-command name -> its function.
-COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check}
+COMMANDS = {"build": cmd_build, "fit": cmd_fit, "check": cmd_check, "report": cmd_report}
 
 
 def inference_overrides(args: argparse.Namespace) -> dict[str, Any]:

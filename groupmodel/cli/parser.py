@@ -16,6 +16,7 @@ examples:
   groupmodel fit example_study/model.json --out results/
   groupmodel fit example_study/model.json --outcome hippocampus_signal --out roi/
   groupmodel check --design design.tsv --contrasts contrasts.tsv --participants participants.tsv
+  groupmodel report results/
 
 exit codes: 0 ok; 1 the model or data has problems; 2 usage or unreadable input.
 groupmodel supports research; it is not a clinical or diagnostic tool.
@@ -87,6 +88,7 @@ def make_parser() -> argparse.ArgumentParser:
     _add_build(sub)
     _add_fit(sub)
     _add_check(sub)
+    _add_report(sub)
     return p
 
 
@@ -196,3 +198,19 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
                    "sub-<label> in each path is compared with the row's participant")
     c.add_argument("--json", type=Path, help="also write the findings as JSON to this file")
     c.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
+
+
+def _add_report(sub: argparse._SubParsersAction) -> None:
+    r = sub.add_parser(
+        "report",
+        help="build report.html again from an output folder",
+        description="Read the files of a groupmodel output folder (of build or fit) and write its report.html: "
+        "one self-contained page with the study, the design, the hypotheses, their sensitivity and the results.",
+        epilog="examples:\n  groupmodel report results/\n  groupmodel report results/ --background template.nii.gz\n",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    r.add_argument("folder", type=Path, help="the --out folder of a groupmodel build or fit")
+    r.add_argument("--background", type=Path, help="image on the grid of the maps to draw slices over (default: "
+                   "the mean of the input images, mean_input)")
+    r.add_argument("--no-pictures", action="store_true", help="leave the figures out of the report")
+    r.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)

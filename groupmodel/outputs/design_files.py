@@ -95,6 +95,16 @@ def contrasts_sidecar(model: Model) -> dict[str, Any]:
     }
 
 
+def included_frame(model: Model) -> pd.DataFrame:
+    """participants_included.tsv: each included observation with its factor levels and raw covariate (and
+    outcome) values, in design-row order (the report summarises covariates per cell from it)."""
+    data = model.sample.data
+    d = model.design
+    keep = ["participant_id", *d.factors, *[c for c in d.covariates if c in data],
+            *[c for c in model.sample.numeric_columns if c in data and c not in d.covariates]]
+    return data[list(dict.fromkeys(keep))].reset_index(drop=True)
+
+
 def write_model(model: Model, out: OutputFolder, pictures: bool = True,
                 run: dict[str, Any] | None = None) -> list[str]:
     """Write design and contrast files into an open output folder; returns the file names.
@@ -106,7 +116,8 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True,
     out.write_json("design.json", {**design_sidecar(model), **extra})
     out.write_tsv("contrasts.tsv", contrasts_frame(model))
     out.write_json("contrasts.json", {**contrasts_sidecar(model), **extra})
-    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+    out.write_tsv("participants_included.tsv", included_frame(model))
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "participants_included.tsv"]
     if pictures:
         names += draw_pictures(model, out)
     return names
@@ -154,8 +165,11 @@ def write_build(model: Model, o: OutputFolder, pictures: bool = True, command: S
     from .dataset import dataset_description, finish_folder
 
     run = run_record(RunInputs.of_spec(model.spec, sample=model.sample), clock or RunClock.start())
+    from .report import write_report
+
     names = write_model(model, o, pictures=pictures, run=run)
-    return names + finish_folder(o, dataset_description("design", model.spec, command_line(command)))
+    names += finish_folder(o, dataset_description("design", model.spec, command_line(command)))
+    return names + write_report(o, pictures=pictures)  # last: it reads the folder through its index
 
 
 def write_model_folder(model: Model, out: Path | str, force: bool = False, pictures: bool = True) -> Path:

@@ -41,14 +41,19 @@ RESULTS_COLUMNS = {
 def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, pictures: bool = True,
                     command: Sequence[str] | None = None) -> Path:
     """Write results.tsv, results.json and the design files (with their pictures) atomically, then
-    dataset_description.json and the index outputs.json."""
+    dataset_description.json, the index outputs.json and report.html."""
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     run = run_record(RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
         write_model(fit.model, o, pictures=pictures, run=run)
         o.write_tsv("results.tsv", fit.table)
         o.write_json("results.json", {**_results_sidecar(fit), "provenance": run})
+        if fit.cell_means is not None:
+            o.write_tsv("cell_means.tsv", fit.cell_means)
         finish_folder(o, dataset_description(f"table fit ({fit.outcome})", fit.model.spec, command_line(command)))
+        write_report(o, pictures=pictures)
     return Path(out)
 
 
@@ -182,7 +187,24 @@ def _write_residuals_and_mask(o: OutputFolder, fit: VoxelFit, run: dict[str, Any
     write_mask(o.file(mname), fit.mask, fit.grid)
     o.write_json(sidecar_path(None, "mask"), {"statistic": "mask", **fit.mask_report,
                                               **provenance(("software_version",)), "provenance": run})
-    return [fname, mname]
+    return [fname, mname, *_write_participant_check(o, fit, run)]
+
+
+def _write_participant_check(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
+    """The mean of the input images (the report's background) and each participant's mean |residual|."""
+    from ..images import write_map
+
+    names = []
+    if fit.mean_input is not None:
+        fname = map_path(None, "mean_input", fit.grid.kind)
+        write_map(o.file(fname), fit.mean_input, fit.mask, fit.grid, description="groupmodel mean input image")
+        o.write_json(sidecar_path(None, "mean_input"), map_sidecar(
+            fit, None, "mean_input", run=run, description="mean of the input images over the observations"))
+        names.append(fname)
+    if fit.participant_residuals is not None:
+        o.write_tsv("participants_residuals.tsv", fit.participant_residuals)
+        names.append("participants_residuals.tsv")
+    return names
 
 
 def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
@@ -221,9 +243,12 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
     """Write every map with its sidecar, the mask, the design files and a summary, atomically; then
     dataset_description.json and the index outputs.json (layout: :mod:`.index`).
 
-    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written.
     ``command``: the command-line arguments (recorded in dataset_description.json; default ``sys.argv``).
+    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written; the
+    report (report.html, without figures when ``pictures`` is off) is written last, from the files.
     """
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     written: list[str] = []
     run = run_record(fit.inputs or RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
@@ -240,6 +265,7 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
         finally:
             # never leave the thread writing into a folder that is being removed
             picture_names = job.join() if job is not None else []
-        written[4:4] = picture_names  # listed beside the design files, as before
+        written[5:5] = picture_names  # listed beside the design files, as before
         written += finish_folder(o, dataset_description("voxelwise fit", fit.model.spec, command_line(command)))
+        written += write_report(o, pictures=pictures)  # last: it reads the folder through its index
     return written

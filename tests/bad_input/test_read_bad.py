@@ -236,7 +236,8 @@ def test_the_next_run_removes_what_a_killed_run_left(tmp_path: Path) -> None:
     removed = [line for line in stdout.getvalue().splitlines() if line.startswith("removed ")]
     assert len(removed) == 1 and left.name in removed[0] and f"process {proc.pid}" in removed[0]
     assert sorted(p.name for p in out.iterdir()) == ["contrasts.json", "contrasts.tsv", "dataset_description.json",
-                                                     "design.json", "design.tsv", "outputs.json"]
+                                                     "design.json", "design.tsv", "outputs.json",
+                                                     "participants_included.tsv", "report.html"]
 
 
 def test_a_live_run_and_unknown_folders_are_left_alone(tmp_path: Path) -> None:

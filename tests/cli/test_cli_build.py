@@ -23,7 +23,7 @@ from groupmodel import cli
 STUDY = Path(__file__).resolve().parents[2] / "example_study"
 SPEC = STUDY / "model.json"
 DESIGN_FILES = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
-                "dataset_description.json", "outputs.json"}
+                "dataset_description.json", "outputs.json", "participants_included.tsv", "report.html"}
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 
@@ -160,7 +160,8 @@ def test_existing_output_needs_force(tmp_path: Path) -> None:
     code, _, stderr = run("build", str(SPEC), "--out", str(out), "--no-pictures", "--force")
     assert code == 0, stderr
     assert {p.name for p in out.iterdir()} == {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json",
-                                               "dataset_description.json", "outputs.json"}
+                                               "dataset_description.json", "outputs.json", "participants_included.tsv",
+                                               "report.html"}
     empty = tmp_path / "empty"
     empty.mkdir()
     code, _, _ = run("build", str(SPEC), "--out", str(empty), "--no-pictures")

@@ -61,7 +61,9 @@ def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
 def expected_files() -> set[str]:
     names = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
              "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
-             "mask.nii.gz", "mask.json", "dataset_description.json", "outputs.json"}
+             "mask.nii.gz", "mask.json", "dataset_description.json", "outputs.json",
+             "participants_included.tsv", "mean_input.nii.gz", "mean_input.json",
+             "participants_residuals.tsv", "report.html"}
     for name, h in HYPOTHESES.items():
         for stat in (F_MAPS if "main" in h else T_MAPS):
             names |= {f"hypotheses/{name}/{stat}.nii.gz", f"hypotheses/{name}/{stat}.json"}

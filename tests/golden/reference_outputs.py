@@ -177,7 +177,8 @@ def compare(a: Path, b: Path, rtol: float = 0.0, pictures: bool = True) -> list[
     """Differences between two reference folders (empty list: the same)."""
     diffs: list[str] = []
     roots_a, roots_b = _roots(a), _roots(b)
-    wanted = (lambda p: p.is_file()) if pictures else (lambda p: p.is_file() and p.suffix != ".png")
+    # the report (report.html) embeds the pictures: compared with them
+    wanted = (lambda p: p.is_file()) if pictures else (lambda p: p.is_file() and p.suffix not in (".png", ".html"))
     files_a = {p.relative_to(a) for p in a.rglob("*") if wanted(p)}
     files_b = {p.relative_to(b) for p in b.rglob("*") if wanted(p)}
     for missing in sorted(files_a ^ files_b):
@@ -190,7 +191,7 @@ def compare(a: Path, b: Path, rtol: float = 0.0, pictures: bool = True) -> list[
             if name != "roots.json":
                 _json_diff(json.loads(_normalised(pa.read_text(), roots_a)),
                            json.loads(_normalised(pb.read_text(), roots_b)), name, rtol, diffs)
-        elif name.endswith(".png"):
+        elif name.endswith((".png", ".html")):
             if pa.read_bytes() != pb.read_bytes():
                 diffs.append(f"{name}: pictures differ")
         else:

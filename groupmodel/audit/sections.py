@@ -198,6 +198,10 @@ def contrast_findings(ctx: AuditContext) -> list[AuditFinding]:
     out = list(ctx.contrasts.findings)
     for con in ctx.contrasts.reports:
         out.extend(con.findings)
+    if ctx.alignment is not None and any(
+            f.code == "repeated_measures" and "not estimable" in f.message for f in ctx.alignment.findings):
+        # participant columns absorb the between-participant effects: the repeated-measures finding says so
+        out = [f for f in out if f.code != "not_estimable"]
     return out
 
 

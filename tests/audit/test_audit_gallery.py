@@ -59,6 +59,8 @@ def test_gallery_is_complete():
             "unexplained_named_factors", "short_first_contrast", "partial_main_effect", "correct_rounded_polynomial"},
         # covariates: centred within groups, the wrong column pasted
         10: {"covariate_centred_within", "covariate_wrong_column", "covariate_wrong_column_named"},
+        # several images per participant in one model: ids repeated, participant columns, rows repeated
+        11: {"repeated_ids", "repeated_participant_columns", "repeated_rows_no_ids", "correct_participant_averages"},
     }
     for kind, cases in kinds.items():
         assert cases <= set(CASES), (kind, cases - set(CASES))

@@ -63,6 +63,8 @@ def test_gallery_is_complete():
         11: {"repeated_ids", "repeated_participant_columns", "repeated_rows_no_ids", "correct_participant_averages"},
         # rounding noise left out of dependent-column explanations
         12: {"dependent_column_rounded_codes"},
+        # a +/-0.5 column unrelated to the factors: unexplained, not miscoded rows
+        13: {"unexplained_half_column"},
     }
     for kind, cases in kinds.items():
         assert cases <= set(CASES), (kind, cases - set(CASES))
@@ -84,6 +86,8 @@ def test_gallery_case(case: str, tmp_path: Path, capsys: pytest.CaptureFixture[s
         # The terminal report shows the same finding with its severity, one line each.
         assert any(line.strip().startswith(f"{want['severity']}: ") and want["contains"][0] in line
                    for line in text.splitlines())
+    for code in spec.get("absent", ()):
+        assert not [f for f in findings if f["code"] == code], f"{case}: a {code} finding in\n{text}"
     bad = [f for f in findings if f["severity"] in ("error", "warning")]
     if spec["clean"]:
         assert not bad, f"{case}: a correct set gave {bad}"

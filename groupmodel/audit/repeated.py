@@ -159,9 +159,16 @@ def _by_layout(files: Files, table: PreparedTable, expected: np.ndarray) -> Grou
 def find_grouping(req: Request, files: Files, table: PreparedTable, expected: np.ndarray) -> Grouping | None:
     """The participant of every row when the design has several rows per participant (None: it has not)."""
     del req
-    if files.x.ids is not None:
-        return _by_ids(files)
-    return _by_indicators(files, table) or _by_layout(files, table, expected)
+    found = _by_ids(files) if files.x.ids is not None else \
+        _by_indicators(files, table) or _by_layout(files, table, expected)
+    if found is None or found.participant_columns:
+        return found
+    # participant indicator columns beside participant ids: the columns with ones on exactly one participant
+    x = files.x.values
+    cols = tuple(j for j in range(x.shape[1]) if np.isin(x[:, j], (0.0, 1.0)).all() and x[:, j].any()
+                 and len(np.unique(found.group[x[:, j] == 1])) == 1
+                 and (x[found.group == found.group[x[:, j] == 1][0], j] == 1).all())
+    return dataclasses.replace(found, participant_columns=cols) if len(cols) >= MIN_GROUPS else found
 
 
 def _between_contrasts(files: Files, between: list[int]) -> list[int] | None:
@@ -229,8 +236,8 @@ def repeated_finding(req: Request, files: Files, grouping: Grouping) -> AuditFin
                 "wrong error term (the residual between images instead of the variation between participants) "
                 f"and the wrong df: {df_words}")
         severity = "error"
-    within_words = (f" (here the factor of {', '.join(labels[j] for j in within)})" if within else "")
-    fix = ("; give one model a spec instead: \"observations\": \"observations.tsv\" (tab-separated, one row per "
+    within_words = (f" (here the factor coded in {', '.join(labels[j] for j in within)})" if within else "")
+    fix = ("; give the model a spec instead: \"observations\": \"observations.tsv\" (tab-separated, one row per "
            "image with participant_id and the within-participant columns such as session) and \"within\": true on "
            f"each within-participant factor{within_words}: between-participant effects are then tested on each "
            f"participant's average over the images ({right} df) and within-participant effects on each "

@@ -77,11 +77,17 @@ def _repeated(req: Request, files: Files, choice: TableChoice) -> Alignment | No
     else:
         sample_rows = _sample_rows(files)
         expected = sample_rows if sample_rows is not None else np.arange(len(ids))
-    table = prepare_table(files.frame, req.participants, choice, expected)
-    grouping = find_grouping(req, files, table, expected)
-    if grouping is None:
-        return None
-    return Alignment(table, None, (repeated_finding(req, files, grouping),))
+    candidates = [expected]
+    if files.x.ids is None and files.sample is None and (choice.factors or choice.covariates):
+        alt = _drop_missing(files, choice.factors, choice.covariates)
+        if alt is not None and len(alt[0]) < len(expected):
+            candidates.append(alt[0])  # the participants without n/a in the columns named
+    for rows in candidates:
+        table = prepare_table(files.frame, req.participants, choice, rows)
+        grouping = find_grouping(req, files, table, rows)
+        if grouping is not None:
+            return Alignment(table, None, (repeated_finding(req, files, grouping),))
+    return None
 
 
 def _sample_rows(files: Files) -> np.ndarray | None:

@@ -124,3 +124,21 @@ def test_between_f_differs_from_participant_averages_statsmodels(tmp_path: Path)
         with_training = sm.OLS(y, np.column_stack([dummies, x[:, 1], x[:, 3]])).fit().model
     without = sm.OLS(y, np.column_stack([dummies, x[:, 3]])).fit().model
     assert with_training.rank == without.rank == 13
+
+
+def test_rows_repeated_for_the_participants_without_na(tmp_path: Path) -> None:
+    """Two participants with n/a age left out, the other ten typed twice in blocks: repeated measures."""
+    table = _table(tmp_path)
+    lines = table.read_text().splitlines()
+    for k in (3, 8):  # sub-03 and sub-08
+        lines[k] = lines[k].rsplit("\t", 1)[0] + "\tn/a"
+    table.write_text("\n".join(lines) + "\n")
+    keep = [i for i in range(12) if i not in (2, 7)]
+    mean_age = float(np.mean([AGE[i] for i in keep]))
+    base = [[1.0, 1.0 if TRAINING[i] == "app" else -1.0, round(AGE[i] - mean_age, 2)] for i in keep]
+    rows = [r + [s] for s in (0.0, 1.0) for r in base]
+    design, con = _write(tmp_path, rows, [0, 1, 0, 0])
+    report = audit(design, con, table, factors=["training"], covariates=["age"])
+    assert _codes(report) == ["repeated_measures"]
+    assert "20 rows for 10 participants" in report.findings[0].message
+    assert "the right df is 7 (10 participants - rank 3" in report.findings[0].message

@@ -197,52 +197,72 @@ def _df_parts(x: np.ndarray, grouping: Grouping, between: list[int]) -> tuple[in
     return x.shape[0] - rank, rank, grouping.n_participants - rank_b, rank_b
 
 
+@dataclass(frozen=True)
+class _Parts:
+    """The columns of a repeated-measures design by role, and the df used and the right df."""
+
+    between: list[int]
+    varying: list[int]
+    within: list[int]
+    used: int
+    rank: int
+    right: int
+    rank_b: int
+
+
+def _parts(x: np.ndarray, grouping: Grouping) -> _Parts:
+    between = _between_columns(x, grouping.group, grouping.participant_columns)
+    varying = [j for j in between if np.ptp(x[:, j]) > 0]
+    within = [j for j in range(x.shape[1]) if j not in between and j not in grouping.participant_columns]
+    return _Parts(between, varying, within, *_df_parts(x, grouping, between))
+
+
+def _body(files: Files, grouping: Grouping, parts: _Parts) -> tuple[str, str]:
+    """What goes wrong, in words, and the severity."""
+    x, labels, c = files.x.values, files.labels, files.c
+    n, n_part = x.shape[0], grouping.n_participants
+    rows = _between_contrasts(files, parts.between)
+    cols = ", ".join(labels[j] for j in parts.varying) or "the intercept"
+    df_words = (f"{parts.used} residual df ({n} rows - rank {parts.rank}), as if the {n} images were independent, "
+                f"where the right df is {parts.right} ({n_part} participants - rank {parts.rank_b} of the "
+                "between-participant design)")
+    if rows and c is not None:
+        which = [f"contrast row {i + 1} ({c.path.name} line {c.lines[i]})" for i in rows]
+        subject, tested = listing(which) + (" tests" if len(which) == 1 else " test"), c.values[rows]
+    elif rows is None and parts.varying:
+        subject = f"the between-participant column{'s' * (len(parts.varying) != 1)} ({cols}) would test"
+        tested = _unit_rows(x.shape[1], parts.varying)
+    elif grouping.participant_columns:
+        return "; no contrast tests a between-participant effect", "note"
+    else:
+        return ("; no contrast tests a between-participant effect, but with the images as independent the "
+                "differences between participants stay in the error term of every test"), "error"
+    if not grouping.participant_columns:
+        return (f"; {subject} a between-participant effect ({cols}: one value per participant), which then has the "
+                "wrong error term (the residual between images instead of the variation between participants) "
+                f"and the wrong df: {df_words}"), "error"
+    estimable = bool(RowSpace.of(x).contains(tested).all())
+    return (f"; {subject} a between-participant effect ({cols}: one value per participant), which the "
+            f"participant columns {'absorb' if not estimable else 'confound'}: it is "
+            f"{'not estimable' if not estimable else 'tested against the wrong error term'} in this model, "
+            f"and without the participant columns it has the wrong error term and the wrong df: {df_words}"), "error"
+
+
 def repeated_finding(req: Request, files: Files, grouping: Grouping) -> AuditFinding:
     """One finding: several images per participant in one model, the df used and the right df, the fix."""
     x = files.x.values
     n, n_part = x.shape[0], grouping.n_participants
-    between = _between_columns(x, grouping.group, grouping.participant_columns)
-    varying = [j for j in between if np.ptp(x[:, j]) > 0]
-    within = [j for j in range(x.shape[1]) if j not in between and j not in grouping.participant_columns]
-    used, rank, right, rank_b = _df_parts(x, grouping, between)
-    labels = files.labels
-    cols = ", ".join(labels[j] for j in varying)
-    rows = _between_contrasts(files, between)
-    c = files.c
-    which = None if rows is None or c is None else \
-        [f"contrast row {i + 1} ({c.path.name} line {c.lines[i]})" for i in rows]
-    tested = c.values[rows] if rows and c is not None else _unit_rows(x.shape[1], varying)
+    parts = _parts(x, grouping)
     head = (f"repeated measures: {req.design.name} has {n} rows for {n_part} participants ({grouping.how}): "
             "several images per participant in one model")
-    df_words = (f"{used} residual df ({n} rows - rank {rank}), as if the {n} images were independent, where the "
-                f"right df is {right} ({n_part} participants - rank {rank_b} of the between-participant design)")
-    subject = (listing(which) + (" tests" if len(which) == 1 else " test") if which
-               else f"the between-participant column{'s' * (len(varying) != 1)} ({cols})" + " would test"
-               if varying and which is None else None)
-    if subject is None:
-        body = ("; no contrast tests a between-participant effect, but with the images as independent the "
-                "differences between participants stay in the error term of every test" if not
-                grouping.participant_columns else "; no contrast tests a between-participant effect")
-        severity = "note" if grouping.participant_columns else "error"
-    elif grouping.participant_columns:
-        estimable = bool(RowSpace.of(x).contains(tested).all())
-        body = (f"; {subject} a between-participant effect ({cols}: one value per participant), which the "
-                f"participant columns {'absorb' if not estimable else 'confound'}: it is "
-                f"{'not estimable' if not estimable else 'tested against the wrong error term'} in this model, "
-                f"and without the participant columns it has the wrong error term and the wrong df: {df_words}")
-        severity = "error"
-    else:
-        body = (f"; {subject} a between-participant effect ({cols}: one value per participant), which then has the "
-                "wrong error term (the residual between images instead of the variation between participants) "
-                f"and the wrong df: {df_words}")
-        severity = "error"
-    within_words = (f" (here the factor coded in {', '.join(labels[j] for j in within)})" if within else "")
+    body, severity = _body(files, grouping, parts)
+    within = ", ".join(files.labels[j] for j in parts.within)
     fix = ("; give the model a spec instead: \"observations\": \"observations.tsv\" (tab-separated, one row per "
            "image with participant_id and the within-participant columns such as session) and \"within\": true on "
-           f"each within-participant factor{within_words}: between-participant effects are then tested on each "
-           f"participant's average over the images ({right} df) and within-participant effects on each "
-           f"participant's within contrasts; or average each participant's images and give one row per "
-           f"participant ({n_part} rows)")
+           f"each within-participant factor{f' (here the factor coded in {within})' if within else ''}: "
+           f"between-participant effects are then tested on each participant's average over the images "
+           f"({parts.right} df) and within-participant effects on each participant's within contrasts; or average "
+           f"each participant's images and give one row per participant ({n_part} rows)")
     return AuditFinding(severity, "repeated_measures", head + body + fix, "rows")  # type: ignore[arg-type]
 
 

@@ -5,8 +5,8 @@ model: the participant ids repeated, one indicator column per participant, or th
 session.  A between-participant effect (a group, a covariate) tested there has the wrong error term and the
 wrong degrees of freedom: the images of one participant are not independent, and the effect must be tested
 against the variation between participants, on ``participants - rank`` of the between-participant design
-(the per-participant average analysis of a split-plot design, e.g. Maxwell and Delaney's treatment of
-mixed designs).  This module recognises the layout and says so once, with the df used and the right df.
+(the participant-average analysis of the classical split-plot design).  This module recognises the layout
+and says so once, with the df used and the right df.
 
 The participant of every row is found (in this order) from
 

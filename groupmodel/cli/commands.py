@@ -65,9 +65,11 @@ def _fit_table(args: argparse.Namespace) -> int:
 def _fit_images(args: argparse.Namespace) -> int:
     """Fit, print a summary, write the maps."""
     from ..analysis.voxel_fit import fit_images
+    from ..images.spill import remove_stale_spills
     from ..model.spec import load_spec
     from ..outputs.fit_files import write_voxel_fit
 
+    print_removed(remove_stale_spills(), "in the temporary folder")
     spec = load_spec(args.spec)
     options = spec.inference_options.with_overrides(**inference_overrides(args))
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,

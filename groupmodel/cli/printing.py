@@ -13,11 +13,11 @@ if TYPE_CHECKING:
     from ..outputs.folder import StaleFolder, StaleLock
 
 
-def print_removed(removed: tuple[StaleFolder, ...]) -> None:
-    """One line naming the hidden folders of killed earlier runs that were just removed (nothing if none)."""
+def print_removed(removed: tuple[StaleFolder, ...], where: str = "beside --out") -> None:
+    """One line naming the folders of killed earlier runs that were just removed (nothing if none)."""
     if removed:
         names = ", ".join(f"{r.path.name} (process {r.pid})" for r in removed)
-        print(f"removed {names}: left beside --out by an earlier run that was killed before it finished")
+        print(f"removed {names}: left {where} by an earlier run that was killed before it finished")
 
 
 def print_stale_lock(stale: StaleLock | None) -> None:

@@ -6,7 +6,8 @@ this module feeds it the chunks of the loaded images and collects the maps, then
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from contextlib import nullcontext
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -17,6 +18,7 @@ from ..engine.ols import Prepared, fit_chunk, prepare
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
+from ..runtime.log import StageLog
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
 from .corrections import (
@@ -26,6 +28,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .parallel import parallel_plan
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -57,6 +60,8 @@ class VoxelFit:
         Hypothesis -> what its permutation maps were made with (method, J, exhaustive, seed, TFCE, ...).
     tables : dict
         Hypothesis -> kind (``voxel_fwe``, ``tfce_fwe``, ``cluster_extent_fwe``) -> cluster table.
+    runtime : dict
+        Cores available (and what limited them), threads and worker processes the permutations used.
     """
 
     model: Model
@@ -71,6 +76,7 @@ class VoxelFit:
     inference: dict[str, Any] | None = None
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+    runtime: dict[str, Any] = field(default_factory=dict)
 
     @property
     def elements(self) -> str:
@@ -144,6 +150,7 @@ def fit_images(
     chunk_voxels: int | None = None,
     progress: bool = True,
     inference: InferenceOptions | None = None,
+    log: StageLog | None = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
@@ -166,6 +173,8 @@ def fit_images(
         Show a progress bar when stderr is a terminal.
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
+    log : StageLog, optional
+        Where to write a line per stage and progress lines for logs (default: nothing).
     """
     from ..images import chunk_size_for
 
@@ -179,21 +188,28 @@ def fit_images(
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
     prepared = prepare(model.design.matrix, model.tests())
-    data = _load(source, mask if mask is not None else spec.mask, budget, progress)
+    log = log if log is not None else StageLog(quiet=True)
+    plan = parallel_plan(inference, budget)
+    log.info(plan.cores.describe())
+    with log.stage("reading images"):
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
             n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        with log.stage("fitting"):
+            maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
-        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
-        warnings += inference_notes(data.grid, inference)
+        with log.stage("permutations") if inference.active else nullcontext():
+            permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
+                                         budget, chunk_voxels, progress, log)
+        warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
         for name, res in permuted.items():
             maps[name].update(res.maps)
         report = {
@@ -205,7 +221,7 @@ def fit_images(
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
-                        tables={n: r.tables for n, r in permuted.items()})
+                        tables={n: r.tables for n, r in permuted.items()}, runtime=plan.as_dict())
     finally:
         data.close()
 
@@ -270,17 +286,19 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool) -> dict[str, HypothesisInference]:
+                      chunk_voxels: int, progress: bool, log: StageLog) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
     if not options.active:
         return {}
     bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
                        enabled=progress)
     done_before: dict[str, int] = {}
+    total = options.permutations * len(model.hypotheses)
 
-    def report(name: str, done: int, total: int) -> None:
+    def report(name: str, done: int, _total: int) -> None:
         bar.update(done - done_before.get(name, 0))
         done_before[name] = done
+        log.progress("permutations", sum(done_before.values()), total, "rearrangements")
 
     try:
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,

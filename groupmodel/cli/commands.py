@@ -7,7 +7,14 @@ from typing import Any
 
 from ..errors import OutputError
 from ..outputs.folder import OutputFolder, OutputLock
-from .printing import print_disclaimer, print_model_report, print_removed, print_stale_lock, print_voxel_fit
+from .printing import (
+    log_findings,
+    print_disclaimer,
+    print_model_report,
+    print_removed,
+    print_stale_lock,
+    print_voxel_fit,
+)
 
 
 def cmd_build(args: argparse.Namespace) -> int:
@@ -68,12 +75,15 @@ def _fit_images(args: argparse.Namespace) -> int:
     from ..images.spill import remove_stale_spills
     from ..model.spec import load_spec
     from ..outputs.fit_files import write_voxel_fit
+    from ..runtime.log import StageLog
 
     print_removed(remove_stale_spills(), "in the temporary folder")
+    log = StageLog(quiet=args.quiet)
     spec = load_spec(args.spec)
     options = spec.inference_options.with_overrides(**inference_overrides(args))
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
-                     inference=options)
+                     inference=options, log=log)
+    log_findings(log, fit.model.findings, fit.warnings)
     print_voxel_fit(fit, options)
     write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
     print(f"wrote {args.out}")

@@ -186,6 +186,7 @@ def _write_summary(o: OutputFolder, fit: VoxelFit) -> list[str]:
         "df_resid": fit.df_resid, "mask": fit.mask_report,
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
         "warnings": fit.warnings, "inference": _inference_record(fit),
+        "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
     })
     return ["summary.tsv", "summary.json"]
 

@@ -27,7 +27,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "example_study"
 #: Keys whose values legitimately change between versions or runs.
-VOLATILE_KEYS = {"software_version"}
+VOLATILE_KEYS = {"software_version", "runtime"}  # runtime: cores of the machine that ran it
 
 
 def _run(name: str, args: list[str], out: Path) -> None:

@@ -1,5 +1,6 @@
-"""Stage and progress lines for logs (stdout, no terminal), warnings on stderr: one line per stage, progress at most every 30 s, with rate
-and time left computed as (J - k) / (k / elapsed) (plain arithmetic, checked by hand below)."""
+"""Stage and progress lines for logs (stdout, no terminal), warnings on stderr: one line per stage, progress at
+most every 30 s, with rate and time left computed as (J - k) / (k / elapsed) (plain arithmetic, checked by hand
+below)."""
 
 from __future__ import annotations
 

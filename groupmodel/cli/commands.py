@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from typing import Any
 
 from ..errors import OutputError
@@ -28,13 +29,14 @@ def _build(args: argparse.Namespace) -> int:
     from ..model.assembly import build
     from ..outputs.design_files import write_model
 
-    folder = OutputFolder(args.out, force=args.force)  # refuse an existing folder before any work
+    folder = OutputFolder(args.out, force=args.force, inputs=_inputs(args))  # refuse a wrong --out before any work
     print_removed(folder.removed)
     model = build(args.spec)
     print_model_report(model)
     if model.errors:
         print("nothing written: the model has errors (see above)")
         model.raise_for_errors()  # the same one line on stderr and exit code 1 as every other error
+    check_build_images(model)
     with folder as out:
         names = write_model(model, out, pictures=not args.no_pictures)
     print(f"wrote {args.out}: {', '.join(names)}")
@@ -42,15 +44,66 @@ def _build(args: argparse.Namespace) -> int:
     return 0
 
 
+def _inputs(args: argparse.Namespace) -> list[Any]:
+    """The input files of a run (a --out holding one of them is refused)."""
+    from ..model.spec import load_spec
+
+    spec = load_spec(args.spec)  # a broken spec is reported here, before any work, as it would be later
+    return [args.spec, getattr(args, "mask", None), spec.participants]
+
+
+def check_build_images(model: Any) -> None:
+    """When the spec names images: refuse a build none of whose images exists (exit 2); other image problems
+    are warnings (the design files do not need the images)."""
+    from ..images.headers import ImageProblems
+
+    if not model.spec.images or not model.design.n_observations:
+        return
+    from ..analysis.voxel_fit import open_images
+
+    try:
+        open_images(model)
+    except ImageProblems as exc:
+        missing = sum(p.kind == "missing" for p in exc.problems)
+        if missing == model.design.n_observations:
+            raise
+        for line in str(exc).splitlines():
+            sys.stderr.write(f"groupmodel: warning: {line.strip()}\n")
+
+
 def cmd_fit(args: argparse.Namespace) -> int:
     """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
+    if args.dry_run:
+        return _dry_run(args)
     with OutputLock(args.out) as lock:  # a second run into the same --out is refused at once
         print_stale_lock(lock.stale)
         return _fit(args)
 
 
+def _dry_run(args: argparse.Namespace) -> int:
+    """``fit --dry-run``: every check, the plan, nothing written (no lock, no folder)."""
+    from ..analysis.dry_run import dry_run
+    from ..analysis.table_fit import fit_table
+    from ..model.spec import load_spec
+    from ..outputs.target import check_target
+
+    check_target(args.out, args.force, _inputs(args))
+    if args.outcome:
+        fit = fit_table(args.spec, args.outcome)
+        print_model_report(fit.model)
+        print(f"dry run: {args.outcome} can be fitted; nothing is written")
+        return 0
+    spec = load_spec(args.spec)
+    options = spec.inference_options.with_overrides(**inference_overrides(args))
+    plan = dry_run(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                   inference=options)
+    print("\n".join(plan.lines()))
+    return 0
+
+
 def _fit(args: argparse.Namespace) -> int:
-    print_removed(OutputFolder(args.out, force=args.force).removed)  # refuse an existing folder before any work
+    folder = OutputFolder(args.out, force=args.force, inputs=_inputs(args))  # refuse a wrong --out before any work
+    print_removed(folder.removed)
     if args.outcome:
         return _fit_table(args)
     return _fit_images(args)

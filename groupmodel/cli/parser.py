@@ -133,6 +133,9 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    help="leave out participants whose image is missing (listed) instead of stopping")
     f.add_argument("--force", action="store_true", help="replace an existing non-empty --out folder")
     f.add_argument("--no-pictures", action="store_true", help="skip the PNG pictures of the design and contrasts")
+    f.add_argument("--dry-run", action="store_true",
+                   help="check spec, table, images and mask and say what the run would do (observations, voxels, "
+                   "hypotheses, permutations, memory, estimated time); write nothing; exit 0/1/2 as a real run")
     f.add_argument("--quiet", action="store_true", help="no stage or progress lines on stderr (warnings still shown)")
     _add_inference_options(f)
     f.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)

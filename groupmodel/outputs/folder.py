@@ -23,6 +23,7 @@ import shutil
 import sys
 import tempfile
 import time
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
@@ -33,6 +34,7 @@ import pandas as pd
 
 from ..errors import OutputError
 from ..runtime.owner import OWNER_FILE, StaleFolder, owner_alive_here, owner_record, remove_stale_folders_of
+from .target import OUTPUT_RECORD, check_target, output_record
 
 #: Text written for a missing value in every TSV groupmodel writes (BIDS convention).
 NA = "n/a"
@@ -245,9 +247,10 @@ class OutputFolder:
     target : Path
         The folder the user asked for.
     force : bool
-        Replace an existing non-empty folder.  Without it such a folder is an
-        :class:`~groupmodel.errors.OutputError` raised at construction, before
-        any work is done.
+        Replace an existing non-empty folder, if it is a groupmodel output (:mod:`.target`).  Without it such a
+        folder is an :class:`~groupmodel.errors.OutputError` raised at construction, before any work is done.
+    inputs : paths
+        The run's inputs: a ``--out`` holding one of them (or the working directory) is refused.
 
     Attributes
     ----------
@@ -255,19 +258,10 @@ class OutputFolder:
         Hidden folders of earlier, killed runs into the same place, removed at construction.
     """
 
-    def __init__(self, target: Path | str, force: bool = False) -> None:
+    def __init__(self, target: Path | str, force: bool = False, inputs: Iterable[Path | str | None] = ()) -> None:
         self.target = Path(target)
         self.force = force
-        if self.target.exists():
-            if not self.target.is_dir():
-                raise OutputError(
-                    f"--out {self.target}: expected a folder, found a file; choose another path"
-                )
-            if any(self.target.iterdir()) and not force:
-                raise OutputError(
-                    f"--out {self.target}: the folder exists and is not empty; "
-                    "choose another path or add --force to replace it"
-                )
+        check_target(self.target, force, inputs)
         check_parent(self.target)
         self.removed = remove_stale_folders(self.target)
         self.path: Path | None = None
@@ -296,6 +290,7 @@ class OutputFolder:
             return
         try:
             (self.path / OWNER_FILE).unlink()
+            (self.path / OUTPUT_RECORD).write_text(output_record(self.path), encoding="utf-8")
             os.chmod(self.path, 0o777 & ~_umask())  # as any folder the user creates (mkdtemp makes it 0700)
             if self.target.exists():
                 old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-", dir=self.path.parent))

@@ -61,7 +61,7 @@ def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
 def expected_files() -> set[str]:
     names = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
              "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
-             "mask.nii.gz", "mask.json"}
+             "mask.nii.gz", "mask.json", ".groupmodel-output.json"}
     for name, h in HYPOTHESES.items():
         for stat in (F_MAPS if "main" in h else T_MAPS):
             names |= {f"{name}_{stat}.nii.gz", f"{name}_{stat}.json"}
@@ -112,6 +112,10 @@ def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
     assert len(lines) == 1 and lines[0].startswith("groupmodel: error:") and "--force" in lines[0]
     assert "Traceback" not in proc.stderr
     assert [p.name for p in out.iterdir()] == ["old.txt"]
+    proc = run_cli("fit", str(spec), "--out", str(out), "--force")
+    assert proc.returncode == 2 and "not a groupmodel output" in proc.stderr  # not groupmodel's: kept
+    (out / "old.txt").unlink()
+    (out / "dataset_description.json").write_text('{"GeneratedBy": [{"Name": "groupmodel"}]}')
     proc = run_cli("fit", str(spec), "--out", str(out), "--force")
     assert proc.returncode == 0, proc.stderr
     assert set(p.name for p in out.iterdir()) == expected_files()

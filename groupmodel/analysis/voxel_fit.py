@@ -151,6 +151,7 @@ def fit_images(
     progress: bool = True,
     inference: InferenceOptions | None = None,
     log: StageLog | None = None,
+    checkpoint: Any = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
@@ -175,6 +176,8 @@ def fit_images(
         Permutation inference settings (default: the spec's ``inference`` object).
     log : StageLog, optional
         Where to write a line per stage and progress lines for logs (default: nothing).
+    checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
+        Keep the counts and maxima of finished permutation batches there, and resume from them.
     """
     from ..images import chunk_size_for
 
@@ -208,7 +211,7 @@ def fit_images(
             maps[name].update(extra)
         with log.stage("permutations") if inference.active else nullcontext():
             permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
-                                         budget, chunk_voxels, progress, log)
+                                         budget, chunk_voxels, progress, log, checkpoint)
         warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
         for name, res in permuted.items():
             maps[name].update(res.maps)
@@ -286,7 +289,8 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool, log: StageLog) -> dict[str, HypothesisInference]:
+                      chunk_voxels: int, progress: bool, log: StageLog,
+                      checkpoint: Any = None) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
     if not options.active:
         return {}
@@ -303,7 +307,7 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
     try:
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
-                                     progress=report)
+                                     progress=report, checkpoint=checkpoint)
     finally:
         bar.close()
 

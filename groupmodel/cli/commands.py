@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
 from typing import Any
 
 from ..errors import OutputError
@@ -134,14 +135,41 @@ def _fit_images(args: argparse.Namespace) -> int:
     log = StageLog(quiet=args.quiet)
     spec = load_spec(args.spec)
     options = spec.inference_options.with_overrides(**inference_overrides(args))
+    checkpoint = open_checkpoint(args, spec, options)
     fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
-                     inference=options, log=log)
+                     inference=options, log=log, checkpoint=checkpoint)
     log_findings(log, fit.model.findings, fit.warnings)
     print_voxel_fit(fit, options)
     write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
+    if checkpoint is not None:
+        checkpoint.remove()
     print(f"wrote {args.out}")
     print_disclaimer()
     return 0
+
+
+def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
+    """The --checkpoint folder with this command's parameters (None without --checkpoint)."""
+    from ..inference.checkpoint import CheckpointFolder, file_digest
+
+    if args.checkpoint is None:
+        if args.resume:
+            raise OutputError("--resume: expected --checkpoint DIR naming the checkpoint to continue; add it")
+        return None
+    mask = args.mask if args.mask is not None else spec.mask
+    parameters = {
+        "spec": str(Path(args.spec).resolve()), "spec_sha256": file_digest(args.spec),
+        "participants_sha256": file_digest(spec.participants),
+        "mask": None if mask is None else str(Path(mask).resolve()),
+        "mask_sha256": None if mask is None else file_digest(mask),
+        "drop_missing_images": bool(args.drop_missing_images), "inference": options.as_dict(),
+    }
+    folder = CheckpointFolder(args.checkpoint, parameters, resume=args.resume, every=args.checkpoint_every)
+    saved = folder.progress()
+    if args.resume:
+        done = ", ".join(f"{name} {k}" for name, k in saved.items()) or "nothing saved yet"
+        print(f"resuming from {args.checkpoint}: rearrangements done per hypothesis: {done}")
+    return folder
 
 
 def cmd_check(args: argparse.Namespace) -> int:

@@ -158,6 +158,11 @@ def fit_images(
     Every hypothesis also gets Benjamini-Hochberg and Bonferroni adjusted p maps over the mask; with
     ``inference`` (``permutations > 0``) permutation inference runs on the same data while they are loaded.
 
+    TFCE and cluster nulls may run in worker processes (``inference.jobs``, within the cores and the memory
+    budget).  They are started without the caller's main module, so a script calling this needs no
+    ``if __name__ == "__main__":`` guard and may be read from standard input; it is safe to call from
+    threads other than the main one too.
+
     Parameters
     ----------
     spec : ModelSpec or path

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from ..runtime.cores import CoreLimit, core_limit
-from ..runtime.memory import WORKER_BYTES, WORKER_SHARE, MemoryBudget
+from ..runtime.memory import DATA_SHARE, WORKER_BYTES, WORKER_SHARE, MemoryBudget
 
 
 @dataclass(frozen=True)
@@ -48,3 +48,19 @@ def parallel_plan(options: Any, budget: MemoryBudget) -> ParallelPlan:
                    f"than the {share:.0f} MB of --memory they may take; raise --memory or lower --jobs if the job's "
                    "memory is limited")
     return ParallelPlan(cores, threads, jobs if jobs >= 2 else 0, warning)
+
+
+def spill_warning(data_bytes: int, budget: MemoryBudget, n_chunks: int, options: Any, n_hypotheses: int) -> str:
+    """What a --memory too small for the image data costs: the data are read from disk, pass after pass."""
+    from ..inference.settings import BATCH_SIZE
+
+    passes = n_hypotheses * -(-options.permutations // BATCH_SIZE) if options.active else 0
+    more = (f", then at least {passes} more for the permutations (one per batch of rearrangements and hypothesis)"
+            if passes else "")
+    return (f"--memory {_mb(budget.total)}: the image data ({_mb(data_bytes)}) do not fit its {_mb(budget.data_bytes)} "
+            f"data share and are read from a file on disk in {n_chunks} chunks: 1 pass for the fit{more}; a --memory "
+            f"of about {_mb(data_bytes / DATA_SHARE)} would keep them in memory")
+
+
+def _mb(n: float) -> str:
+    return f"{n / 2**20:.3g} MB"

@@ -28,7 +28,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
-from .parallel import parallel_plan
+from .parallel import parallel_plan, spill_warning
 from .table_fit import require_fittable
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
@@ -160,8 +160,7 @@ def fit_images(
 
     TFCE and cluster nulls may run in worker processes (``inference.jobs``, within the cores and the memory
     budget).  They are started without the caller's main module, so a script calling this needs no
-    ``if __name__ == "__main__":`` guard and may be read from standard input; it is safe to call from
-    threads other than the main one too.
+    ``if __name__ == "__main__":`` guard and may be read from standard input.
 
     Parameters
     ----------
@@ -218,6 +217,9 @@ def fit_images(
             permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
                                          budget, chunk_voxels, progress, log, checkpoint)
         warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
+        if data.spilled:
+            warnings.append(spill_warning(model.design.n_observations * n_vox * 4, budget, -(-n_vox // chunk_voxels),
+                                          inference, len(model.hypotheses)))
         for name, res in permuted.items():
             maps[name].update(res.maps)
         report = {

@@ -118,8 +118,12 @@ class OutputLock:
                     f"--out {self.target}: cannot create the lock file {self.path} ({exc.strerror}); "
                     "choose another path"
                 ) from exc
-            with os.fdopen(fd, "w", encoding="utf-8") as handle:
-                handle.write(json.dumps(record, ensure_ascii=False))
+            try:
+                with os.fdopen(fd, "w", encoding="utf-8") as handle:
+                    handle.write(json.dumps(record))  # ASCII: a path undecodable in the locale stays writable
+            except BaseException:
+                self.path.unlink(missing_ok=True)
+                raise
             self._held = True
             return self
         raise OutputError(f"--out {self.target}: could not take the lock {self.path}; try again")

@@ -33,3 +33,11 @@ def test_no_workers_without_whole_maps_and_explicit_jobs_warned() -> None:
     plan = parallel_plan(InferenceOptions(permutations=100, tfce=True, jobs=4, threads=2), MemoryBudget(1024 * MB))
     assert (plan.workers, plan.threads) == (4, 2)
     assert plan.warning is not None and "about 1000 MB" in plan.warning and "205 MB" in plan.warning
+
+
+def test_a_budget_too_small_for_the_data_says_what_it_costs() -> None:
+    # 10 MiB of data, a 4 MiB budget (data share 0.6 * 4 = 2.4 MiB); 3 hypotheses x ceil(250 / 100) batches = 9
+    text = parallel.spill_warning(10 * MB, MemoryBudget(4 * MB), 40, InferenceOptions(permutations=250), 3)
+    assert text == ("--memory 4 MB: the image data (10 MB) do not fit its 2.4 MB data share and are read from a file "
+                    "on disk in 40 chunks: 1 pass for the fit, then at least 9 more for the permutations (one per "
+                    "batch of rearrangements and hypothesis); a --memory of about 16.7 MB would keep them in memory")

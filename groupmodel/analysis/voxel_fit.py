@@ -199,7 +199,7 @@ def fit_images(
     plan = parallel_plan(inference, budget)
     log.info(plan.cores.describe())
     with log.stage("reading images"):
-        data = _load(source, mask if mask is not None else spec.mask, budget, progress)
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
@@ -236,14 +236,21 @@ def fit_images(
         data.close()
 
 
-def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool) -> Any:
-    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar."""
+def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,
+          log: StageLog | None = None) -> Any:
+    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar (and
+    progress lines for logs)."""
     from ..images import load_masked
 
     bar = progress_bar(len(source), "reading images", unit="image", enabled=progress)
+
+    def report(done: int, total: int) -> None:
+        bar.update_to(done)
+        if log is not None:
+            log.progress("reading images", done, total, "images")
+
     try:
-        return load_masked(source, mask, budget.data_bytes,
-                           progress=(lambda done, total: bar.update_to(done)) if bar.shown else None)
+        return load_masked(source, mask, budget.data_bytes, progress=report if bar.shown or log else None)
     finally:
         bar.close()
 

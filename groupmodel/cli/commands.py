@@ -56,6 +56,7 @@ def _inputs(args: argparse.Namespace) -> list[Any]:
 def check_build_images(model: Any) -> None:
     """When the spec names images: refuse a build none of whose images exists (exit 2); other image problems
     are warnings (the design files do not need the images)."""
+    from ..errors import ImageError
     from ..images.headers import ImageProblems
 
     if not model.spec.images or not model.design.n_observations:
@@ -64,9 +65,9 @@ def check_build_images(model: Any) -> None:
 
     try:
         open_images(model)
-    except ImageProblems as exc:
-        missing = sum(p.kind == "missing" for p in exc.problems)
-        if missing == model.design.n_observations:
+    except ImageError as exc:
+        problems = exc.problems if isinstance(exc, ImageProblems) else ()
+        if sum(p.kind == "missing" for p in problems) == model.design.n_observations:
             raise
         for line in str(exc).splitlines():
             sys.stderr.write(f"groupmodel: warning: {line.strip()}\n")

@@ -163,7 +163,9 @@ def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
         "participants_sha256": file_digest(spec.participants),
         "mask": None if mask is None else str(Path(mask).resolve()),
         "mask_sha256": None if mask is None else file_digest(mask),
-        "drop_missing_images": bool(args.drop_missing_images), "inference": options.as_dict(),
+        "drop_missing_images": bool(args.drop_missing_images),
+        # threads and worker processes do not change the results: a resume may use others
+        "inference": {k: v for k, v in options.as_dict().items() if k not in ("jobs", "threads")},
     }
     folder = CheckpointFolder(args.checkpoint, parameters, resume=args.resume, every=args.checkpoint_every)
     saved = folder.progress()

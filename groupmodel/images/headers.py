@@ -271,9 +271,10 @@ def problems_text(problems: list[ImageProblem], n_images: int, origin: str) -> s
     counts: dict[str, int] = {}
     for p in problems:
         counts[p.kind] = counts.get(p.kind, 0) + 1
+    drop = (f", or pass {DROP_MISSING_FLAG} to leave out participants whose image is missing"
+            if "missing" in counts else "")
     head = (f"{len(problems)} of {n_images} images cannot be used "
-            f"({', '.join(f'{n} {kind}' for kind, n in counts.items())}; from {origin}); fix them all, or pass "
-            f"{DROP_MISSING_FLAG} to leave out participants whose image is missing:")
+            f"({', '.join(f'{n} {kind}' for kind, n in counts.items())}; from {origin}); fix them all{drop}:")
     lines = [f"  {p.message}" for p in problems[:MAX_LISTED_PROBLEMS]]
     if len(problems) > MAX_LISTED_PROBLEMS:
         lines.append(f"  ... and {len(problems) - MAX_LISTED_PROBLEMS} more")

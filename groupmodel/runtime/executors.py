@@ -95,7 +95,7 @@ def _quiet_worker(initializer: Callable[..., None] | None, *initargs: Any) -> No
     let signals through again and run the caller's initializer."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # also discards a Ctrl-C held back while the worker started
     if hasattr(signal, "pthread_sigmask"):
-        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
     threading.Thread(target=_exit_with_parent, args=(os.getppid(),), name="groupmodel-parent", daemon=True).start()
     if initializer is not None:
         initializer(*initargs)
@@ -112,18 +112,24 @@ def _noop() -> None:
     return None
 
 
+#: Signals held back while worker processes start: Ctrl-C, and SIGTERM (a batch system's time limit).
+_HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
+
+
 @contextmanager
 def _sigint_held() -> Iterator[None]:
-    """Ctrl-C held back (blocked, not lost) in this thread while worker processes start.
+    """Ctrl-C and SIGTERM held back (blocked, not lost) in this thread while worker processes start.
 
-    A child inherits the blocked signal through fork and exec, so a Ctrl-C while it imports cannot print a
-    traceback there; :func:`_quiet_worker` then ignores it for good.  In the parent the signal stays pending
-    (or reaches another thread) and raises KeyboardInterrupt as usual once it is let through.
+    A child inherits the blocked signals through fork and exec, so a Ctrl-C while it imports cannot print a
+    traceback there; :func:`_quiet_worker` then ignores Ctrl-C for good and lets SIGTERM through again.  In the
+    parent a signal stays pending (or reaches another thread) and raises as usual once it is let through: it
+    can no longer cut short the data the parent writes to a starting worker (which then failed with a
+    traceback, "pickle data was truncated").
     """
     if not hasattr(signal, "pthread_sigmask"):  # Windows: no signal masks (and no process-group Ctrl-C)
         yield
         return
-    previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
     try:
         yield
     finally:

@@ -6,7 +6,8 @@ this module feeds it the chunks of the loaded images and collects the maps, then
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from contextlib import nullcontext
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +19,7 @@ from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
 from ..outputs.provenance import RunClock, RunInputs
+from ..runtime.log import StageLog
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
 from .corrections import (
@@ -27,6 +29,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .parallel import parallel_plan, spill_warning
 from .participant_check import ParticipantCheck, residual_table
 from .table_fit import require_fittable
 
@@ -67,6 +70,8 @@ class VoxelFit:
         The mean of the input images (the background of the report's slices).
     participant_residuals : DataFrame or None
         Each observation's mean absolute residual across the mask (:mod:`.participant_check`).
+    runtime : dict
+        Cores available (and what limited them), threads and worker processes the permutations used.
     """
 
     model: Model
@@ -85,6 +90,7 @@ class VoxelFit:
     clock: RunClock = field(default_factory=RunClock.start)  # when the fit started
     mean_input: np.ndarray | None = None
     participant_residuals: pd.DataFrame | None = None
+    runtime: dict[str, Any] = field(default_factory=dict)
 
     @property
     def elements(self) -> str:
@@ -158,11 +164,17 @@ def fit_images(
     chunk_voxels: int | None = None,
     progress: bool = True,
     inference: InferenceOptions | None = None,
+    log: StageLog | None = None,
+    checkpoint: Any = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
     Every hypothesis also gets Benjamini-Hochberg and Bonferroni adjusted p maps over the mask; with
     ``inference`` (``permutations > 0``) permutation inference runs on the same data while they are loaded.
+
+    TFCE and cluster nulls may run in worker processes (``inference.jobs``, within the cores and the memory
+    budget).  They are started without the caller's main module, so a script calling this needs no
+    ``if __name__ == "__main__":`` guard and may be read from standard input.
 
     Parameters
     ----------
@@ -180,6 +192,10 @@ def fit_images(
         Show a progress bar when stderr is a terminal.
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
+    log : StageLog, optional
+        Where to write a line per stage and progress lines for logs (default: nothing).
+    checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
+        Keep the counts and maxima of finished permutation batches there, and resume from them.
     """
     from ..images import chunk_size_for
 
@@ -194,21 +210,31 @@ def fit_images(
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
     prepared = prepare(model.design.matrix, model.tests())
-    data = _load(source, mask if mask is not None else spec.mask, budget, progress)
+    log = log if log is not None else StageLog(quiet=True)
+    plan = parallel_plan(inference, budget)
+    log.info(plan.cores.describe())
+    with log.stage("reading images"):
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
             n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        with log.stage("fitting"):
+            maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
-        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
-        warnings += inference_notes(data.grid, inference)
+        with log.stage("permutations") if inference.active else nullcontext():
+            permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
+                                         budget, chunk_voxels, progress, log, checkpoint)
+        warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
+        if data.spilled:
+            warnings.append(spill_warning(model.design.n_observations * n_vox * 4, budget, -(-n_vox // chunk_voxels),
+                                          inference, len(model.hypotheses)))
         for name, res in permuted.items():
             maps[name].update(res.maps)
         report = {
@@ -224,19 +250,27 @@ def fit_images(
                         inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
                                                  [(r.path, r.volume) for r in source.refs], model.sample),
                         clock=clock, mean_input=extras[0],
-                        participant_residuals=residual_table(model.design.participant_ids, extras[1]))
+                        participant_residuals=residual_table(model.design.participant_ids, extras[1]),
+                        runtime=plan.as_dict())
     finally:
         data.close()
 
 
-def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool) -> Any:
-    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar."""
+def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,
+          log: StageLog | None = None) -> Any:
+    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar (and
+    progress lines for logs)."""
     from ..images import load_masked
 
     bar = progress_bar(len(source), "reading images", unit="image", enabled=progress)
+
+    def report(done: int, total: int) -> None:
+        bar.update_to(done)
+        if log is not None:
+            log.progress("reading images", done, total, "images")
+
     try:
-        return load_masked(source, mask, budget.data_bytes,
-                           progress=(lambda done, total: bar.update_to(done)) if bar.shown else None)
+        return load_masked(source, mask, budget.data_bytes, progress=report if bar.shown or log else None)
     finally:
         bar.close()
 
@@ -294,22 +328,25 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool) -> dict[str, HypothesisInference]:
+                      chunk_voxels: int, progress: bool, log: StageLog,
+                      checkpoint: Any = None) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
     if not options.active:
         return {}
     bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
                        enabled=progress)
     done_before: dict[str, int] = {}
+    total = options.permutations * len(model.hypotheses)
 
-    def report(name: str, done: int, total: int) -> None:
+    def report(name: str, done: int, _total: int) -> None:
         bar.update(done - done_before.get(name, 0))
         done_before[name] = done
+        log.progress("permutations", sum(done_before.values()), total, "rearrangements")
 
     try:
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
-                                     progress=report)
+                                     progress=report, checkpoint=checkpoint)
     finally:
         bar.close()
 

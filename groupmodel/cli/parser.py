@@ -135,6 +135,18 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    help="leave out participants whose image is missing (listed) instead of stopping")
     f.add_argument("--force", action="store_true", help="replace an existing non-empty --out folder")
     f.add_argument("--no-pictures", action="store_true", help="skip the PNG pictures of the design and contrasts")
+    f.add_argument("--dry-run", action="store_true",
+                   help="check spec, table, images and mask and say what the run would do (observations, voxels, "
+                   "hypotheses, permutations, memory, estimated time); write nothing; exit 0/1/2 as a real run")
+    f.add_argument("--checkpoint", type=Path, metavar="DIR",
+                   help="keep the counts and maxima of finished permutation batches in DIR (removed when the run "
+                   "ends well), so that a killed run can be continued with --resume")
+    f.add_argument("--resume", action="store_true",
+                   help="continue the run whose --checkpoint DIR is given (same command; the maps are identical to "
+                   "those of a run that was never stopped)")
+    f.add_argument("--checkpoint-every", type=finite_number, default=60.0, metavar="SECONDS",
+                   help="seconds between two saves of the checkpoint (default 60)")
+    f.add_argument("--quiet", action="store_true", help="no stage or progress lines on stderr (warnings still shown)")
     _add_inference_options(f)
     f.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
 

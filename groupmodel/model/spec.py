@@ -20,6 +20,7 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from ..runtime.paths import text_join
 from .jsonfile import check_values, read_json
 from .options import InferenceOptions
 
@@ -453,7 +454,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
     sidecar = raw.get("participants_sidecar")
-    participants = base / raw["participants"]
+    participants = text_join(base, raw["participants"])
     if sidecar is not None:
         sidecar_path: Path | None = base / sidecar
     else:
@@ -471,7 +472,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         terms=terms,
         hypotheses={n: HypothesisSpec.read(n, body) for n, body in (raw.get("hypotheses") or {}).items()},
         images=raw.get("images"),
-        mask=(base / raw["mask"]) if "mask" in raw else None,
+        mask=text_join(base, raw["mask"]) if "mask" in raw else None,
         outcome=raw.get("outcome"),
         inference=dict(raw.get("inference") or {}),
         raw=raw,

@@ -218,6 +218,7 @@ def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[
         "warnings": fit.warnings, "inference": _inference_record(fit),
         "hypotheses": summary_records(frame), "columns": summary_columns(fit),
         "provenance": run,
+        "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
     })
     return ["summary.tsv", "summary.json"]
 

@@ -235,9 +235,9 @@ def test_the_next_run_removes_what_a_killed_run_left(tmp_path: Path) -> None:
     assert not left.exists()
     removed = [line for line in stdout.getvalue().splitlines() if line.startswith("removed ")]
     assert len(removed) == 1 and left.name in removed[0] and f"process {proc.pid}" in removed[0]
-    assert sorted(p.name for p in out.iterdir()) == ["contrasts.json", "contrasts.tsv", "dataset_description.json",
-                                                     "design.json", "design.tsv", "outputs.json",
-                                                     "participants_included.tsv", "report.html"]
+    assert sorted(p.name for p in out.iterdir()) == [".groupmodel-output.json", "contrasts.json", "contrasts.tsv",
+                                                     "dataset_description.json", "design.json", "design.tsv",
+                                                     "outputs.json", "participants_included.tsv", "report.html"]
 
 
 def test_a_live_run_and_unknown_folders_are_left_alone(tmp_path: Path) -> None:
@@ -268,8 +268,8 @@ def test_a_live_run_and_unknown_folders_are_left_alone(tmp_path: Path) -> None:
 def test_a_finished_folder_holds_no_owner_file(tmp_path: Path) -> None:
     with OutputFolder(tmp_path / "out") as folder:
         folder.write_text("a.txt", "x")
-    assert [p.name for p in (tmp_path / "out").iterdir()] == ["a.txt"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".groupmodel-output.json", "a.txt"]
     with OutputFolder(tmp_path / "out", force=True) as folder:
         folder.write_text("b.txt", "y")
-    assert [p.name for p in (tmp_path / "out").iterdir()] == ["b.txt"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".groupmodel-output.json", "b.txt"]
     assert [p.name for p in tmp_path.iterdir()] == ["out"]

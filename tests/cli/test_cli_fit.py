@@ -63,7 +63,7 @@ def expected_files() -> set[str]:
              "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
              "mask.nii.gz", "mask.json", "dataset_description.json", "outputs.json",
              "participants_included.tsv", "mean_input.nii.gz", "mean_input.json",
-             "participants_residuals.tsv", "report.html"}
+             "participants_residuals.tsv", "report.html", ".groupmodel-output.json"}
     for name, h in HYPOTHESES.items():
         for stat in (F_MAPS if "main" in h else T_MAPS):
             names |= {f"hypotheses/{name}/{stat}.nii.gz", f"hypotheses/{name}/{stat}.json"}
@@ -119,6 +119,10 @@ def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
     assert len(lines) == 1 and lines[0].startswith("groupmodel: error:") and "--force" in lines[0]
     assert "Traceback" not in proc.stderr
     assert [p.name for p in out.iterdir()] == ["old.txt"]
+    proc = run_cli("fit", str(spec), "--out", str(out), "--force")
+    assert proc.returncode == 2 and "not a groupmodel output" in proc.stderr  # not groupmodel's: kept
+    (out / "old.txt").unlink()
+    (out / "dataset_description.json").write_text('{"GeneratedBy": [{"Name": "groupmodel"}]}')
     proc = run_cli("fit", str(spec), "--out", str(out), "--force")
     assert proc.returncode == 0, proc.stderr
     assert files_in(out) == expected_files()

@@ -60,7 +60,7 @@ def test_image_fit_with_permutations(study, tmp_path: Path) -> None:
     code, out, err = run("fit", str(spec), "--out", str(tmp_path / "maps"), "--permutations", "20", "--seed", "2",
                          "--tfce")
     assert code == 0, err
-    assert "warning: the design has rank 6 with 7 columns" in out
+    assert "warning: the design has rank 6 with 7 columns" in err
     summary = json.loads((tmp_path / "maps" / "summary.json").read_text())
     text = json.dumps(summary)
     assert str(len(frame) - 6) in text

@@ -129,7 +129,7 @@ def test_surface_without_mesh_writes_no_cluster_table_and_says_why(tmp_path, cap
     spec = make_surface_study(tmp_path / "study", mesh=None)
     out = tmp_path / "res"
     assert main(["fit", str(spec), "--out", str(out), "--permutations", "50"]) == 0
-    printed = capsys.readouterr().out
+    printed = capsys.readouterr().err  # warnings go to stderr
     assert not list(out.glob("*clusters*"))  # before: a 1-byte empty table
     summary = json.loads((out / "summary.json").read_text())
     assert any("no cluster tables" in w and "inference.mesh" in w for w in summary["warnings"])

@@ -30,7 +30,7 @@ EXAMPLE = ROOT / "example_study"
 #: run record, the digest of the image list (it holds modification times, set anew by every checkout) and the
 #: command line in dataset_description.json (it holds --out).
 VOLATILE_KEYS = {"software_version", "software_versions", "started", "wall_time_seconds", "list_sha256",
-                 "Description"}
+                 "Description", "runtime"}  # runtime: cores of the machine
 
 
 def _run(name: str, args: list[str], out: Path) -> None:

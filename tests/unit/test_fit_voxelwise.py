@@ -388,10 +388,13 @@ def test_write_refuses_existing_folder_without_force(tmp_path: Path, base_fit: V
     with pytest.raises(OutputError):
         write_voxel_fit(base_fit, out)
     assert (out / "marker.txt").is_file()  # untouched
+    with pytest.raises(OutputError, match="did not write"):  # --force replaces only what groupmodel wrote
+        write_voxel_fit(base_fit, out, force=True)
+    (out / "marker.txt").unlink()
     write_voxel_fit(base_fit, out, force=True)
-    assert not (out / "marker.txt").exists()
     sidecars = [n.replace(".nii.gz", ".json") for n in names if n.endswith(".nii.gz")]
-    assert sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file()) == sorted(names + sidecars)
+    files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
+    assert files == sorted([*names, *sidecars, ".groupmodel-output.json"])
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind
 
 

@@ -27,8 +27,8 @@ import scipy.stats
 import statsmodels.formula.api as smf
 from statsmodels.stats.anova import anova_lm
 
-from groupmodel.engine import effect_sizes as es
 from groupmodel.analysis.table_fit import RESULT_COLUMNS
+from groupmodel.engine import effect_sizes as es
 from groupmodel.fit import fit_table, write_table_fit
 
 

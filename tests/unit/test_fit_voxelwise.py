@@ -24,8 +24,8 @@ import pytest
 
 import groupmodel.images as images_module
 import groupmodel.images.reading as images_reading
-from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.analysis.effect_maps import effect_size_names
+from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.fit import F_MAPS, T_MAPS, VoxelFit, fit_images, write_voxel_fit
 
 AFFINE = np.array([[3.0, 0.0, 0.0, -9.0], [0.0, 3.0, 0.0, -6.0], [0.0, 0.0, 3.0, -4.5], [0.0, 0.0, 0.0, 1.0]])

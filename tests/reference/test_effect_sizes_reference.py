@@ -243,3 +243,35 @@ def test_interval_contains_the_estimate_and_widens_with_level() -> None:
     wide = es.partial_eta_squared_interval(f, 2, 40, 0.99)
     assert np.all(wide.lower <= narrow.lower) and np.all(narrow.upper <= wide.upper)
     assert np.all(narrow.lower[2:] <= eta[2:]) and np.all(eta <= narrow.upper)
+
+
+def test_per_voxel_df_equal_one_call_per_df() -> None:
+    # Reference: the scalar-df direct root finding (brentq) at each voxel's df, e.g. approximate (Welch) df.
+    f = np.array([0.5, 4.0, 12.0, np.nan, 40.0])
+    df2 = np.array([9.5, 20.0, 33.3, 12.0, 7.25])
+    got = es.partial_eta_squared_interval(f, 2, df2, 0.95)
+    for i in range(len(f)):
+        one = es.partial_eta_squared_interval(f[i:i + 1], 2, float(df2[i]), 0.95, grid=False)
+        np.testing.assert_allclose([got.lower[i], got.upper[i]], [one.lower[0], one.upper[0]], rtol=1e-12)
+
+
+def test_extreme_f_values_give_finite_bounds_below_one() -> None:
+    # Reference: lambda / (lambda + N) lies in [0, 1] for every finite lambda >= 0 (definition; 1 by rounding).
+    f = np.array([1e-300, 1e-8, 1e7, 1e12, 1e30])
+    for grid in (True, False):
+        got = es.partial_eta_squared_interval(f, 1, 40, 0.95, grid=grid)
+        assert np.all(np.isfinite(got.lower)) and np.all(np.isfinite(got.upper))
+        assert np.all((got.lower >= 0) & (got.lower <= got.upper) & (got.upper <= 1))
+
+
+@pytest.mark.parametrize(("d1", "d2"), [(1, 3), (1, 40), (3, 10), (20, 200)])
+def test_large_noncentrality_limit_joins_root_finding(d1: int, d2: int) -> None:
+    # Reference: scipy.optimize.brentq on scipy.special.ncfdtr at lambda ~ 1e7, where both still hold; the limit
+    # lambda = df1 F chi2.isf(prob, df2) / df2 takes over above df1 F = 1e8 (its error falls as 1 / F: 10x
+    # smaller there than here).
+    f = 1e7 / d1
+    for prob in (0.975, 0.025):
+        direct = es.noncentrality_bound(np.array([f]), d1, d2, prob, grid=False)[0]
+        limit = d1 * f * scipy.stats.chi2.isf(prob, d2) / d2
+        n = d1 + d2 + 1
+        assert abs(direct / (direct + n) - limit / (limit + n)) < 5e-10

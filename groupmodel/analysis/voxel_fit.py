@@ -44,7 +44,8 @@ class VoxelFit:
     grid : groupmodel.images.Grid
     mask : ndarray of bool, shape grid.shape
     maps : dict
-        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``) ->
+        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``, the
+        corrected p, and the effect sizes and intervals of :mod:`groupmodel.analysis.effect_maps`) ->
         float64 array of shape (n_in_mask,).
     residual_variance : ndarray, shape (n_in_mask,)
     df_resid : int

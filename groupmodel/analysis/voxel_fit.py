@@ -29,6 +29,7 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .effect_maps import effect_size_names, effect_sizes
 from .parallel import parallel_plan, spill_warning
 from .participant_check import ParticipantCheck, residual_table
 from .table_fit import require_fittable
@@ -48,7 +49,8 @@ class VoxelFit:
     grid : groupmodel.images.Grid
     mask : ndarray of bool, shape grid.shape
     maps : dict
-        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``) ->
+        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``, the
+        corrected p, and the effect sizes and intervals of :mod:`groupmodel.analysis.effect_maps`) ->
         float64 array of shape (n_in_mask,).
     residual_variance : ndarray, shape (n_in_mask,)
     df_resid : int
@@ -218,11 +220,12 @@ def fit_images(
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
-            n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
+            n_maps = sum(len(_map_names(h)) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
         with log.stage("fitting"):
-            maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+            maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
+                                                       ci_level=inference.ci_level)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
@@ -275,14 +278,19 @@ def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: 
         bar.close()
 
 
-def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool
+def _map_names(h: Any) -> tuple[str, ...]:
+    """The parametric maps of one hypothesis: T_MAPS or F_MAPS, then its effect sizes and intervals."""
+    return (T_MAPS if h.test == "t" else F_MAPS) + effect_size_names(h)
+
+
+def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool, *,
+                     ci_level: float
                      ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
-    """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
-    chunk (the corrected p maps are allocated here and filled by the corrections); also the mean input
-    image and the per-participant residual sums."""
+    """Effect, SE, t or F, z, p, -log10 p, effect-size and interval maps of every hypothesis, and the residual
+    variance, chunk by chunk (intervals at ``ci_level``; the corrected p maps are allocated here and filled
+    by the corrections); also the mean input image and the per-participant residual sums."""
     n_vox = data.n_in_mask
-    maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
-            for h in model.hypotheses.values()}
+    maps = {h.name: {k: np.empty(n_vox) for k in _map_names(h)} for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
     mean_input = np.empty(n_vox)
     check = ParticipantCheck.empty(model.design.n_observations)
@@ -304,6 +312,8 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
                 m["z"][cols] = r.z
                 m["p"][cols] = r.p
                 m["mlog10p"][cols] = r.mlog10p
+                for k, values in effect_sizes(h, r, res.residual_variance, ci_level).items():
+                    m[k][cols] = values
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()

@@ -117,7 +117,7 @@ def _fit_table(args: argparse.Namespace) -> int:
     from ..analysis.table_fit import fit_table
     from ..outputs.fit_files import write_table_fit
 
-    fit = fit_table(args.spec, args.outcome)
+    fit = fit_table(args.spec, args.outcome, ci_level=args.ci_level)
     print_model_report(fit.model)
     print()
     print(fit.format())
@@ -249,7 +249,7 @@ def inference_overrides(args: argparse.Namespace) -> dict[str, Any]:
         given["whole_blocks"] = True
     if args.tfce:
         given["tfce"] = True
-    for name in ("cluster_threshold", "jobs", "threads"):
+    for name in ("cluster_threshold", "jobs", "threads", "ci_level"):
         if getattr(args, name) is not None:
             given[name] = getattr(args, name)
     return given

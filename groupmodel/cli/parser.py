@@ -167,6 +167,9 @@ def _add_inference_options(f: argparse.ArgumentParser) -> None:
     f.add_argument("--tfce", action="store_true", help="threshold-free cluster enhancement (E=0.5, H=2)")
     f.add_argument("--cluster-threshold", type=finite_number, metavar="Z",
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
+    f.add_argument("--ci-level", type=finite_number, default=None, metavar="LEVEL",
+                   help="confidence level of the intervals of effects and partial eta squared, between 0 and 1 "
+                   "(default 0.95)")
     f.add_argument("--jobs", type=whole_number(1), default=None, metavar="N",
                    help="worker processes for TFCE and cluster permutations (default: all cores this process "
                    "may use; results do not depend on it)")

@@ -10,6 +10,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from ..text import number_text
 from .dataset import dataset_description, finish_folder
 from .design_files import PictureJob, write_model, written_hypothesis
 from .folder import OutputFolder
@@ -35,6 +36,14 @@ RESULTS_COLUMNS = {
     "df2": "residual degrees of freedom",
     "p": "p value for the hypothesis's tail",
     "z": "z of equal p (signed like t; upper tail for F)",
+    "ci_lower": "lower bound of the two-sided confidence interval of the estimate (t tests; level in ci_level)",
+    "ci_upper": "upper bound of the two-sided confidence interval of the estimate (t tests)",
+    "cohens_d": "estimate / residual SD, for a t test comparing two cell or marginal means (weights over cell "
+                "means summing to 0, positive part to 1); n/a elsewhere",
+    "partial_eta_squared": "F df1 / (F df1 + df2) (F = t squared for t tests)",
+    "partial_eta_squared_ci_lower": "lower bound of its two-sided confidence interval from the noncentral F "
+                                    "(Steiger 2004; lambda / (lambda + df1 + df2 + 1))",
+    "partial_eta_squared_ci_upper": "upper bound of the same interval",
 }
 
 
@@ -64,6 +73,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "n_observations": fit.model.design.n_observations,
         "df_resid": fit.result.df_resid,
         "residual_variance": float(fit.result.residual_variance[0]),
+        "ci_level": fit.ci_level,
         "columns": RESULTS_COLUMNS,
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
@@ -84,6 +94,17 @@ CORRECTION_NOTES = {
     "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
+#: What the effect-size and interval maps hold (``{level}``: the confidence level in percent).
+EFFECT_SIZE_NOTES = {
+    "ci_lower": "lower bound of the two-sided {level}% confidence interval of the effect: effect - t(df2) x se",
+    "ci_upper": "upper bound of the two-sided {level}% confidence interval of the effect: effect + t(df2) x se",
+    "cohens_d": "Cohen's d: the effect (a difference of two cell or marginal means) / residual SD",
+    "partial_eta_squared": "partial eta squared, F df1 / (F df1 + df2) (F = t squared for a t test)",
+    "partial_eta_squared_ci_lower": "lower bound of the two-sided {level}% confidence interval of partial eta "
+                                    "squared, from the noncentral F (Steiger 2004)",
+    "partial_eta_squared_ci_upper": "upper bound of the two-sided {level}% confidence interval of partial eta "
+                                    "squared, from the noncentral F (Steiger 2004)",
 }
 #: What the cluster tables hold.
 CLUSTER_KINDS = {
@@ -165,6 +186,8 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis, run: dict[s
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
             extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
+        if stat in EFFECT_SIZE_NOTES:
+            extra.update(effect_size_note(fit, stat))
         o.write_json(sidecar_path(h.name, stat), map_sidecar(fit, h.name, stat, run=run, **extra))
         written.append(fname)
     for kind, table in fit.tables.get(h.name, {}).items():
@@ -177,7 +200,17 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis, run: dict[s
     return written
 
 
+def effect_size_note(fit: VoxelFit, stat: str) -> dict[str, Any]:
+    """The sidecar entries of an effect-size or interval map: what it holds and, for intervals, the level."""
+    level = float((fit.inference or {}).get("ci_level", 0.95))
+    out: dict[str, Any] = {"effect_size": EFFECT_SIZE_NOTES[stat].format(level=number_text(100 * level))}
+    if "ci_" in stat:
+        out["ci_level"] = level
+    return out
+
+
 def _write_residuals_and_mask(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
+
     from ..images import write_map, write_mask
 
     fname = map_path(None, "residual_variance", fit.grid.kind)

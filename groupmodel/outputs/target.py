@@ -43,6 +43,8 @@ def _generated_by_groupmodel(folder: Path) -> bool:
 
 def _indexed_files(folder: Path) -> set[str] | None:
     """The files the index ``outputs.json`` of a groupmodel folder lists (with the index itself)."""
+    if not (folder / "outputs.json").exists():
+        return {"dataset_description.json"}
     try:
         index = json.loads((folder / "outputs.json").read_text(encoding="utf-8"))
         return {str(e["path"]) for e in index["files"]} | {"outputs.json"}

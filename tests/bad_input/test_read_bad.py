@@ -187,6 +187,24 @@ def test_inference_options_for_api_callers(settings: dict, fragment: str) -> Non
     assert fragment in str(exc.value)
 
 
+@pytest.mark.parametrize("value", ["95", "0", "1", "-0.5"])
+@pytest.mark.parametrize("table", [False, True])
+def test_ci_level_outside_zero_and_one(tmp_path: Path, value: str, table: bool) -> None:
+    spec = study(tmp_path, images=not table)
+    extra = ("--ci-level", value, *(("--outcome", "age") if table else ()))
+    fails(spec, 2, "--ci-level (inference.ci_level) must be a number between 0 and 1", "--ci-level 0.95",
+          command=("fit",), extra=extra)
+
+
+def test_ci_level_outside_zero_and_one_in_the_spec(tmp_path: Path) -> None:
+    fails(study(tmp_path, {**SPEC, "inference": {"ci_level": 95}}), 2, "$.inference.ci_level")
+
+
+def test_ci_level_for_api_callers() -> None:
+    with pytest.raises(InputError, match="between 0 and 1; got True"):
+        InferenceOptions(ci_level=True).validated()  # type: ignore[arg-type]
+
+
 def test_negative_seed_in_the_spec(tmp_path: Path) -> None:
     fails(study(tmp_path, {**SPEC, "inference": {"seed": -1}}), 2, "$.inference.seed", "minimum of 0")
 

@@ -1,7 +1,8 @@
 """``groupmodel fit`` on images from the command line: files written, --force, exit codes, progress bar.
 
 References: the issue's list of outputs (per t hypothesis effect, se, t, z, p, -log10 p maps; per F
-hypothesis F, z, p, -log10 p; the residual variance, the mask, the design files of ``build``, a summary),
+hypothesis F, z, p, -log10 p; the residual variance, the mask, the design files of ``build``, a summary;
+issue 16: intervals of t effects, Cohen's d of two-mean comparisons, partial eta squared with its interval),
 each map with a JSON sidecar; exit codes 0 / 1 / 2 as documented in ``groupmodel --help``.
 """
 
@@ -22,6 +23,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
+import scipy.stats
 
 from groupmodel.cli import main
 
@@ -32,8 +34,9 @@ HYPOTHESES = {
     "high_vs_low": {"compare": {"dose": ["high", "low"]}, "tail": "greater"},
     "score": {"slope": "score"},
 }
-T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
-F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+ETA_MAPS = ("partial_eta_squared", "partial_eta_squared_ci_lower", "partial_eta_squared_ci_upper")
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni", "ci_lower", "ci_upper", *ETA_MAPS)
+F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni", *ETA_MAPS)
 
 
 def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
@@ -65,7 +68,7 @@ def expected_files() -> set[str]:
              "participants_included.tsv", "mean_input.nii.gz", "mean_input.json",
              "participants_residuals.tsv", "report.html", ".groupmodel-output.json"}
     for name, h in HYPOTHESES.items():
-        for stat in (F_MAPS if "main" in h else T_MAPS):
+        for stat in (F_MAPS if "main" in h else T_MAPS) + (("cohens_d",) if "compare" in h else ()):
             names |= {f"hypotheses/{name}/{stat}.nii.gz", f"hypotheses/{name}/{stat}.json"}
     return names
 
@@ -106,6 +109,27 @@ def test_fit_writes_every_map_and_nothing_on_stderr(spec: Path, tmp_path: Path) 
     assert summary["n_observations"] == 18 and summary["df_resid"] == 18 - 4
     side = json.loads((out / "hypotheses/dose/F.json").read_text())
     assert side["hypothesis"] == "dose" and side["statistic"] == "F" and side["df1"] == 2
+
+
+def test_ci_level_option_sets_the_intervals_and_their_sidecars(spec: Path, tmp_path: Path, capsys) -> None:
+    # Reference: scipy.stats.t.ppf for the half-width of the interval at the level asked for (effect -/+ t se,
+    # read back from the float32 maps, ~1e-6); the issue for a note per statistic in each sidecar.
+    out = tmp_path / "ci90"
+    assert main(["fit", str(spec), "--out", str(out), "--ci-level", "0.9", "--no-pictures"]) == 0
+    capsys.readouterr()
+    maps = {s: np.asarray(nib.load(out / "hypotheses" / "high_vs_low" / f"{s}.nii.gz").dataobj, dtype=float)
+            for s in ("effect", "se", "ci_lower", "ci_upper")}
+    half = scipy.stats.t.ppf(0.95, 18 - 4) * maps["se"]
+    np.testing.assert_allclose(maps["ci_lower"], maps["effect"] - half, rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(maps["ci_upper"], maps["effect"] + half, rtol=1e-5, atol=1e-5)
+    side = json.loads((out / "hypotheses" / "high_vs_low" / "ci_lower.json").read_text())
+    assert side["ci_level"] == 0.9 and "90% confidence interval" in side["effect_size"]
+    side = json.loads((out / "hypotheses" / "dose" / "partial_eta_squared_ci_upper.json").read_text())
+    assert side["ci_level"] == 0.9 and "noncentral F" in side["effect_size"]
+    d_side = json.loads((out / "hypotheses" / "high_vs_low" / "cohens_d.json").read_text())
+    assert "Cohen's d" in d_side["effect_size"]
+    assert not (out / "hypotheses" / "score" / "cohens_d.nii.gz").exists()  # a slope: not two means compared
+    assert json.loads((out / "summary.json").read_text())["inference"]["ci_level"] == 0.9
 
 
 def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:

@@ -24,6 +24,7 @@ import pytest
 
 import groupmodel.images as images_module
 import groupmodel.images.reading as images_reading
+from groupmodel.analysis.effect_maps import effect_size_names
 from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.fit import F_MAPS, T_MAPS, VoxelFit, fit_images, write_voxel_fit
 
@@ -133,7 +134,8 @@ def test_fit_contents(base_fit: VoxelFit) -> None:
     assert fit.residual_variance.shape == (n_vox,)
     assert list(fit.maps) == list(HYPOTHESES)
     for name, maps in fit.maps.items():
-        want = F_MAPS if fit.model.hypotheses[name].test == "F" else T_MAPS
+        h = fit.model.hypotheses[name]
+        want = (F_MAPS if h.test == "F" else T_MAPS) + effect_size_names(h)
         assert tuple(maps) == want
         for values in maps.values():
             assert values.shape == (n_vox,) and values.dtype == np.float64

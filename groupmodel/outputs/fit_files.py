@@ -55,6 +55,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 
 

@@ -27,6 +27,9 @@ from .corrections import (
     permutation_inference,
 )
 from .table_fit import require_fittable
+from .unequal_variances import UnequalVarianceTally
+from .welch_fit import WelchSetup, welch_maps, welch_record, welch_setup
+from .welch_inference import check_welch_inference, welch_permutation_inference
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -71,6 +74,8 @@ class VoxelFit:
     inference: dict[str, Any] | None = None
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+    #: With ``variance_groups``: the groups and the statistics used (v and G, df2 per voxel); else None.
+    variance_groups: dict[str, Any] | None = None
 
     @property
     def elements(self) -> str:
@@ -83,7 +88,7 @@ class VoxelFit:
         rows = []
         for h in self.model.hypotheses.values():
             m = self.maps[h.name]
-            stat = m["t"] if h.test == "t" else m["F"]
+            stat = statistic_map(m)
             # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
             tested = ~np.isnan(stat)
             rows.append({
@@ -91,7 +96,8 @@ class VoxelFit:
                 "test": h.test,
                 "tail": h.tail,
                 "df1": h.n_rows,
-                "df2": self.df_resid,
+                # with variance groups df2 is approximate and per voxel: its median over the tested voxels
+                "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_resid,
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
@@ -179,6 +185,9 @@ def fit_images(
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
     prepared = prepare(model.design.matrix, model.tests())
+    welch = welch_setup(model, prepared)
+    if welch is not None:
+        check_welch_inference(inference)
     data = _load(source, mask if mask is not None else spec.mask, budget, progress)
     try:
         n_vox = data.n_in_mask
@@ -186,13 +195,17 @@ def fit_images(
             n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
+        if welch is None:
+            maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress, tally.add)
+        else:
+            maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
-                    + _flat_warnings(maps, n_vox, elements_of(data.grid)))
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid)) + tally.voxel_findings(elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
-        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
+        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress, welch)
         warnings += inference_notes(data.grid, inference)
         for name, res in permuted.items():
             maps[name].update(res.maps)
@@ -205,7 +218,8 @@ def fit_images(
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
-                        tables={n: r.tables for n, r in permuted.items()})
+                        tables={n: r.tables for n, r in permuted.items()},
+                        variance_groups=welch_record(welch) if welch is not None else None)
     finally:
         data.close()
 
@@ -223,7 +237,7 @@ def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: 
 
 
 def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int,
-                     progress: bool) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
+                     progress: bool, on_chunk: Any = None) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
     """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
     chunk (the corrected p maps are allocated here and filled by the corrections)."""
     n_vox = data.n_in_mask
@@ -246,6 +260,8 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
                 m["z"][cols] = r.z
                 m["p"][cols] = r.p
                 m["mlog10p"][cols] = r.mlog10p
+            if on_chunk is not None:
+                on_chunk(y)
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
@@ -262,15 +278,21 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
     if not maps:
         return []
     first = next(iter(maps.values()))
-    n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+    n_flat = int(np.count_nonzero(np.isnan(statistic_map(first))))
     if not n_flat:
         return []
     return [f"{n_flat} of {n_vox} {elements} have (numerically) zero residual variance, e.g. the same "
             "value in every image: their t, F, z and p are NaN (not tested)"]
 
 
+def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
+    """A hypothesis's statistic map: t or F, or with variance groups v or G."""
+    return next(maps[k] for k in ("t", "F", "v", "G") if k in maps)
+
+
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool) -> dict[str, HypothesisInference]:
+                      chunk_voxels: int, progress: bool, welch: WelchSetup | None = None
+                      ) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
     if not options.active:
         return {}
@@ -283,6 +305,8 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
         done_before[name] = done
 
     try:
+        if welch is not None:
+            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
                                      progress=report)

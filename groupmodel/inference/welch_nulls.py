@@ -26,7 +26,7 @@ from ..engine.ols import ZERO_VARIANCE_FACTOR
 from ..engine.welch import WelchPrepared, welch_statistics
 from .kernel import at_least
 
-__all__ = ["WelchNullPlan", "WelchNulls", "welch_batch", "welch_residualise"]
+__all__ = ["WelchNullPlan", "WelchNulls", "oriented_welch", "welch_batch", "welch_residualise"]
 
 _EPS = float(np.finfo(np.float64).eps)
 
@@ -63,7 +63,8 @@ def welch_residualise(plan: WelchNullPlan, chunk: np.ndarray) -> tuple[np.ndarra
     return w, (ZERO_VARIANCE_FACTOR * w.shape[0] * _EPS * scale) ** 2
 
 
-def _oriented(plan: WelchNullPlan, stat: np.ndarray) -> np.ndarray:
+def oriented_welch(plan: WelchNullPlan, stat: np.ndarray) -> np.ndarray:
+    """|v| (two-sided), v ("greater"), -v ("less") or G: larger is more extreme."""
     if plan.kind == "F" or plan.tail == "greater":
         return stat
     return np.abs(stat) if plan.tail == "two-sided" else -stat
@@ -120,7 +121,7 @@ def welch_batch(plan: WelchNullPlan, perm: np.ndarray | None, flips: np.ndarray 
             y = y * flips[b][:, None]
         with np.errstate(invalid="ignore"):
             stat = _statistics(plan, y, floor)
-        o = _oriented(plan, stat)
+        o = oriented_welch(plan, stat)
         if threshold is None:
             stat0, threshold = stat, at_least(o)
         with np.errstate(invalid="ignore"):

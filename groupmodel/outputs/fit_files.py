@@ -126,6 +126,9 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
         })
     else:
         out.update({"df2": fit.df_resid})
+    record = getattr(fit, "variance_groups", None)
+    if record is not None:  # Welch's v and G: df2 is approximate and per voxel
+        out.update({"df2": record["df2"], "variance_groups": record})
     out.update(extra)
     out.update(provenance())
     return out

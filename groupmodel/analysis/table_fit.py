@@ -12,8 +12,8 @@ import pandas as pd
 from ..engine.ols import ChunkResult, fit_chunk, prepare
 from ..errors import ModelError
 from ..model.assembly import Model, build
-from ..model.spec import ModelSpec, load_spec
 from ..model.checks import Finding
+from ..model.spec import ModelSpec, load_spec
 from ..text import DISCLAIMER
 from .unequal_variances import UnequalVarianceTally
 from .welch_fit import table_welch, welch_setup

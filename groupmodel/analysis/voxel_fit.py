@@ -202,7 +202,8 @@ def fit_images(
             maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
-                    + _flat_warnings(maps, n_vox, elements_of(data.grid)) + tally.voxel_findings(elements_of(data.grid)))
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid))
+                    + tally.voxel_findings(elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
         permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress, welch)

@@ -97,7 +97,11 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
         plan = WelchNullPlan(setup.prepared, pt.a, np.ascontiguousarray(part.nuisance), h.test, h.test_tail)
         pset = permutation_set(x.shape[0], options.permutations, method, blocks=blocks, seed=options.seed,
                                classes=classes.reshape(-1))
-        res = _run(plan, pset, data, chunk_voxels, h, lambda done, total, _n=h.name: progress and progress(_n, done, total))
+        def report(done: int, total: int, _name: str = h.name) -> None:
+            if progress is not None:
+                progress(_name, done, total)
+
+        res = _run(plan, pset, data, chunk_voxels, h, report)
         inference = _hypothesis_inference(res, h, options, None, ijk, data.grid)
         inference.record.update({
             "statistic": "v" if h.test == "t" else "G",

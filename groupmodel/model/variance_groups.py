@@ -14,6 +14,7 @@ import numpy as np
 
 from ..engine.linalg import rank_tolerance
 from ..engine.welch import GROUP_DF_MIN, group_residual_df
+from ..text import number_text
 from .checks import Finding
 from .design import Design
 from .spec import ModelSpec
@@ -60,6 +61,6 @@ def variance_group_findings(spec: ModelSpec, design: Design) -> list[Finding]:
             out.append(Finding(
                 "error", "variance_group_df",
                 f"{spec.name} $.variance_groups: group {name!r} of {groups.factor!r} has {int(n_g)} observation(s) "
-                f"and {rho_g:.2g} residual df after the design's fit, too few for a variance of its own; "
+                f"and {number_text(round(float(rho_g), 3))} residual df after the design's fit, too few for a variance of its own; "
                 "add observations, merge levels, or remove variance_groups"))
     return out

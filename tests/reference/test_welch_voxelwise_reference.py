@@ -27,7 +27,8 @@ SIZES = {"control": 24, "patient": 8, "relative": 10}
 SDS = {"control": 1.0, "patient": 2.0, "relative": 0.7}
 
 
-def _study(root: Path, hypotheses: dict, terms: tuple[str, ...] = ("group",)) -> tuple[Path, pd.DataFrame, np.ndarray]:
+def _study(root: Path, hypotheses: dict, terms: tuple[str, ...] = ("group",),
+           variance_groups: str | None = "group") -> tuple[Path, pd.DataFrame, np.ndarray]:
     rng = np.random.default_rng(16)
     (root / "maps").mkdir(parents=True)
     groups = np.repeat(list(SIZES), list(SIZES.values()))
@@ -44,8 +45,9 @@ def _study(root: Path, hypotheses: dict, terms: tuple[str, ...] = ("group",)) ->
                  root / "maps" / f"{ids[i]}.nii.gz")
     spec = {"participants": "participants.tsv",
             "factors": {"group": {"levels": list(SIZES)}, "sex": {"levels": ["f", "m"]}},
-            "terms": list(terms), "hypotheses": hypotheses, "variance_groups": "group",
-            "images": "maps/{participant_id}.nii.gz"}
+            "terms": list(terms), "hypotheses": hypotheses, "images": "maps/{participant_id}.nii.gz"}
+    if variance_groups is not None:
+        spec["variance_groups"] = variance_groups
     (root / "model.json").write_text(json.dumps(spec))
     return root / "model.json", table, data
 
@@ -132,3 +134,24 @@ def test_tfce_is_refused_with_variance_groups(tmp_path: Path) -> None:
     spec, _, _ = _study(tmp_path, HYPOTHESES)
     with pytest.raises(InputError, match="inference tfce: not available with variance_groups"):
         fit_images(spec, progress=False, inference=InferenceOptions(permutations=50, tfce=True))
+
+
+def test_pooled_voxel_fit_warns_with_levene(tmp_path: Path) -> None:
+    """Without variance groups the fit counts the voxels whose groups' variances differ by more than a factor 2
+    with Levene's p < 0.05 (scipy.stats.levene on the residuals, recomputed here voxel by voxel)."""
+    spec, table, data = _study(tmp_path, HYPOTHESES, variance_groups=None)
+    fit = fit_images(spec, progress=False, chunk_voxels=10)
+    g = table.group.to_numpy()
+    resid = data.copy()
+    for k in SIZES:
+        resid[g == k] -= data[g == k].mean(axis=0)
+    hits = 0
+    for j in range(data.shape[1]):
+        parts = [resid[g == k, j] for k in SIZES]
+        var = np.array([p.var(ddof=1) for p in parts])
+        hits += bool(var.max() / var.min() > 2 and stats.levene(*parts, center="median").pvalue < 0.05)
+    found = [w for w in fit.warnings if "Levene" in w]
+    assert hits > 0.1 * data.shape[1]
+    assert len(found) == 1 and found[0].startswith(f"in {hits} of {data.shape[1]} voxels"), (found, hits)
+    assert '"variance_groups": "group"' in found[0]
+    assert "t" in fit.maps["patient_vs_control"] and fit.variance_groups is None

@@ -161,8 +161,42 @@ class WelchChunk:
         return self.tests[name]
 
 
+def _cholesky(m: np.ndarray) -> np.ndarray:
+    """Lower Cholesky factors of a stack of small symmetric positive definite matrices laid out (r, r, v).
+
+    Written out over the r x r entries so that each step is one operation over all voxels (np.linalg on
+    (v, r, r) stacks spends most of its time per matrix).  A matrix that is not positive definite gives NaN.
+    """
+    r = m.shape[0]
+    low = np.zeros_like(m)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for j in range(r):
+            d = m[j, j] - np.sum(low[j, :j] ** 2, axis=0)
+            low[j, j] = np.sqrt(np.where(d > 0, d, np.nan))
+            for i in range(j + 1, r):
+                low[i, j] = (m[i, j] - np.sum(low[i, :j] * low[j, :j], axis=0)) / low[j, j]
+    return low
+
+
+def _forward(low: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``L^-1 b`` for stacks laid out (r, r, v) and (r, q, v)."""
+    z = np.empty_like(b)
+    for i in range(low.shape[0]):
+        z[i] = (b[i] - np.einsum("kv,kqv->qv", low[i, :i], z[:i])) / low[i, i]
+    return z
+
+
+def _backward(low: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """``L'^-1 z`` for stacks laid out (r, r, v) and (r, v)."""
+    r = low.shape[0]
+    x = np.empty_like(z)
+    for i in range(r - 1, -1, -1):
+        x[i] = (z[i] - np.sum(low[i + 1:, i] * x[i + 1:], axis=0)) / low[i, i]
+    return x
+
+
 def welch_statistics(wp: WelchPrepared, a: np.ndarray, effect: np.ndarray, group_var: np.ndarray,
-                     kind: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                     kind: str, with_df: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """v (kind ``t``) or G (kind ``F``), its approximate df and ``V`` (t) or ``s Lambda`` (F), per voxel.
 
     Parameters
@@ -173,26 +207,32 @@ def welch_statistics(wp: WelchPrepared, a: np.ndarray, effect: np.ndarray, group
         ``L b``.
     group_var : ndarray, shape (k, v)
         Residual variance of each group; NaN (or 0) marks a voxel without a test.
+    with_df : bool
+        Also compute the df (the permutation loop does not need them: the df returned are then NaN).
     """
     q, v = effect.shape
     with np.errstate(divide="ignore", invalid="ignore"):
         w = 1.0 / np.where(group_var > 0, group_var, np.nan)  # (k, v)
     bad = ~np.all(np.isfinite(w), axis=0) | ~np.all(np.isfinite(effect), axis=0)
-    w[:, bad] = 1.0  # keeps the solves finite; the results are set to NaN below
-    h = np.einsum("kv,kij->vij", w, wp.gram)  # (v, r, r)
-    x = np.linalg.solve(h, np.broadcast_to(a.T, (v, *a.T.shape)))  # (v, r, q): H^-1 A'
-    cov = np.einsum("qr,vrs->vqs", a, x)  # (v, q, q): A H^-1 A'
+    w[:, bad] = 1.0  # keeps the factorisations finite; the results are set to NaN below
+    r = a.shape[1]
+    h = (wp.gram.reshape(wp.k, r * r).T @ w).reshape(r, r, v)  # H = sum_g w_g K_g, laid out (r, r, v)
+    low = _cholesky(h)
+    z = _forward(low, np.broadcast_to(a.T[:, :, None], (r, q, v)))  # (r, q, v): L^-1 A'
+    df = np.full(v, np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         if kind == "t":
-            var = cov[:, 0, 0]
+            var = np.sum(z[:, 0] ** 2, axis=0)  # a'H^-1 a
             stat = effect[0] / np.sqrt(var)
-            xa = x[:, :, 0]
-            d = np.einsum("vi,kij,vj->kv", xa, wp.gram, xa)  # a'H^-1 K_g H^-1 a
-            df = var**2 / np.sum((d * w) ** 2 / wp.resid_df[:, None], axis=0)
+            if with_df:
+                x = _backward(low, z[:, 0])  # H^-1 a, (r, v)
+                d = np.einsum("iv,kij,jv->kv", x, wp.gram, x, optimize=True)  # a'H^-1 K_g H^-1 a
+                df = var**2 / np.sum((d * w) ** 2 / wp.resid_df[:, None], axis=0)
             scale = var
         else:
-            sol = np.linalg.solve(cov, effect.T[:, :, None])[:, :, 0]  # (v, q)
-            wald = np.einsum("vq,qv->v", sol, effect)
+            cov = np.einsum("rpv,rqv->pqv", z, z)  # A H^-1 A', (q, q, v)
+            white = _forward(_cholesky(cov), effect[:, None, :])[:, 0]  # (q, v)
+            wald = np.sum(white**2, axis=0)
             wsum = wp.sizes[:, None] * w
             s_term = np.sum((1.0 - wsum / wsum.sum(axis=0)) ** 2 / wp.resid_df[:, None], axis=0)
             lam = 1.0 + 2.0 * (q - 1) / (q * (q + 2)) * s_term

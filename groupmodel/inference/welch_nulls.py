@@ -29,6 +29,8 @@ from .kernel import at_least
 __all__ = ["WelchNullPlan", "WelchNulls", "oriented_welch", "welch_batch", "welch_residualise"]
 
 _EPS = float(np.finfo(np.float64).eps)
+#: Voxels per tile of the rearrangement loop (an (n, TILE) block stays in a core's cache).
+TILE = 2048
 
 
 @dataclass(frozen=True, eq=False)
@@ -80,7 +82,7 @@ def _statistics(plan: WelchNullPlan, y: np.ndarray, floor: np.ndarray) -> np.nda
     onehot[wp.labels, np.arange(y.shape[0])] = 1.0
     group_var = (onehot @ (resid * resid)) / wp.resid_df[:, None]
     group_var[group_var <= floor] = np.nan
-    stat, _, _ = welch_statistics(wp, plan.a, plan.a @ uy, group_var, plan.kind)
+    stat, _, _ = welch_statistics(wp, plan.a, plan.a @ uy, group_var, plan.kind, with_df=False)
     return stat
 
 
@@ -107,25 +109,32 @@ def welch_batch(plan: WelchNullPlan, perm: np.ndarray | None, flips: np.ndarray 
     observed : ndarray, shape (v,), or None
         The observed oriented statistic; None for the first batch, whose first rearrangement must be the
         identity: it gives the observed statistic (returned as ``stat``).
+
+    The voxels are taken in tiles of :data:`TILE` (every rearrangement of a tile before the next tile), so that
+    the working arrays stay in a core's cache; each voxel's statistics depend only on its own data.
     """
     w, floor = welch_residualise(plan, chunk)
     ref = perm if perm is not None else flips
     B, v = ref.shape[0], w.shape[1]
     counts = np.zeros(v, dtype=np.int64)
     maxima = np.full(B, -np.inf)
-    stat0 = None
-    threshold = None if observed is None else at_least(observed)
-    for b in range(B):
-        y = w if perm is None else w[perm[b]]
-        if flips is not None:
-            y = y * flips[b][:, None]
-        with np.errstate(invalid="ignore"):
-            stat = _statistics(plan, y, floor)
-        o = oriented_welch(plan, stat)
-        if threshold is None:
-            stat0, threshold = stat, at_least(o)
-        with np.errstate(invalid="ignore"):
-            counts += o >= threshold
-        if v and not np.all(np.isnan(o)):
-            maxima[b] = np.nanmax(o)
+    stat0 = np.full(v, np.nan) if observed is None else None
+    threshold = np.full(v, np.nan) if observed is None else at_least(observed)
+    for lo in range(0, v, TILE):
+        hi = min(v, lo + TILE)
+        tile = np.ascontiguousarray(w[:, lo:hi])
+        for b in range(B):
+            y = tile if perm is None else tile[perm[b]]
+            if flips is not None:
+                y = y * flips[b][:, None]
+            with np.errstate(invalid="ignore"):
+                stat = _statistics(plan, y, floor[lo:hi])
+            o = oriented_welch(plan, stat)
+            if stat0 is not None and b == 0:
+                stat0[lo:hi] = stat
+                threshold[lo:hi] = at_least(o)
+            with np.errstate(invalid="ignore"):
+                counts[lo:hi] += o >= threshold[lo:hi]
+            if not np.all(np.isnan(o)):
+                maxima[b] = max(maxima[b], float(np.nanmax(o)))
     return WelchNulls(counts, maxima, stat0)

@@ -123,5 +123,5 @@ def test_simulation_pooled_t_inflates_and_v_keeps_its_level() -> None:
     pooled = np.mean(fit_chunk(p, y)["d"].p < 0.05)
     welch = np.mean(fit_chunk_welch(prepare_welch(p, labels, ("small", "large")), y)["d"].p < 0.05)
     lo, hi = stats.binom.interval(0.99, n_sim, 0.05)
-    assert pooled > hi / n_sim + 0.05, pooled  # about 0.17 here: more than three times the level
+    assert pooled > hi / n_sim + 0.05, pooled  # about 0.18 here: more than three times the level
     assert lo / n_sim <= welch <= hi / n_sim, welch

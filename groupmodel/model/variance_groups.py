@@ -61,6 +61,6 @@ def variance_group_findings(spec: ModelSpec, design: Design) -> list[Finding]:
             out.append(Finding(
                 "error", "variance_group_df",
                 f"{spec.name} $.variance_groups: group {name!r} of {groups.factor!r} has {int(n_g)} observation(s) "
-                f"and {number_text(round(float(rho_g), 3))} residual df after the design's fit, too few for a variance of its own; "
-                "add observations, merge levels, or remove variance_groups"))
+                f"and {number_text(round(float(rho_g), 3))} residual df after the design's fit, too few for a "
+                "variance of its own; add observations, merge levels, or remove variance_groups"))
     return out

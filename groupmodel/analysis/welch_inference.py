@@ -6,8 +6,10 @@ when ``inference.blocks`` is given), since exchangeable errors must share a vari
 symmetric errors and need no equal variances.  So:
 
 * ``method: auto``: sign flips for a mean or a combination of means (as without variance groups), and for a
-  hypothesis that permutation within the variance groups cannot move (a difference between variance groups, as in
-  patients against controls grouped by diagnosis); otherwise permutation within the variance groups;
+  hypothesis that permutation within the variance groups cannot move in full (one whose interest space has a
+  direction within :data:`BLOCK_COSINE_MAX` of the group indicators: a difference between variance groups, as
+  patients against controls grouped by diagnosis, or an F test that includes one); otherwise permutation within
+  the variance groups;
 * ``method: permutation``: permutation within the variance groups (refused for a hypothesis it cannot move);
 * ``method: sign_flip`` / ``both``: as asked, permutations (for ``both``) within the variance groups.
 
@@ -35,8 +37,9 @@ from .welch_fit import WelchSetup
 
 __all__ = ["check_welch_inference", "welch_method", "welch_permutation_inference"]
 
-#: Interest rows equal to this absolute tolerance (they are orthonormal-basis entries) count as not moving.
-_MOVE_TOL = 1e-10
+#: Sign flips instead of permutation within the blocks when the interest space has a direction whose cosine with
+#: the block-constant vectors exceeds this (within-block permutations would leave over 1% of its variance unmoved).
+BLOCK_COSINE_MAX = 0.1
 
 
 def check_welch_inference(options: InferenceOptions) -> None:
@@ -60,8 +63,13 @@ def _combined_blocks(groups: np.ndarray, blocks: np.ndarray | None) -> np.ndarra
 
 
 def _moves_within(interest: np.ndarray, blocks: np.ndarray) -> bool:
-    """Whether permuting rows within the blocks can change the interest part of the design."""
-    return any(np.ptp(interest[blocks == b], axis=0).max(initial=0.0) > _MOVE_TOL for b in np.unique(blocks))
+    """Whether permuting rows within the blocks moves the whole interest space: no direction of it lies (to
+    :data:`BLOCK_COSINE_MAX`) in the span of the block indicators, which such permutations leave unchanged."""
+    labels = np.unique(blocks)
+    indicators = (blocks[:, None] == labels[None, :]).astype(float)
+    indicators /= np.sqrt(indicators.sum(axis=0))  # orthonormal: the blocks do not overlap
+    cosines = np.linalg.svd(indicators.T @ interest, compute_uv=False)
+    return bool(cosines.max(initial=0.0) <= BLOCK_COSINE_MAX)
 
 
 def welch_method(h: Any, setting: str, interest_moves: bool, mean_moves: bool) -> str:
@@ -72,8 +80,8 @@ def welch_method(h: Any, setting: str, interest_moves: bool, mean_moves: bool) -
     if method == "permute" and not interest_moves:
         if setting == "permutation":
             raise InputError(
-                f"hypothesis {h.name}: permutation within the variance groups cannot change it (it compares the "
-                "variance groups themselves); use inference.method sign_flip or auto")
+                f"hypothesis {h.name}: permutation within the variance groups cannot test it (it compares the "
+                "variance groups, at least in part); use inference.method sign_flip or auto")
         return "flip"
     return method
 
@@ -104,8 +112,8 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
         res = _run(plan, pset, data, chunk_voxels, h, report)
         inference = _hypothesis_inference(res, h, options, None, ijk, data.grid)
         inference.record.update({
-            "statistic": "v" if h.test == "t" else "G",
-            "variance_groups": setup.groups.factor,
+            "permutation_statistic": "v" if h.test == "t" else "G",
+            "permuted_within_variance_groups": setup.groups.factor,
             "rearrangements": "rows permuted only within variance groups"
                               + (" and exchangeability blocks" if options.blocks else "")
                               + "; sign flips need no equal variances",

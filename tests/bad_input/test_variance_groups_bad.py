@@ -84,5 +84,21 @@ def test_explicit_permutation_of_the_variance_groups_is_refused() -> None:
     x = np.column_stack([np.ones(8), np.repeat([1.0, 0.0], 4)])
     part = partition(x, [0, 1], "t")
     assert welch_method(H, "auto", False, moves_with_mean(part)) == "flip"
-    with pytest.raises(InputError, match="permutation within the variance groups cannot change it"):
+    with pytest.raises(InputError, match="permutation within the variance groups cannot test it"):
         welch_method(H, "permutation", False, moves_with_mean(part))
+
+
+def test_which_hypotheses_permutation_within_groups_can_test() -> None:
+    """Unbalanced groups with a covariate: a group difference is (mostly) constant within the groups, a sex
+    difference or the covariate's slope is not."""
+    from groupmodel.analysis.welch_inference import _moves_within
+
+    rng = np.random.default_rng(0)
+    groups = np.repeat([0, 1, 2], [6, 11, 9])
+    sex = np.arange(26) % 2
+    age = rng.normal(40, 10, 26) + 3 * groups
+    x = np.column_stack([np.ones(26), groups == 1, groups == 2, sex, age - age.mean()])
+    assert not _moves_within(partition(x, [[0, 1, 0, 0, 0], [0, 0, 1, 0, 0]], "F").interest, groups)
+    assert not _moves_within(partition(x, [[0, 1, 0, 0, 0], [0, 0, 0, 1, 0]], "F").interest, groups)
+    assert _moves_within(partition(x, [0, 0, 0, 1, 0], "t").interest, groups)
+    assert _moves_within(partition(x, [0, 0, 0, 0, 1], "t").interest, groups)

@@ -104,7 +104,7 @@ def test_permutations_flip_signs_when_comparing_variance_groups(tmp_path: Path) 
     options = InferenceOptions(permutations=200, seed=5)
     fit = fit_images(spec, progress=False, chunk_voxels=5, inference=options)
     assert fit.records["patient_vs_control"]["method"] == "sign_flip"
-    assert fit.records["patient_vs_control"]["statistic"] == "v"
+    assert fit.records["patient_vs_control"]["permutation_statistic"] == "v"
     n = data.shape[0]
     labels = np.repeat(np.arange(3), list(SIZES.values()))
     _, classes = np.unique(labels, return_inverse=True)
@@ -112,6 +112,11 @@ def test_permutations_flip_signs_when_comparing_variance_groups(tmp_path: Path) 
     p_unc, p_fwe = _reference_p(data, table.group.to_numpy(), None, pset.flips)
     np.testing.assert_allclose(fit.maps["patient_vs_control"]["p_perm"], p_unc, atol=1e-12)
     np.testing.assert_allclose(fit.maps["patient_vs_control"]["p_fwe"], p_fwe, atol=1e-12)
+    write_voxel_fit(fit, tmp_path / "out", pictures=False)
+    sides = [json.loads(p.read_text()) for p in (tmp_path / "out").glob("patient_vs_control_*.json")]
+    fwe = next(s for s in sides if s.get("statistic") == "p_fwe")
+    assert fwe["permutation_statistic"] == "v" and fwe["permuted_within_variance_groups"] == "group"
+    assert fwe["method"] == "sign_flip" and fwe["variance_groups"]["factor"] == "group"
     again = fit_images(spec, progress=False, chunk_voxels=36, inference=options)  # one chunk: the same p
     np.testing.assert_array_equal(again.maps["patient_vs_control"]["p_fwe"], fit.maps["patient_vs_control"]["p_fwe"])
 

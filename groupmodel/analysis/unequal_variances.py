@@ -1,11 +1,9 @@
 """Findings of a fit: groups of a factor whose residual variances differ (the pooled t and F assume they do not).
 
 For every model factor (other than the ``variance_groups`` factor, whose groups already get their own variance)
-the residual variance of each group is ``RSS_g / rho_g`` (:mod:`groupmodel.engine.welch`), and the check is
-Levene's test as ``scipy.stats.levene`` computes it (centred on the group medians, i.e. the Brown-Forsythe
-form) applied to the OLS residuals of the groups.  A factor is reported when the largest group variance exceeds
-the smallest by more than :data:`VARIANCE_RATIO_WARN` and Levene's p is below :data:`LEVENE_ALPHA`; for a
-voxelwise fit, when that holds in more than :data:`VOXEL_SHARE_WARN` of the voxels (vertices) in the mask.
+the rule of :mod:`groupmodel.engine.variance_check` (group variance ratio above ``VARIANCE_RATIO_WARN`` and
+Levene's test, ``scipy.stats.levene`` centred on medians, below ``LEVENE_ALPHA``) is applied to the OLS residuals;
+a voxelwise fit warns when it holds in more than :data:`VOXEL_SHARE_WARN` of the voxels (vertices) in the mask.
 """
 
 from __future__ import annotations
@@ -13,18 +11,14 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
 
+from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, group_variances, unequal
 from ..engine.welch import GROUP_DF_MIN, group_residual_df
 from ..model.assembly import Model
 from ..text import number_text
 
 __all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "VOXEL_SHARE_WARN", "UnequalVarianceTally", "residuals_of"]
 
-#: Largest over smallest residual variance of a factor's groups above which a fit warns (with Levene's p).
-VARIANCE_RATIO_WARN = 2.0
-#: Levene's test (scipy.stats.levene, median-centred) must give p below this too.
-LEVENE_ALPHA = 0.05
 #: A voxelwise fit warns when more than this share of the voxels in the mask meet both conditions.
 VOXEL_SHARE_WARN = 0.10
 
@@ -80,10 +74,8 @@ class UnequalVarianceTally:
         """Count one chunk of data (n, v)."""
         resid = residuals_of(self.u, y, self.centred)
         for f in self._factors:
-            variances, p = _group_variances(f, resid)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                ratio = variances.max(axis=0) / variances.min(axis=0)
-                hit = (ratio > VARIANCE_RATIO_WARN) & (p < LEVENE_ALPHA)
+            variances, p = group_variances(resid, f.labels, f.rho)
+            hit = unequal(variances, p)
             self.flagged[f.name] = self.flagged.get(f.name, 0) + int(np.count_nonzero(hit))
             self.tested[f.name] = self.tested.get(f.name, 0) + int(np.count_nonzero(np.isfinite(p)))
             self.last[f.name] = (variances, p)
@@ -117,15 +109,3 @@ class UnequalVarianceTally:
                     f"with Levene's test (scipy.stats.levene, centred on medians) p < {number_text(LEVENE_ALPHA)}; "
                     f'pooled t and F assume equal variances: consider "variance_groups": "{f.name}" in the spec')
         return out
-
-
-def _group_variances(f: _Factor, resid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Residual variance of each group (k, v) and Levene's p (v,), NaN where a voxel has no spread."""
-    k = len(f.groups)
-    onehot = np.zeros((k, resid.shape[0]))
-    onehot[f.labels, np.arange(resid.shape[0])] = 1.0
-    variances = (onehot @ (resid * resid)) / f.rho[:, None]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        p = stats.levene(*[resid[f.labels == g] for g in range(k)], center="median", axis=0).pvalue
-    p = np.atleast_1d(np.asarray(p, dtype=float))
-    return variances, np.where(np.all(variances > 0, axis=0), p, np.nan)

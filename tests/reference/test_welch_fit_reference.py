@@ -100,3 +100,25 @@ def test_variance_groups_must_be_a_model_factor(tmp_path: Path, value: str, frag
 
     with pytest.raises(SpecError, match=r"\$\.variance_groups: " + fragment):
         load_spec(_study(tmp_path, variance_groups=value))
+
+
+def test_v_and_g_do_not_depend_on_the_coding(tmp_path: Path) -> None:
+    """The same hypotheses under effect and treatment coding, with a covariate: the same v, G and df2."""
+    spec_path = _study(tmp_path)
+    table = pd.read_csv(tmp_path / "participants.tsv", sep="\t")
+    table["age"] = np.round(np.random.default_rng(1).uniform(20, 60, len(table)), 1)
+    table.to_csv(tmp_path / "participants.tsv", sep="\t", index=False)
+    fits = []
+    for coding in ("effect", "treatment"):
+        spec = json.loads(spec_path.read_text())
+        spec["factors"]["group"]["coding"] = coding
+        spec["covariates"] = {"age": {"center": "mean"}}
+        spec["terms"] = ["group", "age"]
+        spec["hypotheses"]["age"] = {"slope": "age"}
+        path = tmp_path / f"{coding}.json"
+        path.write_text(json.dumps(spec))
+        fits.append(fit_table(path, "score").table.set_index("hypothesis"))
+    for col in ("statistic", "df2", "p", "estimate"):
+        np.testing.assert_allclose(fits[0][col].to_numpy(float), fits[1][col].to_numpy(float), rtol=1e-9,
+                                   equal_nan=True)
+    assert np.all(fits[0]["df2"] % 1 != 0)  # approximate df: not whole numbers

@@ -22,7 +22,10 @@ coordinates of :mod:`groupmodel.engine.ols` (``X = U S V'``, ``A = L V_r S_r^-1`
   ``G = (L b)' V^-1 (L b) / (s Lambda)``, ``s = rank(L)``,
   ``Lambda = 1 + 2 (s - 1) / (s (s + 2)) * S``, ``nu = s (s + 2) / (3 S)``,
   ``S = sum_g (1 - w_g / sum_h w_h)^2 / rho_g`` with ``w_g = n_g / sigma2_g`` (the sum of W over group g);
-  G is referred to ``F(s, nu)``.  For the one-way layout this is Welch's (1951) test.
+  G is referred to ``F(s, nu)``.  For the one-way layout this is Welch's (1951) test.  For one row (s = 1)
+  ``Lambda = 1`` and ``G = v^2``; its df are then v's Welch-Satterthwaite df (specific to the contrast), so that a
+  one-row F test and the two-sided v test agree.  (Winkler et al.'s ``nu = 1 / S`` is the same for two variance
+  groups, but for more it ignores which groups the contrast involves.)
 
 Voxels where some group has (numerically) zero residual variance get NaN statistics, df, p and z.
 Everything is per voxel: results do not depend on the chunking.
@@ -221,14 +224,16 @@ def welch_statistics(wp: WelchPrepared, a: np.ndarray, effect: np.ndarray, group
     z = _forward(low, np.broadcast_to(a.T[:, :, None], (r, q, v)))  # (r, q, v): L^-1 A'
     df = np.full(v, np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
-        if kind == "t":
+        if kind == "t" or q == 1:  # one row: v, or G = v^2 (Lambda = 1) on v's Welch-Satterthwaite df
             var = np.sum(z[:, 0] ** 2, axis=0)  # a'H^-1 a
             stat = effect[0] / np.sqrt(var)
-            if with_df:
+            if with_df or kind == "F":
                 x = _backward(low, z[:, 0])  # H^-1 a, (r, v)
                 d = np.einsum("iv,kij,jv->kv", x, wp.gram, x, optimize=True)  # a'H^-1 K_g H^-1 a
                 df = var**2 / np.sum((d * w) ** 2 / wp.resid_df[:, None], axis=0)
             scale = var
+            if kind == "F":
+                stat, scale = stat**2, np.ones(v)
         else:
             cov = np.einsum("rpv,rqv->pqv", z, z)  # A H^-1 A', (q, q, v)
             white = _forward(_cholesky(cov), effect[:, None, :])[:, 0]  # (q, v)

@@ -125,3 +125,22 @@ def test_simulation_pooled_t_inflates_and_v_keeps_its_level() -> None:
     lo, hi = stats.binom.interval(0.99, n_sim, 0.05)
     assert pooled > hi / n_sim + 0.05, pooled  # about 0.18 here: more than three times the level
     assert lo / n_sim <= welch <= hi / n_sim, welch
+
+
+def test_one_row_f_is_v_squared_on_v_df() -> None:
+    """Three groups, one row (group 0 against the mean of groups 1 and 2): G = v^2 on v's Welch-Satterthwaite df,
+    which here is the textbook (sum c_g^2 s_g^2 / n_g)^2 / sum (c_g^2 s_g^2 / n_g)^2 / (n_g - 1) written out."""
+    sizes = [7, 15, 11]
+    x, labels = _cell_design(sizes, "cells")
+    rng = np.random.default_rng(8)
+    y = rng.normal(size=(33, 6)) * np.repeat([3.0, 1.0, 0.5], sizes)[:, None]
+    c = np.array([1.0, -0.5, -0.5])
+    res = fit_chunk_welch(prepare_welch(prepare(x, [Test("v", c, "t"), Test("G", c, "F")]), labels, ("a", "b", "c")), y)
+    terms = np.array([c[g] ** 2 * y[labels == g].var(axis=0, ddof=1) / sizes[g] for g in range(3)])
+    df = terms.sum(axis=0) ** 2 / np.sum(terms**2 / (np.array(sizes)[:, None] - 1), axis=0)
+    means = np.array([y[labels == g].mean(axis=0) for g in range(3)])
+    np.testing.assert_allclose(res["v"].statistic, c @ means / np.sqrt(terms.sum(axis=0)), rtol=1e-10)
+    np.testing.assert_allclose(res["v"].df2, df, rtol=1e-10)
+    np.testing.assert_allclose(res["G"].statistic, res["v"].statistic ** 2, rtol=1e-10)
+    np.testing.assert_allclose(res["G"].df2, df, rtol=1e-10)
+    np.testing.assert_allclose(res["G"].p, res["v"].p, rtol=1e-9)

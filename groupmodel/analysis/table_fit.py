@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -12,12 +13,15 @@ from ..engine.effect_sizes import DEFAULT_CI_LEVEL
 from ..engine.ols import ChunkResult, fit_chunk, prepare
 from ..errors import ModelError
 from ..model.assembly import Model, build
+from ..model.checks import Finding
 from ..model.options import check_ci_level
 from ..model.spec import ModelSpec, load_spec
 from ..outputs.provenance import RunClock
 from ..text import DISCLAIMER
 from .cell_means import cell_means
 from .effect_maps import EFFECT_SIZE_STATS, effect_sizes
+from .unequal_variances import UnequalVarianceTally
+from .welch_fit import table_welch, welch_setup
 
 #: Columns of results.tsv, in order (the effect sizes and intervals last; n/a where not defined).
 RESULT_COLUMNS = ["hypothesis", "test", "tail", "estimate", "se", "statistic", "df1", "df2", "p", "z",
@@ -35,6 +39,8 @@ class TableFit:
     clock: RunClock = field(default_factory=RunClock.start)  # when the fit started (recorded with the results)
     cell_means: pd.DataFrame | None = None
     ci_level: float = DEFAULT_CI_LEVEL
+    #: With ``variance_groups``: the groups, their residual variances and the statistics used (v, G).
+    variance_groups: dict[str, Any] | None = None
 
     def format(self) -> str:
         """The results table for a terminal."""
@@ -42,6 +48,10 @@ class TableFit:
             f"outcome {self.outcome}: {self.model.design.n_observations} observations, "
             f"{self.result.df_resid} residual df, residual SD {float(np.sqrt(self.result.residual_variance[0])):.6g}",
         ]
+        if self.variance_groups is not None:
+            sds = ", ".join(f"{g} {np.sqrt(v):.6g}" for g, v in self.variance_groups["group_residual_variance"].items())
+            lines.append(f"variance groups {self.variance_groups['factor']} (residual SD {sds}): "
+                         "t tests use Welch's v, F tests Welch's G, with approximate df2")
         frame = self.table.copy()
         for col in ("estimate", "se", "statistic", "z", *EFFECT_SIZE_STATS):
             frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
@@ -98,5 +108,12 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str, ci_level: float | None
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)
-    return TableFit(model, outcome, result, results_table(model, result, ci_level=level), clock,
-                    cell_means=cell_means(model.design, y), ci_level=level)
+    table, record = results_table(model, result, ci_level=level), None
+    setup = welch_setup(model, prepared)
+    if setup is not None:  # Welch's v and G with their approximate df (no effect sizes: n/a columns)
+        table, record = table_welch(model, setup, y, RESULT_COLUMNS)
+    tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
+    tally.add(y)
+    model.findings += [Finding("warning", "unequal_variances", m) for m in tally.table_findings()]
+    return TableFit(model, outcome, result, table, clock, cell_means=cell_means(model.design, y), ci_level=level,
+                    variance_groups=record)

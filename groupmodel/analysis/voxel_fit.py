@@ -33,6 +33,9 @@ from .effect_maps import effect_size_names, effect_sizes
 from .parallel import parallel_plan, spill_warning
 from .participant_check import ParticipantCheck, residual_table
 from .table_fit import require_fittable
+from .unequal_variances import UnequalVarianceTally
+from .welch_fit import WelchSetup, welch_maps, welch_record, welch_setup
+from .welch_inference import check_welch_inference, welch_permutation_inference
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -93,6 +96,8 @@ class VoxelFit:
     mean_input: np.ndarray | None = None
     participant_residuals: pd.DataFrame | None = None
     runtime: dict[str, Any] = field(default_factory=dict)
+    #: With ``variance_groups``: the groups and the statistics used (v and G, df2 per voxel); else None.
+    variance_groups: dict[str, Any] | None = None
 
     @property
     def elements(self) -> str:
@@ -105,7 +110,7 @@ class VoxelFit:
         rows = []
         for h in self.model.hypotheses.values():
             m = self.maps[h.name]
-            stat = m["t"] if h.test == "t" else m["F"]
+            stat = statistic_map(m)
             # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
             tested = ~np.isnan(stat)
             rows.append({
@@ -113,7 +118,8 @@ class VoxelFit:
                 "test": h.test,
                 "tail": h.tail,
                 "df1": h.n_rows,
-                "df2": self.df_resid,
+                # with variance groups df2 is approximate and per voxel: its median over the tested voxels
+                "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_resid,
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
@@ -212,6 +218,9 @@ def fit_images(
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
     prepared = prepare(model.design.matrix, model.tests())
+    welch = welch_setup(model, prepared)
+    if welch is not None:
+        check_welch_inference(inference)
     log = log if log is not None else StageLog(quiet=True)
     plan = parallel_plan(inference, budget)
     log.info(plan.cores.describe())
@@ -223,17 +232,24 @@ def fit_images(
             n_maps = sum(len(_map_names(h)) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
+        tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
         with log.stage("fitting"):
-            maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
-                                                       ci_level=inference.ci_level)
+            if welch is None:
+                maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
+                                                           ci_level=inference.ci_level, on_chunk=tally.add)
+            else:  # Welch's v and G: no effect sizes, mean image or participant check
+                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add)
+                extras = None
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
-                    + _flat_warnings(maps, n_vox, elements_of(data.grid)))
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid))
+                    + tally.voxel_findings(elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
         with log.stage("permutations") if inference.active else nullcontext():
             permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
-                                         budget, chunk_voxels, progress, log, checkpoint)
+                                         budget, chunk_voxels, progress, log, checkpoint,
+                                         welch)
         warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
         if data.spilled:
             warnings.append(spill_warning(model.design.n_observations * n_vox * 4, budget, -(-n_vox // chunk_voxels),
@@ -252,9 +268,11 @@ def fit_images(
                         tables={n: r.tables for n, r in permuted.items()},
                         inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
                                                  [(r.path, r.volume) for r in source.refs], model.sample),
-                        clock=clock, mean_input=extras[0],
-                        participant_residuals=residual_table(model.design.participant_ids, extras[1]),
-                        runtime=plan.as_dict())
+                        clock=clock, mean_input=None if extras is None else extras[0],
+                        participant_residuals=None if extras is None else residual_table(
+                            model.design.participant_ids, extras[1]),
+                        runtime=plan.as_dict(),
+                        variance_groups=welch_record(welch) if welch is not None else None)
     finally:
         data.close()
 
@@ -284,7 +302,7 @@ def _map_names(h: Any) -> tuple[str, ...]:
 
 
 def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool, *,
-                     ci_level: float
+                     ci_level: float, on_chunk: Any = None
                      ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """Effect, SE, t or F, z, p, -log10 p, effect-size and interval maps of every hypothesis, and the residual
     variance, chunk by chunk (intervals at ``ci_level``; the corrected p maps are allocated here and filled
@@ -314,6 +332,8 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
                 m["mlog10p"][cols] = r.mlog10p
                 for k, values in effect_sizes(h, r, res.residual_variance, ci_level).items():
                     m[k][cols] = values
+            if on_chunk is not None:
+                on_chunk(y)
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
@@ -330,16 +350,21 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
     if not maps:
         return []
     first = next(iter(maps.values()))
-    n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+    n_flat = int(np.count_nonzero(np.isnan(statistic_map(first))))
     if not n_flat:
         return []
     return [f"{n_flat} of {n_vox} {elements} have (numerically) zero residual variance, e.g. the same "
             "value in every image: their t, F, z and p are NaN (not tested)"]
 
 
+def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
+    """A hypothesis's statistic map: t or F, or with variance groups v or G."""
+    return next(maps[k] for k in ("t", "F", "v", "G") if k in maps)
+
+
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
                       chunk_voxels: int, progress: bool, log: StageLog,
-                      checkpoint: Any = None) -> dict[str, HypothesisInference]:
+                      checkpoint: Any = None, welch: WelchSetup | None = None) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
     if not options.active:
         return {}
@@ -354,6 +379,8 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
         log.progress("permutations", sum(done_before.values()), total, "rearrangements")
 
     try:
+        if welch is not None:
+            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
                                      progress=report, checkpoint=checkpoint)

@@ -54,6 +54,7 @@ from .sections import (
     with_spec_matches,
 )
 from .spec import compare_with_spec
+from .variances import variance_findings
 
 __all__ = ["AuditReport", "ContrastReport", "HandDesign", "SECTIONS", "SMD_WARN", "audit"]
 
@@ -67,6 +68,7 @@ PIPELINE: tuple[Callable[[AuditContext], list[AuditFinding]], ...] = (
     contrast_findings,
     covariate_findings,
     spec_findings,
+    variance_findings,
 )
 
 

@@ -74,6 +74,9 @@ def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
     """The settings of permutation inference, then the method and rearrangements of each hypothesis."""
     rule = " (auto: sign flips for means, row permutation for differences and slopes)" \
         if options.method == "auto" else ""
+    if options.method == "auto" and getattr(fit, "variance_groups", None) is not None:
+        rule = (" (auto with variance groups: row permutation within the groups; sign flips for means and for "
+                "differences between the groups)")
     lines = [f"permutation inference: seed {options.seed}, Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; "
              f"cluster threshold {options.cluster_threshold if options.cluster_threshold is not None else 'none'}; "
              f"method per hypothesis{rule}:"]

@@ -261,6 +261,8 @@ class ModelSpec:
     inference: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
     inference_options: InferenceOptions = field(default_factory=InferenceOptions)
+    #: A model factor whose groups get their own residual variance (Welch's v and G), or None.
+    variance_groups: str | None = None
 
     @property
     def base_dir(self) -> Path:
@@ -436,6 +438,21 @@ def _read_terms(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorS
     return tuple(terms)
 
 
+def _read_variance_groups(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec],
+                          terms: tuple[Term, ...]) -> str | None:
+    """``variance_groups``: a factor that enters the model's terms (its groups' variances are estimated apart)."""
+    column = raw.get("variance_groups")
+    if column is None:
+        return None
+    in_model = [f for f in factors if any(f in t for t in terms)]
+    if column not in in_model:
+        raise SpecError(
+            f"{name} $.variance_groups: expected a factor of the model {in_model}, found {column!r}; "
+            "name a factor declared under factors and used in terms"
+        )
+    return str(column)
+
+
 def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
     path = Path(path)
@@ -477,4 +494,5 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         inference=dict(raw.get("inference") or {}),
         raw=raw,
         inference_options=InferenceOptions.parse(raw.get("inference") or {}, base),
+        variance_groups=_read_variance_groups(raw, name, factors, terms),
     )

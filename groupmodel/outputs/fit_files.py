@@ -78,6 +78,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 
 
@@ -155,6 +156,9 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, *, run: dict[st
         })
     else:
         out.update({"df2": fit.df_resid})
+    record = getattr(fit, "variance_groups", None)
+    if record is not None:  # Welch's v and G: df2 is approximate and per voxel
+        out.update({"df2": record["df2"], "variance_groups": record})
     out.update(extra)
     out.update(provenance())
     if run is not None:

@@ -57,6 +57,16 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
+def readable_text(text: str) -> str:
+    """``text`` with paths decoded under a non-UTF-8 locale (surrogate escapes) restored to their UTF-8 names;
+    bytes that are not UTF-8 at all become U+FFFD, so the file is always valid UTF-8."""
+    try:
+        text.encode("utf-8")
+        return text
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "replace")
+
+
 def dumps_json(obj: Any) -> str:
     """JSON text with 2-space indents, numpy values converted, non-finite floats made explicit."""
     return json.dumps(_jsonable(obj), indent=2, ensure_ascii=False) + "\n"
@@ -317,7 +327,7 @@ class OutputFolder:
 
     def write_text(self, name: str, text: str) -> Path:
         p = self.file(name)
-        p.write_text(text, encoding="utf-8")
+        p.write_text(readable_text(text), encoding="utf-8")
         return p
 
     def write_json(self, name: str, obj: Any) -> Path:

@@ -114,7 +114,9 @@ def image_list_record(images: Sequence[tuple[Path, int | None]]) -> dict[str, An
             total += st.st_size
             seen.add(path)
     return {"count": len(images), "files": len(seen), "total_bytes": total,
-            "list_sha256": hashlib.sha256("".join(lines).encode("utf-8")).hexdigest(), "list_rule": IMAGE_LIST_RULE}
+            # surrogateescape: a path undecodable in the locale (POSIX locale, non-ASCII names) hashes as its bytes
+            "list_sha256": hashlib.sha256("".join(lines).encode("utf-8", "surrogateescape")).hexdigest(),
+            "list_rule": IMAGE_LIST_RULE}
 
 
 def software_versions() -> dict[str, str]:

@@ -28,7 +28,8 @@ VERTEX_PEAK_COLUMNS = ("peak_vertex",)
 def _peak_element(fit: VoxelFit, name: str) -> int | None:
     """Mask position of the peak |statistic| of a hypothesis (as in VoxelFit.summary); None if nothing tested."""
     m = fit.maps[name]
-    stat = m["t"] if "t" in m else m["F"]
+    # t or F, or with variance groups v or G (the order VoxelFit.summary reads them in)
+    stat = next(m[k] for k in ("t", "F", "v", "G") if k in m)
     if not np.any(~np.isnan(stat)):
         return None
     return int(np.nanargmax(np.abs(stat)))

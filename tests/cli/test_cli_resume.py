@@ -71,9 +71,11 @@ def test_killed_run_resumed_gives_identical_maps(tmp_path: Path) -> None:
     assert done.returncode == 0, done.stderr
     assert "resuming from" in done.stdout and " 300" in done.stdout, done.stdout  # went on from the saved state
     assert not checkpoint.exists()  # removed once the results are written
-    maps = sorted(p.name for p in (tmp_path / "whole").glob("*.nii.gz"))
-    assert any("tfce" in m for m in maps) and maps == sorted(p.name for p in resumed.glob("*.nii.gz"))
+    whole = tmp_path / "whole"
+    maps = sorted(str(p.relative_to(whole)) for p in whole.rglob("*.nii.gz"))
+    assert any("tfce" in m for m in maps)
+    assert maps == sorted(str(p.relative_to(resumed)) for p in resumed.rglob("*.nii.gz"))
     for name in maps:
-        a = np.asanyarray(nib.load(tmp_path / "whole" / name).dataobj)
+        a = np.asanyarray(nib.load(whole / name).dataobj)
         b = np.asanyarray(nib.load(resumed / name).dataobj)
         assert a.tobytes() == b.tobytes(), name

@@ -18,20 +18,26 @@ images.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from ..engine.effect_sizes import DEFAULT_CI_LEVEL
 from ..engine.linalg import matrix_rank
 from ..engine.tails import f_tests, t_tests
 from ..model.assembly import Model
 from ..model.strata import StratumTest
+from ..outputs.provenance import RunClock
+from ..outputs.strata_files import effect_size_notes
 from ..text import DISCLAIMER
+from .effect_maps import EFFECT_SIZE_STATS
+from .strata_effects import strata_effect_sizes
 
-#: Columns of results.tsv for a model with within-participant factors, in order.
+#: Columns of results.tsv for a model with within-participant factors, in order (effect sizes last).
 STRATA_RESULT_COLUMNS = ["hypothesis", "stratum", "test", "tail", "estimate", "se", "statistic", "df1", "df2",
-                         "p", "z", "epsilon_gg", "epsilon_hf", "p_gg", "participants"]
+                         "p", "z", "epsilon_gg", "epsilon_hf", "p_gg", "participants", *EFFECT_SIZE_STATS]
 
 
 @dataclass(frozen=True)
@@ -113,6 +119,11 @@ class StrataTableFit:
     outcome: str
     results: dict[str, StratumResult]
     table: pd.DataFrame
+    clock: RunClock = field(default_factory=RunClock.start)  # when the fit started (recorded with the results)
+    cell_means: pd.DataFrame | None = None
+    ci_level: float = DEFAULT_CI_LEVEL
+    #: Unequal variances by group are not offered with within-participant factors (refused by the spec).
+    variance_groups: dict[str, Any] | None = None
 
     def format(self) -> str:
         strata = self.model.strata
@@ -120,7 +131,8 @@ class StrataTableFit:
         lines = [f"outcome {self.outcome}: {strata.n_observations} observations of "
                  f"{len(strata.participant_ids)} participants; each hypothesis in its error stratum"]
         frame = self.table.copy()
-        for col in ("estimate", "se", "statistic", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p"):
+        for col in ("estimate", "se", "statistic", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p",
+                    *EFFECT_SIZE_STATS):
             frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
         lines.append(frame.to_string(index=False))
         lines.append(DISCLAIMER)
@@ -130,28 +142,37 @@ class StrataTableFit:
         """What results.json adds for the strata: each hypothesis's stratum and transformed data."""
         strata = self.model.strata
         assert strata is not None
-        return {n: t.as_dict(strata) for n, t in strata.tests.items()}
+        return {n: {**t.as_dict(strata), **effect_size_notes(t)} for n, t in strata.tests.items()}
 
 
-def strata_table(model: Model, results: dict[str, StratumResult]) -> pd.DataFrame:
+def strata_table(model: Model, results: dict[str, StratumResult],
+                 ci_level: float = DEFAULT_CI_LEVEL) -> pd.DataFrame:
+    """One row per hypothesis in its stratum, with its effect sizes (n/a where not defined)."""
     strata = model.strata
     assert strata is not None
     records = []
     for name, r in results.items():
         t = strata.tests[name]
+        sizes = strata_effect_sizes(model.hypotheses[name], t, r, ci_level, grid=False)
         records.append({
             "hypothesis": name, "stratum": t.stratum, "test": t.test, "tail": t.tail,
             "estimate": float(r.estimate[0]), "se": float(r.se[0]), "statistic": float(r.statistic[0]),
             "df1": r.df1, "df2": r.df2, "p": float(r.p[0]), "z": float(r.z[0]),
             "epsilon_gg": float(r.epsilon_gg[0]), "epsilon_hf": float(r.epsilon_hf[0]), "p_gg": float(r.p_gg[0]),
             "participants": r.participants,
+            **{k: float(sizes[k][0]) if k in sizes else np.nan for k in EFFECT_SIZE_STATS},
         })
     return pd.DataFrame.from_records(records, columns=STRATA_RESULT_COLUMNS)
 
 
-def fit_strata_table(model: Model, outcome: str) -> StrataTableFit:
+def fit_strata_table(model: Model, outcome: str, ci_level: float = DEFAULT_CI_LEVEL,
+                     clock: RunClock | None = None) -> StrataTableFit:
     """Table-level fit of a built model with strata (``model`` built with ``numeric_columns=[outcome]``)."""
+    from .strata_cells import strata_cell_means
+
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     results = fit_strata_values(model, y)
-    return StrataTableFit(model, outcome, results, strata_table(model, results))
+    return StrataTableFit(model, outcome, results, strata_table(model, results, ci_level),
+                          clock if clock is not None else RunClock.start(),
+                          cell_means=strata_cell_means(model, y[:, 0]), ci_level=ci_level)
 

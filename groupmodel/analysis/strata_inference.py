@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from ..errors import ModelError
 from ..model.assembly import Model
 from ..model.options import InferenceOptions
 from .corrections import METHODS, WEIGHT_SUM_TOL, HypothesisInference, _hypothesis_inference, adjacency_for
@@ -37,6 +38,13 @@ class _Shim:
     name: str
     test: str
     tail: str
+
+
+def check_strata_inference(model: Model, options: InferenceOptions) -> None:
+    """Refuse settings the strata fix themselves: exchangeability blocks (whole participants are the units)."""
+    if options.active and options.blocks:
+        raise ModelError(f"{model.spec.name}: exchangeability blocks are set by the strata for within-participant "
+                         "factors (whole participants); remove the blocks setting")
 
 
 def stratum_method(model: Model, name: str, method: str) -> str:
@@ -66,8 +74,10 @@ def _stacked(model: Model, name: str, data: Any, chunk_voxels: int) -> np.ndarra
 def strata_permutation_inference(model: Model, data: Any, options: InferenceOptions, cache_bytes: int,
                                  chunk_voxels: int,
                                  progress: Callable[[str, int, int], None] | None = None,
-                                 ) -> dict[str, HypothesisInference]:
-    """Permutation inference of every hypothesis in its stratum (see the module text)."""
+                                 checkpoint: Any = None) -> dict[str, HypothesisInference]:
+    """Permutation inference of every hypothesis in its stratum (see the module text); with ``checkpoint``
+    (:class:`groupmodel.inference.checkpoint.CheckpointFolder`) each hypothesis's finished batches are kept
+    and a resumed run continues from them."""
     from ..inference.settings import BATCH_SIZE, Execution, MapSettings, whole_map_batch
     from ..inference.tfce import TfceParams
     from ..inference.whole_maps import shared_workers
@@ -85,13 +95,13 @@ def strata_permutation_inference(model: Model, data: Any, options: InferenceOpti
     with shared_workers(jobs, adjacency, whole_maps) as workers:
         execution = Execution(threads=options.threads, n_jobs=jobs, workers=workers, batch_size=batch,
                               cache_bytes=cache_bytes, chunk_size=chunk_voxels)
-        return {name: _one(model, name, data, options, execution, maps, ijk, progress, chunk_voxels)
+        return {name: _one(model, name, data, options, execution, maps, ijk, progress, chunk_voxels, checkpoint)
                 for name in strata.tests}
 
 
 def _one(model: Model, name: str, data: Any, options: InferenceOptions, execution: Any, maps: Any,
          ijk: np.ndarray | None, progress: Callable[[str, int, int], None] | None,
-         chunk_voxels: int) -> HypothesisInference:
+         chunk_voxels: int, checkpoint: Any = None) -> HypothesisInference:
     """One hypothesis: its stacked model, the method of its stratum, the rearrangements and the record."""
     from ..inference.driver import run_permutations
     from ..inference.settings import ContrastTest, Rearrangements
@@ -113,8 +123,12 @@ def _one(model: Model, name: str, data: Any, options: InferenceOptions, executio
         if progress is not None:
             progress(_name, done, total)
 
+    saved = None if checkpoint is None else checkpoint.contrast(
+        name, {"permutations": options.permutations, "seed": options.seed, "method": method,
+               "stratum": t.stratum})
     res = run_permutations(ContrastTest(x, weights, kind=kind, tail=tail, name=name),
-                           _stacked(model, name, data, chunk_voxels), chosen, maps, execution, progress=report)
+                           _stacked(model, name, data, chunk_voxels), chosen, maps, execution, progress=report,
+                           checkpoint=saved)
     inf = _hypothesis_inference(res, _Shim(name, kind, t.tail), replace(options, blocks=None), maps.adjacency, ijk,
                                 data.grid)
     inf.record.update({"stratum": t.stratum, "transformed_data": t.transformed,

@@ -20,6 +20,7 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from ..runtime.paths import text_join
 from .jsonfile import check_values, read_json
 from .options import InferenceOptions
 
@@ -263,6 +264,8 @@ class ModelSpec:
     inference_options: InferenceOptions = field(default_factory=InferenceOptions)
     #: The observations table (one row per image), when some factors are within-participant.
     observations: Path | None = None
+    #: A model factor whose groups get their own residual variance (Welch's v and G), or None.
+    variance_groups: str | None = None
 
     def within_factors(self) -> tuple[str, ...]:
         """Model factors marked ``"within": true``, in declared order."""
@@ -442,6 +445,21 @@ def _read_terms(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorS
     return tuple(terms)
 
 
+def _read_variance_groups(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec],
+                          terms: tuple[Term, ...]) -> str | None:
+    """``variance_groups``: a factor that enters the model's terms (its groups' variances are estimated apart)."""
+    column = raw.get("variance_groups")
+    if column is None:
+        return None
+    in_model = [f for f in factors if any(f in t for t in terms)]
+    if column not in in_model:
+        raise SpecError(
+            f"{name} $.variance_groups: expected a factor of the model {in_model}, found {column!r}; "
+            "name a factor declared under factors and used in terms"
+        )
+    return str(column)
+
+
 def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
     path = Path(path)
@@ -458,11 +476,11 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     terms = _read_terms(raw, name, factors, covariates)
 
     observations = base / raw["observations"] if "observations" in raw else None
-    _check_within(name, factors, covariates, observations)
+    _check_within(name, factors, covariates, observations, raw.get("variance_groups"))
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
     sidecar = raw.get("participants_sidecar")
-    participants = base / raw["participants"]
+    participants = text_join(base, raw["participants"])
     if sidecar is not None:
         sidecar_path: Path | None = base / sidecar
     else:
@@ -480,18 +498,25 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         terms=terms,
         hypotheses={n: HypothesisSpec.read(n, body) for n, body in (raw.get("hypotheses") or {}).items()},
         images=raw.get("images"),
-        mask=(base / raw["mask"]) if "mask" in raw else None,
+        mask=text_join(base, raw["mask"]) if "mask" in raw else None,
         outcome=raw.get("outcome"),
         inference=dict(raw.get("inference") or {}),
         raw=raw,
         inference_options=InferenceOptions.parse(raw.get("inference") or {}, base),
         observations=observations,
+        variance_groups=_read_variance_groups(raw, name, factors, terms),
     )
 
 
 def _check_within(name: str, factors: Mapping[str, FactorSpec], covariates: Mapping[str, CovariateSpec],
-                  observations: Path | None) -> None:
-    """Within-participant factors need the observations table; covariates are centred by between factors."""
+                  observations: Path | None, variance_groups: Any = None) -> None:
+    """Within-participant factors need the observations table; covariates are centred by between factors;
+    variance groups are not offered with an observations table."""
+    if observations is not None and variance_groups is not None:
+        raise SpecError(
+            f"{name} $.variance_groups: unequal variances by group (Welch's v and G) are not available with an "
+            'observations table (several images per participant); remove "variance_groups" or "observations"'
+        )
     within = [f for f, fs in factors.items() if fs.within]
     if within and observations is None:
         raise SpecError(

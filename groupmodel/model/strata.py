@@ -77,6 +77,11 @@ class StratumTest:
     between_cells: np.ndarray | None = None
 
     @property
+    def is_t(self) -> bool:
+        """A t test in its stratum: one between row and one transformed value per participant."""
+        return self.test == "t" and self.between_weights.shape[0] * self.within_weights.shape[1] == 1
+
+    @property
     def within_df(self) -> int:
         """Columns of transformed data per participant (the within-participant df of an F test)."""
         return int(self.within_weights.shape[1])

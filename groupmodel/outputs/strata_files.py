@@ -23,7 +23,27 @@ from .numbers import tidy
 
 if TYPE_CHECKING:
     from ..model.assembly import Model
-    from ..model.strata import Strata
+    from ..model.strata import Strata, StratumTest
+
+
+#: Why partial eta squared has no interval for an F test with more than one within df.
+NO_SPHERICITY_INTERVAL = ("n/a: with more than one within-participant df the F follows the noncentral F on "
+                          "(df1, df2) only under sphericity (see epsilon_gg), so its interval is not given")
+#: What the residual SD of cohens_d is, by stratum.
+COHENS_D_SD = {
+    "within": "the SD of the participants' differences (pooled within the between cells): d_z",
+    "between": "the residual SD of the participants' averages over the within cells",
+    "mixed": "the residual SD of the participants' values in the within cell(s) it weighs",
+}
+
+
+def effect_size_notes(test: StratumTest) -> dict[str, str]:
+    """What the sidecars and results.json say of a stratum's effect sizes: the SD of Cohen's d (t tests) and,
+    for an F test with more than one within df, why partial eta squared has no interval."""
+    out = {"cohens_d_sd": COHENS_D_SD[test.stratum]} if test.is_t else {}
+    if test.within_df > 1:
+        out["partial_eta_squared_interval"] = NO_SPHERICITY_INTERVAL
+    return out
 
 
 def strata_sidecar(strata: Strata) -> dict[str, Any]:

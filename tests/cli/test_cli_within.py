@@ -46,7 +46,7 @@ def test_fit_images_with_permutations_records_the_method(tmp_path: Path) -> None
     assert code == 0, err
     assert "session: sign flips" in out and "within stratum: sign flips of each participant's" in out
     assert "group: row permutation" in out and "between stratum: permutations of whole participants" in out
-    side = json.loads((out_dir / "session_p_perm.json").read_text())
+    side = json.loads((out_dir / "hypotheses" / "session" / "p_perm.json").read_text())
     assert side["method"] == "sign_flip" and side["stratum"] == "within"
     assert side["stratum_test"]["transformed_data"].startswith("each participant's contrast of session")
     assert side["rearranged"].startswith("sign flips") and side["df2"] == 13

@@ -52,7 +52,7 @@ def _inputs(args: argparse.Namespace) -> list[Any]:
     from ..model.spec import load_spec
 
     spec = load_spec(args.spec)  # a broken spec is reported here, before any work, as it would be later
-    return [args.spec, getattr(args, "mask", None), spec.participants]
+    return [args.spec, getattr(args, "mask", None), spec.participants, spec.observations]
 
 
 def check_build_images(model: Any) -> None:
@@ -169,6 +169,8 @@ def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
         # threads and worker processes do not change the results: a resume may use others
         "inference": {k: v for k, v in options.as_dict().items() if k not in ("jobs", "threads")},
     }
+    if spec.observations is not None:  # several images per participant: their table is an input too
+        parameters["observations_sha256"] = file_digest(spec.observations)
     folder = CheckpointFolder(args.checkpoint, parameters, resume=args.resume, every=args.checkpoint_every)
     saved = folder.progress()
     if args.resume:

@@ -26,6 +26,7 @@ import pandas as pd
 
 from ..engine.effect_sizes import DEFAULT_CI_LEVEL
 from ..engine.linalg import matrix_rank
+from ..engine.ols import ZERO_VARIANCE_FACTOR
 from ..engine.tails import f_tests, t_tests
 from ..model.assembly import Model
 from ..model.strata import StratumTest
@@ -59,8 +60,14 @@ class StratumResult:
     residual_variance: np.ndarray
 
 
-def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResult:
-    """Fit transformed data ``z`` (n, c, v) with the between design ``x`` (n, p) and test ``test``."""
+def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray,
+                data_scale: np.ndarray | None = None) -> StratumResult:
+    """Fit transformed data ``z`` (n, c, v) with the between design ``x`` (n, p) and test ``test``.
+
+    A voxel whose residual variance is at or below ``(ZERO_VARIANCE_FACTOR n eps data_scale)^2`` is not tested
+    (NaN statistic, as in :mod:`groupmodel.engine.ols`); ``data_scale`` is the largest |value| of the
+    observations the transformed data were made from (default: of ``z``): a difference of two equal images
+    is zero only up to their rounding."""
     n, c, v = z.shape
     pinv = np.linalg.pinv(x)
     df_e = n - matrix_rank(x)
@@ -68,6 +75,9 @@ def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResul
     coef = pinv @ flat
     resid = (flat - x @ coef).reshape(n, c, v)
     sse = np.einsum("ncv,ncv->v", resid, resid)
+    # (numerically) zero residual variance: not tested (NaN statistic), by the rule of engine.ols
+    scale = (np.abs(z).max(axis=(0, 1)) if n else np.zeros(v)) if data_scale is None else data_scale
+    flat_var = sse / max(df_e * c, 1) <= (ZERO_VARIANCE_FACTOR * n * np.finfo(np.float64).eps * scale) ** 2
     lw = test.between_weights
     a = lw.shape[0]
     d = (lw @ coef).reshape(a, c, v)
@@ -77,13 +87,13 @@ def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray) -> StratumResul
         if test.test == "t" and a * c == 1:
             sigma2 = sse / df_e
             est = d[0, 0]
-            se = np.sqrt(m[0, 0] * sigma2)
-            stat = est / se
+            se = np.where(flat_var, 0.0, np.sqrt(m[0, 0] * sigma2))
+            stat = np.where(flat_var, np.nan, est / se)
             p, log_p, zz = t_tests(stat, df_e, test.tail)  # type: ignore[arg-type]
             return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, n, log_p, sigma2)
         ssh = np.einsum("acv,ab,bcv->v", d, np.linalg.inv(m), d)
         df1, df2 = float(a * c), float(df_e * c)
-        stat = (ssh / df1) / (sse / df2)
+        stat = np.where(flat_var, np.nan, (ssh / df1) / (sse / df2))
         p, log_p, zz = f_tests(stat, df1, df2)
         if c == 1:
             return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, n, log_p, sse / df2)
@@ -107,7 +117,8 @@ def fit_strata_values(model: Model, values: np.ndarray) -> dict[str, StratumResu
     """Every hypothesis fitted in its stratum to values over the observations (n_obs, v)."""
     strata = model.strata
     assert strata is not None
-    return {name: fit_stratum(strata.design_of(name), t, strata.transformed(name, values))
+    scale = np.abs(values).max(axis=0)
+    return {name: fit_stratum(strata.design_of(name), t, strata.transformed(name, values), scale)
             for name, t in strata.tests.items()}
 
 

@@ -89,9 +89,10 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
     try:
         for cols, y in data.chunks(chunk_voxels):
             v = y.shape[1]
+            scale = np.abs(y).max(axis=0)
             for name, t in tests.items():
                 z = (transforms[name] @ y).reshape(len(t.entered), t.within_df, v)
-                r = fit_stratum(designs[name], t, z)
+                r = fit_stratum(designs[name], t, z, scale)
                 _fill(maps[name], cols, r)
                 for k, values in strata_effect_sizes(hyps[name], t, r, ci_level).items():
                     maps[name][k][cols] = values

@@ -130,3 +130,16 @@ def test_within_f_partial_eta_squared_and_no_interval(tmp_path: Path) -> None:
     assert side["strata"]["session"]["partial_eta_squared_interval"].startswith("n/a: with more than one")
     table = pd.read_csv(tmp_path / "out" / "results.tsv", sep="\t", keep_default_na=False)
     assert table.set_index("hypothesis").loc["session", "partial_eta_squared_ci_lower"] == "n/a"
+
+
+def test_differences_equal_up_to_rounding_are_not_tested(tmp_path: Path) -> None:
+    """Every participant gains exactly 0.5 (up to the rounding of the stored values): the paired difference has
+    zero variance, so t, p and d are n/a (as the engine does for one row per participant), not 1e15."""
+    spec, data = _study(tmp_path)
+    obs = data[["participant_id", "session"]].copy()
+    base = np.round(np.linspace(1.1, 3.7, len(obs) // 2), 3)
+    obs["y"] = [round(base[i // 2] + 0.5 * (s == "s1"), 3) for i, s in enumerate(obs.session)]
+    obs.to_csv(tmp_path / "observations.tsv", sep="\t", index=False)
+    r = _row(fit_table(spec, "y"), "gain_b")
+    np.testing.assert_allclose(r["estimate"], 0.5, rtol=1e-12)
+    assert np.isnan(r["statistic"]) and np.isnan(r["p"]) and np.isnan(r["cohens_d"]) and r["se"] == 0

@@ -144,7 +144,7 @@ def _calibrate(model: Model, grid: Any, in_mask: np.ndarray, options: InferenceO
     real size (statistics and TFCE/cluster work do not depend on the values much), scaled to every hypothesis
     and the number of rearrangements asked for."""
     from ..inference.driver import run_permutations
-    from ..inference.settings import ContrastTest, Execution, MapSettings, Rearrangements
+    from ..inference.settings import Execution, MapSettings, Rearrangements
     from ..inference.tfce import TfceParams
 
     V = int(in_mask.sum())

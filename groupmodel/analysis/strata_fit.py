@@ -38,7 +38,8 @@ from .strata_effects import strata_effect_sizes
 
 #: Columns of results.tsv for a model with within-participant factors, in order (effect sizes last).
 STRATA_RESULT_COLUMNS = ["hypothesis", "stratum", "test", "tail", "estimate", "se", "statistic", "df1", "df2",
-                         "p", "z", "epsilon_gg", "epsilon_hf", "p_gg", "participants", *EFFECT_SIZE_STATS]
+                         "p", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p_hf", "participants",
+                         *EFFECT_SIZE_STATS]
 
 
 @dataclass(frozen=True)
@@ -55,6 +56,7 @@ class StratumResult:
     epsilon_gg: np.ndarray
     epsilon_hf: np.ndarray
     p_gg: np.ndarray
+    p_hf: np.ndarray
     participants: int
     log_p: np.ndarray
     residual_variance: np.ndarray
@@ -90,16 +92,17 @@ def fit_stratum(x: np.ndarray, test: StratumTest, z: np.ndarray,
             se = np.where(flat_var, 0.0, np.sqrt(m[0, 0] * sigma2))
             stat = np.where(flat_var, np.nan, est / se)
             p, log_p, zz = t_tests(stat, df_e, test.tail)  # type: ignore[arg-type]
-            return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, n, log_p, sigma2)
+            return StratumResult(est, se, stat, p, zz, 1.0, float(df_e), nan, nan, nan, nan, n, log_p, sigma2)
         ssh = np.einsum("acv,ab,bcv->v", d, np.linalg.inv(m), d)
         df1, df2 = float(a * c), float(df_e * c)
         stat = np.where(flat_var, np.nan, (ssh / df1) / (sse / df2))
         p, log_p, zz = f_tests(stat, df1, df2)
         if c == 1:
-            return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, n, log_p, sse / df2)
+            return StratumResult(nan, nan, stat, p, zz, df1, df2, nan, nan, nan, nan, n, log_p, sse / df2)
         gg, hf = sphericity_epsilons(resid, df_e)
         p_gg, _, _ = f_tests(stat, df1 * gg, df2 * gg)
-    return StratumResult(nan, nan, stat, p, zz, df1, df2, gg, hf, p_gg, n, log_p, sse / df2)
+        p_hf, _, _ = f_tests(stat, df1 * hf, df2 * hf)
+    return StratumResult(nan, nan, stat, p, zz, df1, df2, gg, hf, p_gg, p_hf, n, log_p, sse / df2)
 
 
 def sphericity_epsilons(resid: np.ndarray, df_e: int) -> tuple[np.ndarray, np.ndarray]:
@@ -142,7 +145,7 @@ class StrataTableFit:
         lines = [f"outcome {self.outcome}: {strata.n_observations} observations of "
                  f"{len(strata.participant_ids)} participants; each hypothesis in its error stratum"]
         frame = self.table.copy()
-        for col in ("estimate", "se", "statistic", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p",
+        for col in ("estimate", "se", "statistic", "z", "epsilon_gg", "epsilon_hf", "p_gg", "p_hf", "p",
                     *EFFECT_SIZE_STATS):
             frame[col] = frame[col].map(lambda v: "n/a" if pd.isna(v) else f"{v:.6g}")
         lines.append(frame.to_string(index=False))
@@ -170,6 +173,7 @@ def strata_table(model: Model, results: dict[str, StratumResult],
             "estimate": float(r.estimate[0]), "se": float(r.se[0]), "statistic": float(r.statistic[0]),
             "df1": r.df1, "df2": r.df2, "p": float(r.p[0]), "z": float(r.z[0]),
             "epsilon_gg": float(r.epsilon_gg[0]), "epsilon_hf": float(r.epsilon_hf[0]), "p_gg": float(r.p_gg[0]),
+            "p_hf": float(r.p_hf[0]),
             "participants": r.participants,
             **{k: float(sizes[k][0]) if k in sizes else np.nan for k in EFFECT_SIZE_STATS},
         })

@@ -24,7 +24,7 @@ from .strata_fit import fit_stratum
 #: Maps of a t test and of an F test in a stratum; F tests with more than one within df add SPHERICITY_MAPS.
 STRATUM_T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p")
 STRATUM_F_MAPS = ("F", "z", "p", "mlog10p")
-SPHERICITY_MAPS = ("epsilon_gg", "epsilon_hf", "p_gg")
+SPHERICITY_MAPS = ("epsilon_gg", "epsilon_hf", "p_gg", "p_hf")
 #: Maps a hypothesis in a stratum may have beyond those of a hypothesis of the same test without strata
 #: (for the memory plan).
 STRATA_EXTRA_MAPS = len(SPHERICITY_MAPS)
@@ -109,7 +109,7 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
 def _fill(m: dict[str, np.ndarray], cols: slice, r: Any) -> None:
     values = {"effect": r.estimate, "se": r.se, "t": r.statistic, "F": r.statistic, "z": r.z, "p": r.p,
               "mlog10p": mlog10p(r.log_p), "epsilon_gg": r.epsilon_gg, "epsilon_hf": r.epsilon_hf,
-              "p_gg": r.p_gg}
+              "p_gg": r.p_gg, "p_hf": r.p_hf}
     for key, arr in m.items():
         if key in values:
             arr[cols] = values[key]

@@ -74,6 +74,7 @@ STRATA_COLUMNS = {
     "epsilon_gg": "Greenhouse-Geisser (1959) epsilon (F tests with more than one within df; else n/a)",
     "epsilon_hf": "Huynh-Feldt (1976) epsilon, Lecoutre (1991) form, at most 1 (as epsilon_gg)",
     "p_gg": "p of F on df1 x epsilon_gg and df2 x epsilon_gg (as epsilon_gg)",
+    "p_hf": "p of F on df1 x epsilon_hf and df2 x epsilon_hf (as epsilon_gg)",
     "participants": "participants who entered the hypothesis (a missing within cell it needs leaves one out)",
 }
 #: How the effect-size columns read for a model with within-participant factors (each in its stratum).
@@ -130,11 +131,19 @@ CORRECTION_NOTES = {
     "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
     "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
     "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
+    "p_hf": "Huynh-Feldt (1976) corrected p: F on df1 x epsilon_hf and df2 x epsilon_hf (uncorrected for multiple "
+            "comparisons)",
     "p_gg": "Greenhouse-Geisser (1959) corrected p: F on df1 x epsilon_gg and df2 x epsilon_gg (uncorrected for "
             "multiple comparisons)",
     "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
+#: What the sphericity maps of an F test with more than one within-participant df hold.
+SPHERICITY_NOTES = {
+    "epsilon_gg": "Greenhouse-Geisser (1959) epsilon tr(S)^2 / (c tr(S^2)) of the residual cross-products S of the "
+                  "c orthonormal within contrasts; 1 under sphericity, at least 1/c",
+    "epsilon_hf": "Huynh-Feldt (1976) epsilon, Lecoutre (1991) form, at most 1",
 }
 #: What the effect-size and interval maps hold (``{level}``: the confidence level in percent).
 EFFECT_SIZE_NOTES = {
@@ -233,6 +242,8 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis, run: dict[s
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
             extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
+        if stat in SPHERICITY_NOTES:
+            extra["sphericity"] = SPHERICITY_NOTES[stat]
         if stat in EFFECT_SIZE_NOTES:
             extra.update(effect_size_note(fit, stat))
             if fit.model.strata is not None:  # in the stratum: the SD of d, or why an interval is missing

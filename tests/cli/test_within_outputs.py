@@ -80,7 +80,7 @@ def test_layout_index_sidecars_and_report(study, tmp_path: Path) -> None:
     out = tmp_path / "out"
     write_voxel_fit(fit, out, pictures=False)
     entries = {(e.hypothesis, e.statistic, e.kind): e.path for e in read_index(out)}
-    for stat in ("F", "epsilon_gg", "epsilon_hf", "p_gg", "partial_eta_squared"):
+    for stat in ("F", "epsilon_gg", "epsilon_hf", "p_gg", "p_hf", "partial_eta_squared"):
         assert entries[("session", stat, "map")] == f"hypotheses/session/{stat}.nii.gz"
     assert ("session", "partial_eta_squared_ci_lower", "map") not in entries  # n/a: no sphericity
     assert entries[("gain", "cohens_d", "map")] == "hypotheses/gain/cohens_d.nii.gz"
@@ -92,6 +92,7 @@ def test_layout_index_sidecars_and_report(study, tmp_path: Path) -> None:
     assert side["df1"] == 2 and side["df2"] == 14 and "Greenhouse-Geisser" in side["correction"]
     eta = json.loads((out / "hypotheses" / "session" / "partial_eta_squared.json").read_text())
     assert eta["partial_eta_squared_interval"].startswith("n/a")
+    assert "Huynh-Feldt" in json.loads((out / "hypotheses" / "session" / "epsilon_hf.json").read_text())["sphericity"]
     d = json.loads((out / "hypotheses" / "gain" / "cohens_d.json").read_text())
     assert "d_z" in d["cohens_d_sd"] and d["stratum"] == "within"
     assert json.loads((out / "contrasts.json").read_text())["hypotheses"]["group"]["stratum"] == "between"

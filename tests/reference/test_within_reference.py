@@ -200,6 +200,9 @@ def test_greenhouse_geisser_and_huynh_feldt_epsilons(tmp_path: Path) -> None:
     np.testing.assert_allclose(r["epsilon_hf"], min(1.0, hf), rtol=1e-10)
     np.testing.assert_allclose(r["p_gg"], stats.f.sf(r["statistic"], r["df1"] * eps, r["df2"] * eps), rtol=1e-8)
     assert r["p_gg"] > r["p"]
+    e_hf = min(1.0, hf)  # the HF-corrected p: F on the df scaled by the HF epsilon (scipy.stats.f)
+    np.testing.assert_allclose(r["p_hf"], stats.f.sf(r["statistic"], r["df1"] * e_hf, r["df2"] * e_hf), rtol=1e-8)
+    assert r["p_gg"] >= r["p_hf"] >= r["p"]
 
 
 def test_epsilon_is_one_for_two_levels_and_in_bounds(tmp_path: Path) -> None:

@@ -64,7 +64,8 @@ def test_maps_equal_table_fit_at_sampled_voxels(study, tmp_path: Path) -> None:
             stat = "t" if name == "gain" else "F"
             np.testing.assert_allclose(fit.maps[name][stat][voxel], ref.loc[name, "statistic"], rtol=1e-9)
             np.testing.assert_allclose(fit.maps[name]["p"][voxel], ref.loc[name, "p"], rtol=1e-8)
-        np.testing.assert_allclose(fit.maps["session"]["p_gg"][voxel], ref.loc["session", "p_gg"], rtol=1e-8)
+        for stat in ("p_gg", "p_hf", "epsilon_hf"):
+            np.testing.assert_allclose(fit.maps["session"][stat][voxel], ref.loc["session", stat], rtol=1e-8)
     obs.to_csv(root / "observations.tsv", sep="\t", index=False)
     s0, s2 = flat[0::3], flat[2::3]  # rows are participant-major, sessions s0, s1, s2
     np.testing.assert_allclose(fit.maps["gain"]["effect"], (s2 - s0).mean(axis=0), rtol=1e-9)

@@ -110,7 +110,7 @@ def sphericity_html(d: FolderData, name: str, mask: np.ndarray) -> str:
     """For an F test with more than one within df: the Greenhouse-Geisser and Huynh-Feldt epsilons over the
     mask and the voxels significant with the GG-corrected p (nothing otherwise)."""
     locs = d.locations
-    gg_path, hf_path, pgg_path = (locs.map(name, k) for k in ("epsilon_gg", "epsilon_hf", "p_gg"))
+    gg_path, hf_path, pgg_path, phf_path = (locs.map(name, k) for k in ("epsilon_gg", "epsilon_hf", "p_gg", "p_hf"))
     if gg_path is None or hf_path is None:
         return ""
     gg, hf = load_map(gg_path)[mask], load_map(hf_path)[mask]
@@ -121,7 +121,10 @@ def sphericity_html(d: FolderData, name: str, mask: np.ndarray) -> str:
     if pgg_path is not None:
         pgg = load_map(pgg_path)[mask]
         words += (f" {int(np.count_nonzero(pgg < 0.05))} of {pgg.size} with the Greenhouse-Geisser corrected "
-                  "p < 0.05 (uncorrected for multiple comparisons; map p_gg).")
+                  "p < 0.05 (uncorrected for multiple comparisons; map p_gg)")
+        if phf_path is not None:
+            words += f", {int(np.count_nonzero(load_map(phf_path)[mask] < 0.05))} with the Huynh-Feldt corrected p"
+        words += "."
     return paragraph(words)
 
 

@@ -143,3 +143,22 @@ def test_differences_equal_up_to_rounding_are_not_tested(tmp_path: Path) -> None
     r = _row(fit_table(spec, "y"), "gain_b")
     np.testing.assert_allclose(r["estimate"], 0.5, rtol=1e-12)
     assert np.isnan(r["statistic"]) and np.isnan(r["p"]) and np.isnan(r["cohens_d"]) and r["se"] == 0
+
+
+def test_cell_means_from_each_within_cell(tmp_path: Path) -> None:
+    """cell_means.tsv with within factors: each cell's mean is its sample mean, its SE from the pooled SD of the
+    groups at that session (numpy) and its 95% interval from scipy.stats.t.interval on that session's df."""
+    spec, data = _study(tmp_path)
+    cm = fit_table(spec, "y").cell_means.set_index(["group", "session"])
+    for session in ("s0", "s1"):
+        at = data[data.session == session]
+        values = {g: at[at.group == g]["y"].to_numpy() for g in ("a", "b")}
+        df = sum(len(v) - 1 for v in values.values())
+        sp = np.sqrt(sum((len(v) - 1) * np.var(v, ddof=1) for v in values.values()) / df)
+        for g, v in values.items():
+            row = cm.loc[(g, session)]
+            se = sp / np.sqrt(len(v))
+            lo, hi = stats.t.interval(0.95, df, loc=v.mean(), scale=se)
+            np.testing.assert_allclose([row["estimate"], row["se"], row["ci_low"], row["ci_high"]],
+                                       [v.mean(), se, lo, hi], rtol=1e-10)
+            assert row["count"] == len(v)

@@ -68,3 +68,6 @@ def test_fit_outcome_writes_strata_columns(tmp_path: Path) -> None:
     assert {"epsilon_gg", "epsilon_hf", "p_gg", "participants"} <= set(table.columns)
     side = json.loads((tmp_path / "r" / "results.json").read_text())
     assert side["strata"]["group"]["stratum"] == "between"
+    report = (tmp_path / "r" / "report.html").read_text()
+    assert "each hypothesis is tested in its error stratum" in report and 'id="strata"' in report
+    assert "p_hf" in table.columns and "cohens_d" in table.columns

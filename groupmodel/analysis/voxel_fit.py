@@ -237,8 +237,9 @@ def fit_images(
             if welch is None:
                 maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
                                                            ci_level=inference.ci_level, on_chunk=tally.add)
-            else:  # Welch's v and G: no effect sizes, mean image or participant check
-                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add)
+            else:  # Welch's v and G: intervals only (no effect sizes), no mean image or participant check
+                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add,
+                                             ci_level=inference.ci_level)
                 extras = None
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)

@@ -210,6 +210,8 @@ def effect_size_note(fit: VoxelFit, stat: str) -> dict[str, Any]:
     out: dict[str, Any] = {"effect_size": EFFECT_SIZE_NOTES[stat].format(level=number_text(100 * level))}
     if "ci_" in stat:
         out["ci_level"] = level
+    if stat in ("ci_lower", "ci_upper") and getattr(fit, "variance_groups", None) is not None:
+        out["effect_size"] += " (se and df2 of Welch's v: a residual variance per variance group)"
     return out
 
 

@@ -80,6 +80,27 @@ def test_maps_match_scipy_at_every_voxel(tmp_path: Path) -> None:
     assert any(s.get("statistic") == "df2" for s in sides)
 
 
+def test_interval_maps_match_scipy_at_every_voxel(tmp_path: Path) -> None:
+    """The interval of the effect with variance groups: scipy's Welch interval
+    (``ttest_ind(equal_var=False).confidence_interval``) at every voxel, at the spec's ``ci_level``."""
+    spec, table, data = _study(tmp_path, HYPOTHESES)
+    doc = json.loads(spec.read_text())
+    doc["inference"] = {"ci_level": 0.9}
+    spec.write_text(json.dumps(doc))
+    fit = fit_images(spec, progress=False, chunk_voxels=7)
+    g = table.group.to_numpy()
+    ref = stats.ttest_ind(data[g == "patient"], data[g == "control"], equal_var=False).confidence_interval(0.9)
+    m = fit.maps["patient_vs_control"]
+    np.testing.assert_allclose(m["ci_lower"], ref.low, rtol=1e-8)
+    np.testing.assert_allclose(m["ci_upper"], ref.high, rtol=1e-8)
+    assert "ci_lower" not in fit.maps["group"] and "cohens_d" not in m
+    out = tmp_path / "out"
+    write_voxel_fit(fit, out, pictures=False)
+    side = json.loads((out / "hypotheses" / "patient_vs_control" / "ci_lower.json").read_text())
+    assert side["ci_level"] == 0.9 and "Welch" in side["effect_size"]
+    assert nib.load(out / "hypotheses" / "patient_vs_control" / "ci_upper.nii.gz").shape == SHAPE
+
+
 def _reference_p(data: np.ndarray, groups: np.ndarray, perm: np.ndarray | None, flips: np.ndarray | None
                  ) -> tuple[np.ndarray, np.ndarray]:
     """Uncorrected and FWE p of |v| (patient vs control) recomputed with scipy over the given rearrangements."""

@@ -116,9 +116,11 @@ def _fit(args: argparse.Namespace) -> int:
 def _fit_table(args: argparse.Namespace) -> int:
     from ..analysis.table_fit import fit_table
     from ..outputs.fit_files import write_table_fit
+    from ..runtime.log import StageLog
 
     fit = fit_table(args.spec, args.outcome, ci_level=args.ci_level)
-    print_model_report(fit.model)
+    print_model_report(fit.model, findings=False)
+    log_findings(StageLog(quiet=args.quiet), fit.model.findings, [])
     print()
     print(fit.format())
     write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))

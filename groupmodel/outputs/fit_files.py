@@ -78,6 +78,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        "warnings": [], "findings": [f.as_dict() for f in fit.model.findings],
         **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 

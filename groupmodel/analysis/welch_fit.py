@@ -14,6 +14,7 @@ import pandas as pd
 
 from ..engine.effect_sizes import DEFAULT_CI_LEVEL, t_interval
 from ..engine.ols import Prepared
+from ..engine.participant_check import ParticipantCheck
 from ..engine.welch import WelchChunk, WelchPrepared, fit_chunk_welch, prepare_welch
 from ..model.assembly import Model
 from ..model.variance_groups import VarianceGroups, variance_groups_of
@@ -94,19 +95,26 @@ def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], vox
 
 def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, progress: bool,
                on_chunk: Any = None, ci_level: float = DEFAULT_CI_LEVEL
-               ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
+               ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """The maps of every hypothesis (:data:`WELCH_T_MAPS`, :data:`WELCH_F_MAPS`; the corrected p maps allocated;
     intervals at ``ci_level``) and the pooled residual variance, chunk by chunk; ``on_chunk(y)`` sees every
-    chunk's data too."""
+    chunk's data too.  Also the mean input image and the per-participant residual sums (of the OLS fit, whose
+    estimates v and G share), as a pooled fit gives them."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in (WELCH_T_MAPS if h.test == "t" else WELCH_F_MAPS)}
             for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
+    mean_input = np.empty(n_vox)
+    design = model.design.matrix
+    check = ParticipantCheck.empty(model.design.n_observations)
+    solve = np.linalg.pinv(design)  # the OLS (minimum-norm) estimates: the same fitted values for any solution
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
         for cols, y in data.chunks(chunk_voxels):
             res = fit_chunk_welch(setup.prepared, y)
             resid_var[cols] = res.residual_variance
+            mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
+            check.add(design, y, solve @ np.asarray(y, dtype=np.float64))
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
@@ -122,7 +130,7 @@ def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, pr
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
-    return maps, resid_var
+    return maps, resid_var, (mean_input, check)
 
 
 def table_welch(model: Model, setup: WelchSetup, y: np.ndarray, columns: list[str],

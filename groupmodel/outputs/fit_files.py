@@ -259,6 +259,7 @@ def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[
         "hypotheses": summary_records(frame), "columns": summary_columns(fit),
         "provenance": run,
         "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
+        **({"variance_groups": fit.variance_groups} if getattr(fit, "variance_groups", None) is not None else {}),
     })
     return ["summary.tsv", "summary.json"]
 

@@ -114,8 +114,8 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str,
     result = fit_chunk(prepared, y)
     table, record = results_table(model, result, ci_level=level), None
     setup = welch_setup(model, prepared)
-    if setup is not None:  # Welch's v and G with their approximate df (no effect sizes: n/a columns)
-        table, record = table_welch(model, setup, y, RESULT_COLUMNS)
+    if setup is not None:  # Welch's v and G with their approximate df (intervals; the effect sizes n/a)
+        table, record = table_welch(model, setup, y, RESULT_COLUMNS, ci_level=level)
     tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
     tally.add(y)
     model.findings += [Finding("warning", "unequal_variances", m) for m in tally.table_findings()]

@@ -254,9 +254,10 @@ def fit_images(
                 maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
                                                            ci_level=inference.ci_level, on_chunk=tally.add)
                 mean_input, df_resid = extras[0], prepared.df_resid
-            else:  # Welch's v and G: no effect sizes, mean image or participant check
-                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally.add)
-                extras, mean_input, df_resid = None, None, prepared.df_resid
+            else:  # Welch's v and G: intervals only (no effect sizes)
+                maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally.add,
+                                                     ci_level=inference.ci_level)
+                mean_input, df_resid = extras[0], prepared.df_resid
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid))
@@ -287,7 +288,7 @@ def fit_images(
                                                  [(r.path, r.volume) for r in source.refs], model.sample),
                         clock=clock, mean_input=mean_input,
                         participant_residuals=None if extras is None else residual_table(
-                            model.design.participant_ids, extras[1]),
+                            model.design.participant_ids, extras[1], None if welch is None else welch.groups.labels),
                         runtime=plan.as_dict(),
                         variance_groups=welch_record(welch) if welch is not None else None, degrees=degrees)
     finally:

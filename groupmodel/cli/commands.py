@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from ..errors import OutputError
+from ..errors import InputError, OutputError
 from ..outputs.folder import OutputFolder, OutputLock
 from .printing import (
     log_findings,
@@ -77,11 +77,29 @@ def check_build_images(model: Any) -> None:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
+    if args.outcome:
+        refuse_image_options(args)
     if args.dry_run:
         return _dry_run(args)
     with OutputLock(args.out) as lock:  # a second run into the same --out is refused at once
         print_stale_lock(lock.stale)
         return _fit(args)
+
+
+#: Options of a voxelwise fit that a table fit (--outcome) cannot honour: (attribute, option, value when not given).
+_IMAGE_OPTIONS = (("permutations", "--permutations", None), ("tfce", "--tfce", False),
+                  ("cluster_threshold", "--cluster-threshold", None), ("blocks", "--blocks", None),
+                  ("whole_blocks", "--whole-blocks", False), ("method", "--method", "auto"),
+                  ("checkpoint", "--checkpoint", None), ("resume", "--resume", False), ("mask", "--mask", None))
+
+
+def refuse_image_options(args: argparse.Namespace) -> None:
+    """A usage error (exit 2, before any work) for options of a voxelwise fit given with --outcome, which would
+    otherwise be ignored (a table fit reports parametric p only)."""
+    given = [opt for name, opt, unset in _IMAGE_OPTIONS if getattr(args, name, unset) not in (unset, 0)]
+    if given:
+        raise InputError(f"fit --outcome fits one table column with parametric p: {', '.join(given)} "
+                         "apply to voxelwise fits only; leave them out, or leave out --outcome to fit the images")
 
 
 def _dry_run(args: argparse.Namespace) -> int:
@@ -116,9 +134,11 @@ def _fit(args: argparse.Namespace) -> int:
 def _fit_table(args: argparse.Namespace) -> int:
     from ..analysis.table_fit import fit_table
     from ..outputs.fit_files import write_table_fit
+    from ..runtime.log import StageLog
 
     fit = fit_table(args.spec, args.outcome, ci_level=args.ci_level)
-    print_model_report(fit.model)
+    print_model_report(fit.model, findings=False)
+    log_findings(StageLog(quiet=args.quiet), fit.model.findings, [])
     print()
     print(fit.format())
     write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))

@@ -27,13 +27,14 @@ def print_stale_lock(stale: StaleLock | None) -> None:
         print(f"replaced {stale.path.name}: the lock of process {stale.pid}, which ended without releasing it")
 
 
-def print_model_report(model: Model) -> None:
-    """The model of ``build`` and of a table fit: size, columns, exclusions, findings, hypotheses."""
+def print_model_report(model: Model, findings: bool = True) -> None:
+    """The model of ``build`` and of a table fit: size, columns, exclusions, findings (unless ``findings`` is
+    False: a fit logs them on stderr instead, :func:`log_findings`), hypotheses."""
     d = model.design
     print(f"{model.spec.name}: {d.n_observations} observations, {d.n_columns} columns "
           f"({', '.join(d.column_names)})")
     print_exclusions(model)
-    if model.findings:
+    if model.findings and findings:
         print("findings:")
         for finding in model.findings:
             print(f"  {finding}")

@@ -117,6 +117,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        "warnings": [], "findings": [f.as_dict() for f in fit.model.findings],
         **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 
@@ -266,6 +267,8 @@ def effect_size_note(fit: VoxelFit, stat: str) -> dict[str, Any]:
     out: dict[str, Any] = {"effect_size": EFFECT_SIZE_NOTES[stat].format(level=number_text(100 * level))}
     if "ci_" in stat:
         out["ci_level"] = level
+    if stat in ("ci_lower", "ci_upper") and getattr(fit, "variance_groups", None) is not None:
+        out["effect_size"] += " (se and df2 of Welch's v: a residual variance per variance group)"
     return out
 
 
@@ -312,6 +315,7 @@ def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[
         "hypotheses": summary_records(frame), "columns": summary_columns(fit),
         "provenance": run,
         "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
+        **({"variance_groups": fit.variance_groups} if getattr(fit, "variance_groups", None) is not None else {}),
     })
     return ["summary.tsv", "summary.json"]
 

@@ -230,9 +230,11 @@ def _participants(d: FolderData, pictures: bool) -> str:
         return paragraph("No per-participant check in this folder (participants_residuals.tsv).", "note")
     unusual = r["unusual"].astype(str).str.lower().isin(["true", "1", "yes"]).to_numpy()
     named = r.loc[unusual, "participant_id"].astype(str).tolist()
+    groups = (d.summary or {}).get("variance_groups") or {}
+    median = f"the median of its variance group ({groups['factor']})" if groups.get("factor") else "the median"
     words = (f"Unusual: {', '.join(named)} (mean |residual| more than {num(UNUSUAL_Z)} robust SDs above "
-             "the median): look at these images before reading the results." if named
-             else f"No participant stands out (none more than {num(UNUSUAL_Z)} robust SDs above the median).")
+             f"{median}): look at these images before reading the results." if named
+             else f"No participant stands out (none more than {num(UNUSUAL_Z)} robust SDs above {median}).")
     ids = r["participant_id"].astype(str).tolist()
     pic = (residual_dots(ids, r["mean_abs_residual"].to_numpy(float), unusual, "per-participant residuals")
            if pictures else None)

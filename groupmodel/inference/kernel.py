@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 
 from .clusters import max_cluster_size
+from .fastpath import compiled_scan
 from .freedman_lane import ContrastPlan, residualise, stack_rows
 from .graph import Adjacency
 from .tfce import TfceParams, tfce
@@ -396,6 +397,9 @@ def _scan(
     W, bad = chunk.W, chunk.bad
     v = W.shape[1]
     counts = np.zeros(v, dtype=count_type(B))
+    fused = compiled_scan() if observed is None else None
+    if fused is not None:
+        return _scan_compiled(fused, plan, A, chunk, threshold, tile, maps, buffers, counts)
     tile_maxima = []
     for ts in range(0, v, tile):
         te = min(v, ts + tile)
@@ -420,6 +424,40 @@ def _scan(
         if o.shape[1]:
             tile_maxima.append(np.fmax.reduce(o, axis=1))
     maxima = np.fmax.reduce(np.stack(tile_maxima), axis=0) if tile_maxima else np.full(B, -np.inf)
+    return ChunkNulls(counts, maxima)
+
+
+def _scan_compiled(
+    fused: Any,
+    plan: ContrastPlan,
+    A: np.ndarray,
+    chunk: UnitChunk,
+    threshold: np.ndarray,
+    tile: int,
+    maps: np.ndarray | None,
+    buffers: _Buffers,
+    counts: np.ndarray,
+) -> ChunkNulls:
+    """The tile loop of :func:`chunk_nulls` with the element-wise work of each tile in one compiled pass
+    (:func:`groupmodel.inference.compiled_scan.scan_tile`): the same bits as :func:`_tile` and the
+    counting of :func:`_scan`, which are its reference."""
+    B = A.shape[0] // plan.m
+    W, bad = chunk.W, chunk.bad
+    v = W.shape[1]
+    orient = fused.ORIENT_ABS if plan.kind == "F" or plan.tail == "two-sided" else (
+        fused.ORIENT_SIGNED if plan.tail == "greater" else fused.ORIENT_LESS)
+    maxima = np.full(B, np.nan)
+    no_stats = np.empty((0, 0))
+    for ts in range(0, v, tile):
+        te = min(v, ts + tile)
+        tile_bad = bad[(bad >= ts) & (bad < te)] - ts if bad.size else bad
+        G = buffers.views(te - ts)[0]
+        np.matmul(A, W[:, ts:te], out=G)
+        stats = maps[:, ts:te] if maps is not None else no_stats
+        fused.scan_tile(G, plan.m, plan.q, plan.kind == "t", orient, float(plan.df), tile_bad,
+                        threshold[ts:te], counts[ts:te], maxima, stats)
+    if v == 0:
+        maxima.fill(-np.inf)
     return ChunkNulls(counts, maxima)
 
 

@@ -37,7 +37,7 @@ from .clusters import max_cluster_size
 from .fastpath import compiled_scan
 from .freedman_lane import ContrastPlan, residualise, stack_rows
 from .graph import Adjacency
-from .tfce import TfceParams, tfce
+from .tfce import TfceParams, tfce_max
 
 __all__ = [
     "ChunkNulls",
@@ -55,6 +55,7 @@ __all__ = [
     "oriented_stat",
     "tile_width",
     "unit_columns",
+    "warm_kernels",
     "worker_init",
     "worker_nulls",
 ]
@@ -492,8 +493,7 @@ def map_nulls(maps: np.ndarray, spec: MapSpec, adjacency: Adjacency) -> tuple[np
         x, two = enhance_input(maps[b], spec)
         if spec.tfce is not None:
             p = spec.tfce
-            t = tfce(x, adjacency, p.dh, p.E, p.H, p.rule, two_sided=two)
-            tmax[b] = np.abs(t).max() if t.size else 0.0
+            tmax[b] = tfce_max(x, adjacency, p.dh, p.E, p.H, p.rule, two_sided=two)
         if spec.cluster_threshold is not None:
             cmax[b] = max_cluster_size(x, spec.cluster_threshold, adjacency, two_sided=two)
     return tmax, cmax
@@ -503,8 +503,22 @@ _WORKER: dict[str, Any] = {}
 
 
 def worker_init(adjacency: Adjacency) -> None:
-    """Install the adjacency in a worker process (shipped once, not with every batch)."""
+    """Install the adjacency in a worker process (shipped once, not with every batch), and load the compiled
+    kernels (if any) before the first batch arrives."""
     _WORKER["adjacency"] = adjacency
+    warm_kernels()
+
+
+def warm_kernels() -> None:
+    """Load (or, the first time on a machine, compile and cache) the compiled TFCE and cluster kernels by
+    enhancing a tiny map, so that no batch pays for it; nothing without the extra ``fast``.  The caller of
+    the worker processes runs it first, so the workers load the cached code and none compiles."""
+    from .graph import grid_adjacency
+
+    adjacency = grid_adjacency(np.ones((3, 3, 3), dtype=bool))
+    x = np.linspace(-3.0, 3.0, adjacency.n)
+    tfce_max(x, adjacency, 0.5, two_sided=True)
+    max_cluster_size(x, 1.0, adjacency, two_sided=True)
 
 
 def worker_nulls(maps: np.ndarray, spec: MapSpec) -> tuple[np.ndarray, np.ndarray]:

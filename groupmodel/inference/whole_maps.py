@@ -26,7 +26,7 @@ from ..runtime.executors import InlineExecutor, ProcessExecutor
 from .clusters import Clusters, label_clusters, stat_threshold
 from .freedman_lane import ContrastPlan
 from .graph import Adjacency
-from .kernel import MapSpec, enhance_input, map_nulls, worker_init, worker_nulls
+from .kernel import MapSpec, enhance_input, map_nulls, warm_kernels, worker_init, worker_nulls
 from .results import ClusterResult, TfceResult, WholeMapResult, fwe_p
 from .settings import MapSettings
 from .tfce import default_step, tfce
@@ -59,6 +59,7 @@ class MapWorkers:
         if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
             adjacency.neighbour_table()
             adjacency.neighbour_chain()
+        warm_kernels()  # compiled here once (if not cached yet), so that the workers only load the cache
         self.pool = ProcessExecutor(self.n_jobs, initializer=worker_init, initargs=(adjacency,))
 
     def submit(self, maps: np.ndarray, spec: MapSpec) -> Future:

@@ -133,6 +133,61 @@ def _count_and_max(o: np.ndarray, threshold: np.ndarray, counts: np.ndarray) -> 
 
 
 @numba.njit(**_JIT)
+def _count_max_one(g: np.ndarray, orient: int, threshold: np.ndarray, counts: np.ndarray) -> float:
+    """m = 1 without maps or missing data: :func:`_row_one` and :func:`_count_and_max` in one loop."""
+    top = -np.inf
+    seen = 0
+    for j in range(g.size):
+        x = g[j]
+        if orient == ORIENT_ABS:
+            x = abs(x)
+        elif orient == ORIENT_LESS:
+            x = -x
+        counts[j] += x >= threshold[j]
+        top = x if x > top else top
+        seen += x == x
+    return top if seen else np.nan
+
+
+@numba.njit(**_JIT)
+def _count_max_many(
+    g0: np.ndarray, last: np.ndarray, a: np.ndarray, rest: np.ndarray, fresh: bool, orient: int,
+    threshold: np.ndarray, counts: np.ndarray,
+) -> float:
+    """m > q without maps or missing data: the last nuisance row's subtraction (from 1 when it is the only
+    one, ``fresh``), :func:`_row_many` and :func:`_count_and_max` in one loop, the same operations in the
+    same order."""
+    top = -np.inf
+    seen = 0
+    for j in range(g0.size):
+        r = (1.0 if fresh else rest[j]) - last[j] * last[j]
+        if orient == ORIENT_ABS:
+            x = a[j] / r
+        elif orient == ORIENT_SIGNED:
+            x = np.copysign(a[j], g0[j]) / r
+        else:
+            x = (-np.copysign(a[j], g0[j])) / r
+        counts[j] += x >= threshold[j]
+        top = x if x > top else top
+        seen += x == x
+    return top if seen else np.nan
+
+
+@numba.njit(**_JIT)
+def _fused_row(
+    G: np.ndarray, b: int, B: int, m: int, q: int, orient: int, a: np.ndarray, rest: np.ndarray,
+    threshold: np.ndarray, counts: np.ndarray,
+) -> float:
+    """One rearrangement's counts and maximum when no map is written and every element has data (the
+    common case), in fewer passes: the last product row is read in the counting loop."""
+    if m == 1:
+        return _count_max_one(G[b], orient, threshold, counts)
+    # Rows 0 .. m - 2 as in _sums, the last (nuisance) row in the counting loop.
+    _sums(G, b, B, m - 1, q, a, rest)
+    return _count_max_many(G[b], G[(m - 1) * B + b], a, rest, m - 1 == q, orient, threshold, counts)
+
+
+@numba.njit(**_JIT)
 def scan_tile(
     G: np.ndarray,
     m: int,
@@ -172,7 +227,14 @@ def scan_tile(
     o = np.empty(w)
     a = np.empty(w)
     rest = np.empty(w)
+    fused = bad.size == 0 and (m == 1 or m > q)
     for b in range(B):
+        if fused and b >= stats.shape[0]:
+            top = _fused_row(G, b, B, m, q, orient, a, rest, threshold, counts)
+            old = maxima[b]
+            if old != old or top > old:
+                maxima[b] = top
+            continue
         if m == 1:
             if b < stats.shape[0]:
                 _stats_one(G, b, is_t, df, stats[b])

@@ -12,7 +12,10 @@ are scaled to ``||W|| = 1`` per voxel once (statistics do not change), and the l
 maximises a cheap increasing function of the statistic (see ``_tile``), converting only what it
 keeps.  Each chunk is split into one contiguous part per thread; every thread does its own products
 (with BLAS held to one thread) and the element-wise work after them, so that work, which BLAS's own
-threads would leave to a single core, runs on all of them.
+threads would leave to a single core, runs on all of them.  With the optional extra ``fast`` the element-wise
+work after each product of a null batch runs as one compiled pass over the tile
+(:mod:`groupmodel.inference.compiled_scan`), which forms the same values with the same operations as
+:func:`_tile` and the counting in :func:`_scan`, its numpy reference: the same bits either way.
 Voxels whose residuals are at rounding level (constant data) get NaN statistics and p values.
 
 Statistics used for inference ("oriented" statistics): ``|t|`` for two-sided t tests (so the

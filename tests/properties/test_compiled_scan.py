@@ -51,10 +51,11 @@ _CASES = [
 ]
 
 
-def _data(rng: np.random.Generator, n: int, v: int) -> np.ndarray:
+def _data(rng: np.random.Generator, n: int, v: int, missing: bool = True) -> np.ndarray:
     Y = rng.standard_normal((n, v))
-    Y[:, 3] = 2.5  # constant: no data (NaN statistic, -inf working statistic)
-    Y[:, v - 1] = 0.0
+    if missing:
+        Y[:, 3] = 2.5  # constant: no data (NaN statistic, -inf working statistic)
+        Y[:, v - 1] = 0.0
     return Y
 
 
@@ -62,7 +63,8 @@ def _data(rng: np.random.Generator, n: int, v: int) -> np.ndarray:
     "weights,kind,tail,two_groups_only",
     [(*case, False) for case in _CASES] + [(*case, True) for case in _CASES[:3]],
 )
-def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two_groups_only):
+@pytest.mark.parametrize("missing", [True, False])
+def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two_groups_only, missing):
     rng = np.random.default_rng(len(weights) * 7 + len(tail) + two_groups_only)
     n, v = 24, 700
     X = _design(n, rng, 3)
@@ -71,7 +73,7 @@ def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two
         X, L = X[:, :2], L[:, :2]
     plan = plan_contrast(X, L, kind=kind, tail=tail)
     pset = permutation_set(n, 61, plan.method, seed=3, classes=plan.classes)
-    chunk = unit_columns(plan, _data(rng, n, v))
+    chunk = unit_columns(plan, _data(rng, n, v, missing))
     first = stack_rows(plan, *pset.batch(0, 30))
     later = stack_rows(plan, *pset.batch(30, 61))
     tile = tile_width(first.shape[0])
@@ -90,8 +92,11 @@ def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two
     np.testing.assert_array_equal(got_plain.counts, ref.counts)
     np.testing.assert_array_equal(got_plain.maxima, ref_plain.maxima)
     np.testing.assert_array_equal(got_maps.view(np.int64), ref_maps.view(np.int64))
-    assert np.isnan(got_maps[:, [3, v - 1]]).all()
-    assert np.all(got.counts[[3, v - 1]] == 0)
+    if missing:
+        assert np.isnan(got_maps[:, [3, v - 1]]).all()
+        assert np.all(got.counts[[3, v - 1]] == 0)
+    else:
+        assert not np.isnan(got_maps).any()
 
 
 def test_compiled_counts_match_lstsq_refits(fused):

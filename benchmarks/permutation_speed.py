@@ -18,9 +18,12 @@ What it does (all data invented and seeded):
      permutation.  The floor of the full-design product (B p rows, as in REFERENCES.md) is printed
      for comparison;
    * the engine (``run_permutations``) for max-statistic voxel FWE with J permutations (default
-     5,000): wall time per permutation and its ratio to the floor (goal <= 1.5);
-   * TFCE: CPU time per map of the two-sided TFCE of null maps (one process; the compiled kernels when
-     numba is installed, else numpy; ``tfce_speed.py`` compares the two), and the engine with TFCE for
+     5,000), with the numpy element-wise pass and the compiled one (extra ``fast``) alternating
+     (``--rounds`` runs each, the floor measured again after each round): wall and CPU time per
+     permutation, their ratios to the floor (goal <= 1.2), and whether both paths gave the same bits;
+   * TFCE: CPU time per map of the workers' task (largest |TFCE| of a two-sided null map; one process; the
+     compiled kernels when numba is installed, else numpy; ``tfce_speed.py`` compares the two), and the
+     engine with TFCE (CPU of the main process and of the workers printed) for
      a smaller number of permutations with worker processes, scaled to 5,000 (said so).
 
 Nothing is asserted; the figures are printed, with the load average (other processes on the
@@ -31,13 +34,16 @@ Usage::
     python benchmarks/permutation_speed.py                 # full run (several minutes)
     python benchmarks/permutation_speed.py --quick
     python benchmarks/permutation_speed.py --perms 1000 --tfce-perms 100 --jobs 2
-    python benchmarks/permutation_speed.py --tfce-perms 5000   # TFCE measured in full (~8 min more)
+    python benchmarks/permutation_speed.py --tfce-perms 5000   # TFCE measured in full (minutes more)
+    python benchmarks/permutation_speed.py --skip-naive --skip-tfce --perms 2000 --rounds 3   # max statistic only
+    python benchmarks/permutation_speed.py --skip-maxstat --tfce-perms 5000                  # TFCE only
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import resource
 import time
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
@@ -140,6 +146,12 @@ def naive_refit(X: np.ndarray, L: np.ndarray, Y: np.ndarray, perms: np.ndarray) 
         s2 = ((Ys - X @ beta) ** 2).sum(axis=0) / df
         _ = (L @ beta)[0] / np.sqrt(s2 * c[0, 0])
     return (time.perf_counter() - t0) / len(perms)
+
+
+def _children_cpu() -> float:
+    """CPU seconds of the finished worker processes of this process."""
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return kids.ru_utime + kids.ru_stime
 
 
 def max_statistic(args: argparse.Namespace, X: np.ndarray, L: np.ndarray, Y: np.ndarray, A: np.ndarray,
@@ -248,12 +260,16 @@ def main() -> None:
     with_tfce, jobs = MapSettings(adjacency=adj, tfce=TfceParams()), Execution(n_jobs=args.jobs)
     run_permutations(ContrastTest(X, L), Y, Rearrangements(n_perm=2, seed=1), with_tfce, jobs)
     fixed = time.perf_counter() - t0
-    t0 = time.perf_counter()
+    t0, c0, k0 = time.perf_counter(), time.process_time(), _children_cpu()
     rt = run_permutations(ContrastTest(X, L), Y, Rearrangements(n_perm=JT, seed=1), with_tfce, jobs)
     wall = time.perf_counter() - t0
+    main_cpu, workers_cpu = time.process_time() - c0, _children_cpu() - k0
     scaled = fixed + max(wall - fixed, 0.0) * 5000 / JT
     print(f"engine with TFCE, {JT} permutations, {args.jobs} worker processes: {wall:.1f} s wall, of which "
           f"about {fixed:.1f} s fixed (start-up, observed map; dh {rt.whole_map(TfceResult).params.dh:.4f})")
+    print(f"   CPU: main process {main_cpu:.0f} s, worker processes {workers_cpu:.0f} s (load average now "
+          f"{os.getloadavg()[0]:.2f}; on idle cores the wall time would be about the larger of the main process's "
+          "share and (main + workers) / cores)")
     if JT >= 5000:
         print(f"   {JT} permutations measured: {wall / 60:.1f} minutes (goal for 5000: < 2.5)")
     elif wall > 2 * fixed:

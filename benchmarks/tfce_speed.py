@@ -10,7 +10,11 @@ What it does (data invented and seeded, as in ``permutation_speed.py``):
    implementation and the compiled one, side by side and alternating (numpy, compiled, numpy, ...), so
    that the load of other processes on the machine hits both alike; prints the medians (CPU and wall)
    and checks that both give the same maps.
-4. Times, in fresh interpreters, numba's first compilation (an empty cache directory) and the load of the
+4. Times the per-map task of the engine's worker processes on the compiled path, alternating: as it was
+   (``abs(tfce(map)).max()``: levels in numpy, the whole map returned) and as it is
+   (:func:`~groupmodel.inference.tfce.tfce_max`: levels and the maximum inside the kernel), and what shipping
+   a batch of maps to a worker costs per map (pickle and unpickle, as the process pool does).
+5. Times, in fresh interpreters, numba's first compilation (an empty cache directory) and the load of the
    cached machine code (the same directory again): what a worker process pays on its first map.
 
 Nothing is asserted; the figures are printed with the load average.  ``--quick`` runs a small grid.
@@ -26,6 +30,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import pickle
 import subprocess
 import sys
 import tempfile
@@ -37,7 +42,7 @@ from scipy import ndimage
 
 from groupmodel.inference.fastpath import ENV_NO_COMPILED, compiled_kernels
 from groupmodel.inference.graph import grid_adjacency
-from groupmodel.inference.tfce import tfce
+from groupmodel.inference.tfce import tfce, tfce_max
 
 SEED = 20240606
 FULL = {"shape": (91, 109, 91), "semi_axes": (36.0, 45.0, 34.0)}
@@ -50,7 +55,7 @@ t0 = time.perf_counter()
 import numpy as np
 from groupmodel.inference.fastpath import compiled_kernels
 from groupmodel.inference.graph import grid_adjacency
-from groupmodel.inference.tfce import tfce
+from groupmodel.inference.tfce import tfce, tfce_max
 assert compiled_kernels() is not None
 t1 = time.perf_counter()
 mask = np.ones((6, 6, 6), bool)
@@ -98,6 +103,25 @@ def per_map(maps: np.ndarray, adj: object, dh: float) -> dict[str, np.ndarray]:
         scale = np.abs(ref).max()
         times["diff"].append(float(np.max(np.abs(fast - ref)) / scale) if scale else 0.0)
     return {k: np.asarray(v) for k, v in times.items()}
+
+
+def task_per_map(maps: np.ndarray, adj: object, dh: float) -> dict[str, float]:
+    """CPU seconds per map of the workers' task, as it was and as it is, alternating; and of shipping maps."""
+    old, new, same = [], [], True
+    for x in maps:
+        c0 = time.process_time()
+        a = float(np.abs(tfce(x, adj, dh, two_sided=True)).max())
+        c1 = time.process_time()
+        b = tfce_max(x, adj, dh, two_sided=True)
+        c2 = time.process_time()
+        old.append(c1 - c0)
+        new.append(c2 - c1)
+        same &= a == b
+    c0 = time.process_time()
+    for _ in range(3):
+        pickle.loads(pickle.dumps(maps.copy(), protocol=pickle.HIGHEST_PROTOCOL))
+    ship = (time.process_time() - c0) / (3 * len(maps))
+    return {"old": float(np.median(old)), "new": float(np.median(new)), "same": same, "ship": ship}
 
 
 def compile_times() -> tuple[float, float, float, float]:
@@ -153,6 +177,11 @@ def main() -> None:
     print(f"   largest difference between the paths: {t['diff'].max():.1e} of the map's largest |TFCE|")
     print(f"   x 5000 permutations: numpy {5000 * med['numpy_cpu'] / 60:.1f} CPU-minutes, compiled "
           f"{5000 * med['compiled_cpu'] / 60:.1f}")
+    task = task_per_map(maps * 3.0, adj, dh * 3.0)
+    print(f"the workers' per-map task (compiled, two-sided; medians of {len(maps)}, alternating): as it was "
+          f"(levels in numpy, abs(tfce(map)).max()) {1e3 * task['old']:.1f} ms CPU; levels and maximum in the kernel "
+          f"{1e3 * task['new']:.1f} ms CPU ({task['old'] / task['new']:.2f}x less; same maxima: {task['same']}); "
+          f"shipping a batch to a worker (pickle + unpickle) {1e3 * task['ship']:.1f} ms CPU per map")
     imp0, first0, imp1, first1 = compile_times()
     print(f"numba in a fresh interpreter: first compilation {first0:.1f} s (import {imp0:.2f} s); "
           f"cached load {first1:.2f} s (import {imp1:.2f} s)")

@@ -34,7 +34,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["grid_components", "tfce_grid"]
+__all__ = ["grid_components", "grid_levels", "tfce_grid", "tfce_grid_max"]
 
 _JIT = {"cache": True, "nogil": True}
 
@@ -274,6 +274,51 @@ def tfce_grid(
         elif s < 0:
             out[e] = -value[position[e]]
     return out
+
+
+@numba.njit(**_JIT)
+def tfce_grid_max(
+    signed: np.ndarray,
+    K: int,
+    gindex: np.ndarray,
+    offsets: np.ndarray,
+    earlier: np.ndarray,
+    padded_size: int,
+    S: np.ndarray,
+    E: float,
+) -> float:
+    """The largest |TFCE| of :func:`tfce_grid` (what a null map contributes), without the map."""
+    grid, codes, per_level, pairs_level = _earlier_codes(signed, gindex, offsets, earlier, padded_size, K)
+    _, start, nb = _entering_layout(signed, grid, codes, per_level, pairs_level, gindex, offsets)
+    value = _merge(start, nb, per_level, S, E)
+    top = 0.0
+    for p in range(value.size):
+        v = abs(value[p])
+        if v > top:
+            top = v
+    return top
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def grid_levels(x: np.ndarray, dh: float, shift: float, two_sided: bool) -> tuple[np.ndarray, int]:
+    """Signed TFCE levels and their largest magnitude K, in one pass: the same IEEE operations as
+    :func:`groupmodel.inference.tfce.tfce_levels` (``floor(x / dh + shift)`` where positive, else 0; minus
+    the same of ``-x`` when two-sided), so the same integers.  ``shift`` is the rule's shift plus the slack."""
+    n = x.size
+    levels = np.empty(n, np.int32)
+    K = 0
+    for e in range(n):
+        s = x[e] / dh + shift
+        lev = np.int32(np.floor(s)) if s > 0.0 else np.int32(0)
+        if two_sided:
+            s = (-x[e]) / dh + shift
+            if s > 0.0:
+                lev -= np.int32(np.floor(s))
+        levels[e] = lev
+        a = abs(lev)
+        if a > K:
+            K = a
+    return levels, K
 
 
 @numba.njit(**_JIT)

@@ -12,7 +12,10 @@ are scaled to ``||W|| = 1`` per voxel once (statistics do not change), and the l
 maximises a cheap increasing function of the statistic (see ``_tile``), converting only what it
 keeps.  Each chunk is split into one contiguous part per thread; every thread does its own products
 (with BLAS held to one thread) and the element-wise work after them, so that work, which BLAS's own
-threads would leave to a single core, runs on all of them.
+threads would leave to a single core, runs on all of them.  With the optional extra ``fast`` the element-wise
+work after each product of a null batch runs as one compiled pass over the tile
+(:mod:`groupmodel.inference.compiled_scan`), which forms the same values with the same operations as
+:func:`_tile` and the counting in :func:`_scan`, its numpy reference: the same bits either way.
 Voxels whose residuals are at rounding level (constant data) get NaN statistics and p values.
 
 Statistics used for inference ("oriented" statistics): ``|t|`` for two-sided t tests (so the
@@ -34,9 +37,10 @@ from typing import Any
 import numpy as np
 
 from .clusters import max_cluster_size
+from .fastpath import compiled_scan
 from .freedman_lane import ContrastPlan, residualise, stack_rows
 from .graph import Adjacency
-from .tfce import TfceParams, tfce
+from .tfce import TfceParams, tfce_max
 
 __all__ = [
     "ChunkNulls",
@@ -54,6 +58,7 @@ __all__ = [
     "oriented_stat",
     "tile_width",
     "unit_columns",
+    "warm_kernels",
     "worker_init",
     "worker_nulls",
 ]
@@ -396,6 +401,9 @@ def _scan(
     W, bad = chunk.W, chunk.bad
     v = W.shape[1]
     counts = np.zeros(v, dtype=count_type(B))
+    fused = compiled_scan() if observed is None else None
+    if fused is not None:
+        return _scan_compiled(fused, plan, A, chunk, threshold, tile, maps, buffers, counts)
     tile_maxima = []
     for ts in range(0, v, tile):
         te = min(v, ts + tile)
@@ -420,6 +428,40 @@ def _scan(
         if o.shape[1]:
             tile_maxima.append(np.fmax.reduce(o, axis=1))
     maxima = np.fmax.reduce(np.stack(tile_maxima), axis=0) if tile_maxima else np.full(B, -np.inf)
+    return ChunkNulls(counts, maxima)
+
+
+def _scan_compiled(
+    fused: Any,
+    plan: ContrastPlan,
+    A: np.ndarray,
+    chunk: UnitChunk,
+    threshold: np.ndarray,
+    tile: int,
+    maps: np.ndarray | None,
+    buffers: _Buffers,
+    counts: np.ndarray,
+) -> ChunkNulls:
+    """The tile loop of :func:`chunk_nulls` with the element-wise work of each tile in one compiled pass
+    (:func:`groupmodel.inference.compiled_scan.scan_tile`): the same bits as :func:`_tile` and the
+    counting of :func:`_scan`, which are its reference."""
+    B = A.shape[0] // plan.m
+    W, bad = chunk.W, chunk.bad
+    v = W.shape[1]
+    orient = fused.ORIENT_ABS if plan.kind == "F" or plan.tail == "two-sided" else (
+        fused.ORIENT_SIGNED if plan.tail == "greater" else fused.ORIENT_LESS)
+    maxima = np.full(B, np.nan)
+    no_stats = np.empty((0, 0))
+    for ts in range(0, v, tile):
+        te = min(v, ts + tile)
+        tile_bad = bad[(bad >= ts) & (bad < te)] - ts if bad.size else bad
+        G = buffers.views(te - ts)[0]
+        np.matmul(A, W[:, ts:te], out=G)
+        stats = maps[:, ts:te] if maps is not None else no_stats
+        fused.scan_tile(G, plan.m, plan.q, plan.kind == "t", orient, float(plan.df), tile_bad,
+                        threshold[ts:te], counts[ts:te], maxima, stats)
+    if v == 0:
+        maxima.fill(-np.inf)
     return ChunkNulls(counts, maxima)
 
 
@@ -454,8 +496,7 @@ def map_nulls(maps: np.ndarray, spec: MapSpec, adjacency: Adjacency) -> tuple[np
         x, two = enhance_input(maps[b], spec)
         if spec.tfce is not None:
             p = spec.tfce
-            t = tfce(x, adjacency, p.dh, p.E, p.H, p.rule, two_sided=two)
-            tmax[b] = np.abs(t).max() if t.size else 0.0
+            tmax[b] = tfce_max(x, adjacency, p.dh, p.E, p.H, p.rule, two_sided=two)
         if spec.cluster_threshold is not None:
             cmax[b] = max_cluster_size(x, spec.cluster_threshold, adjacency, two_sided=two)
     return tmax, cmax
@@ -465,8 +506,22 @@ _WORKER: dict[str, Any] = {}
 
 
 def worker_init(adjacency: Adjacency) -> None:
-    """Install the adjacency in a worker process (shipped once, not with every batch)."""
+    """Install the adjacency in a worker process (shipped once, not with every batch), and load the compiled
+    kernels (if any) before the first batch arrives."""
     _WORKER["adjacency"] = adjacency
+    warm_kernels()
+
+
+def warm_kernels() -> None:
+    """Load (or, the first time on a machine, compile and cache) the compiled TFCE and cluster kernels by
+    enhancing a tiny map, so that no batch pays for it; nothing without the extra ``fast``.  The caller of
+    the worker processes runs it first, so the workers load the cached code and none compiles."""
+    from .graph import grid_adjacency
+
+    adjacency = grid_adjacency(np.ones((3, 3, 3), dtype=bool))
+    x = np.linspace(-3.0, 3.0, adjacency.n)
+    tfce_max(x, adjacency, 0.5, two_sided=True)
+    max_cluster_size(x, 1.0, adjacency, two_sided=True)
 
 
 def worker_nulls(maps: np.ndarray, spec: MapSpec) -> tuple[np.ndarray, np.ndarray]:

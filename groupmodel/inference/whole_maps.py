@@ -18,6 +18,7 @@ import math
 from concurrent.futures import Future
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 
@@ -26,7 +27,8 @@ from ..runtime.executors import InlineExecutor, ProcessExecutor
 from .clusters import Clusters, label_clusters, stat_threshold
 from .freedman_lane import ContrastPlan
 from .graph import Adjacency
-from .kernel import MapSpec, enhance_input, map_nulls, worker_init, worker_nulls
+from .kernel import MapSpec, enhance_input, map_nulls, warm_kernels, worker_init, worker_nulls
+from .map_slots import MapSlots, slot_nulls
 from .results import ClusterResult, TfceResult, WholeMapResult, fwe_p
 from .settings import MapSettings
 from .tfce import default_step, tfce
@@ -49,8 +51,8 @@ class MapWorkers:
         Neighbourhood of the elements, shipped to each worker once.
     """
 
-    #: The maps of a batch are copied before submitting: the buffer is refilled while they travel.
-    copies = True
+    #: The maps of a batch are copied here (into a slot, or for a pickle): the buffer is refilled while they travel.
+    copies = False
 
     def __init__(self, n_jobs: int, adjacency: Adjacency) -> None:
         if n_jobs < 2:
@@ -59,13 +61,35 @@ class MapWorkers:
         if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
             adjacency.neighbour_table()
             adjacency.neighbour_chain()
+        warm_kernels()  # compiled here once (if not cached yet), so that the workers only load the cache
         self.pool = ProcessExecutor(self.n_jobs, initializer=worker_init, initargs=(adjacency,))
+        self.slots: MapSlots | None = None
+        self._slots_tried = False
 
     def submit(self, maps: np.ndarray, spec: MapSpec) -> Future:
-        return self.pool.submit(worker_nulls, maps, spec)
+        """The nulls of a part of a batch; the maps go through a shared-memory slot when there is one."""
+        slots = self._slots_for(maps)
+        ref = slots.put(maps) if slots is not None else None
+        if slots is None or ref is None:
+            return self.pool.submit(worker_nulls, maps.copy(), spec)
+        future = self.pool.submit(slot_nulls, ref, spec)
+        future.add_done_callback(partial(slots.release, ref))
+        return future
+
+    def _slots_for(self, maps: np.ndarray) -> MapSlots | None:
+        """Slots sized by the first part submitted (a batch's parts are never larger), made once."""
+        if not self._slots_tried:
+            self._slots_tried = True
+            # MapNulls keeps at most 3 parts per worker in flight (2 per worker waiting, plus a batch).
+            self.slots = MapSlots.create(maps.shape[0], maps.shape[1], 3 * self.n_jobs + 1)
+        return self.slots if self.slots is not None and self.slots.fits(maps) else None
 
     def close(self, cancel: bool = False) -> None:
-        self.pool.close(cancel=cancel)
+        try:
+            self.pool.close(cancel=cancel)
+        finally:
+            if self.slots is not None:
+                self.slots.close()
 
     def __enter__(self) -> MapWorkers:
         return self

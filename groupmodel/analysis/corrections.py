@@ -167,6 +167,7 @@ def permutation_inference(
     chunk_voxels: int | None = None,
     progress: Callable[[str, int, int], None] | None = None,
     maps_bytes: int | None = None,
+    cluster: Any = None,
 ) -> dict[str, HypothesisInference]:
     """Run Freedman-Lane permutation inference for every hypothesis.
 
@@ -199,6 +200,8 @@ def permutation_inference(
     # One set of worker processes for every hypothesis: each costs about a second to start.
     whole_maps = options.tfce or options.cluster_threshold is not None
     jobs = options.jobs if options.jobs is not None else available_cores()
+    if cluster is not None:
+        jobs = 1  # the whole-map tasks run on the cluster, each in one worker
     n_elements = int(data.data.shape[1])
     batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
     rearrangements = Rearrangements(
@@ -220,9 +223,21 @@ def permutation_inference(
 
             test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
             chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
-            res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
+            if cluster is None:
+                res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
+            else:
+                res = _on_cluster(cluster, test, chosen, map_settings, execution, report)
             out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)
     return out
+
+
+def _on_cluster(cluster: Any, test: Any, chosen: Any, map_settings: Any, execution: Any,
+                report: Callable[[int, int], None]) -> Any:
+    """One contrast's permutations on the cluster (:func:`groupmodel.inference.distributed.run_on_cluster`)."""
+    from ..inference.distributed import ClusterWork, run_on_cluster
+
+    work = ClusterWork(cache_bytes=execution.cache_bytes)
+    return run_on_cluster(cluster.executor, cluster.reader, test, chosen, map_settings, execution, work, report)
 
 
 def _surface_tables_adjacency(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:

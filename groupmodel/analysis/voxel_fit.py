@@ -144,6 +144,7 @@ def fit_images(
     chunk_voxels: int | None = None,
     progress: bool = True,
     inference: InferenceOptions | None = None,
+    client: Any = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
@@ -166,6 +167,10 @@ def fit_images(
         Show a progress bar when stderr is a terminal.
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
+    client : dask.distributed.Client, optional
+        Run the fit and the permutations on this Dask cluster (:mod:`groupmodel.analysis.cluster_fit`):
+        its workers read the images themselves; ``memory_bytes`` is then also each worker's budget.  The
+        results are those of the local run.
     """
     from ..images import chunk_size_for
 
@@ -186,13 +191,18 @@ def fit_images(
             n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress)
+        session = None
+        if client is not None:
+            from .cluster_fit import cluster_session
+
+            session = cluster_session(client, source, data)
+        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress, session)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
-        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress)
+        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress, session)
         warnings += inference_notes(data.grid, inference)
         for name, res in permuted.items():
             maps[name].update(res.maps)
@@ -223,17 +233,23 @@ def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: 
 
 
 def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int,
-                     progress: bool) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
+                     progress: bool, session: Any = None) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
     """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
-    chunk (the corrected p maps are allocated here and filled by the corrections)."""
+    chunk, here or on the cluster of ``session`` (the corrected p maps are allocated here and filled by the
+    corrections)."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
             for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
-        for cols, y in data.chunks(chunk_voxels):
-            res = fit_chunk(prepared, y)
+        if session is None:
+            fitted = ((cols, fit_chunk(prepared, y)) for cols, y in data.chunks(chunk_voxels))
+        else:
+            from .cluster_fit import fitted_chunks
+
+            fitted = fitted_chunks(session, prepared, chunk_voxels)
+        for cols, res in fitted:
             resid_var[cols] = res.residual_variance
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
@@ -270,22 +286,28 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool) -> dict[str, HypothesisInference]:
-    """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
+                      chunk_voxels: int, progress: bool, session: Any = None) -> dict[str, HypothesisInference]:
+    """Permutation inference of every hypothesis (nothing when no permutations are asked for), here or on
+    the cluster of ``session`` (progress in permutations here, in tasks there)."""
     if not options.active:
         return {}
-    bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
-                       enabled=progress)
+    if session is None:
+        bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
+                           enabled=progress)
+    else:
+        bar = progress_bar(0, "permutation tasks", unit="task", enabled=progress)
     done_before: dict[str, int] = {}
 
     def report(name: str, done: int, total: int) -> None:
+        if session is not None and name not in done_before:
+            bar.grow(total)  # a contrast's task count is known when it starts
         bar.update(done - done_before.get(name, 0))
         done_before[name] = done
 
     try:
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
-                                     progress=report)
+                                     progress=report, cluster=session)
     finally:
         bar.close()
 

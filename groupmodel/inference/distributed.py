@@ -1,0 +1,313 @@
+"""Permutation inference on a cluster: the driver's tasks, run where a Dask scheduler puts them.
+
+The work of one contrast is split by chunks of voxels and by groups of batches of rearrangements:
+
+* one observed task per chunk: the first group of batches (it starts with the identity), giving the
+  chunk's observed statistics and thresholds, its counts and maxima;
+* one null task per chunk and later group, given the observed task of its chunk (passed worker to worker);
+* with TFCE or clusters, groups of one batch, and one whole-map task per batch that takes the statistic
+  maps of every chunk of that batch (worker to worker) and returns the TFCE and cluster maxima.
+
+Every task calls the same pure functions as the local engine (:func:`~.kernel.observed_chunk`,
+:func:`~.kernel.chunk_nulls`, :func:`~.kernel.map_nulls`) on the same chunks, tiles and batches, and reads
+its chunk itself through a reader (an object with ``read(s, e)``, e.g. :class:`groupmodel.images.ColumnReader`),
+so the client never sends the data.  The client combines counts by sum and maxima by maximum, by position,
+in whatever order the tasks finish, so results equal the local run's.  A lost worker's tasks are rerun by
+the scheduler with the same inputs and give the same outputs.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+
+from ..engine.ols import design_matrix
+from ..runtime.cores import single_threaded_blas
+from .driver import _Accumulated, _check, _chunks, permutation_result
+from .freedman_lane import ContrastPlan, plan_contrast, stack_rows
+from .kernel import ChunkNulls, ObservedChunk, Scratch, UnitChunk, chunk_nulls, map_nulls, observed_chunk, tile_width
+from .rearrangements import permutation_set
+from .results import PermutationResult
+from .settings import ContrastTest, Execution, MapSettings, Rearrangements
+from .whole_maps import InlineMaps, MapNulls, observe_maps
+
+__all__ = ["ClusterWork", "run_on_cluster"]
+
+
+@dataclass(frozen=True)
+class ClusterWork:
+    """How the work of a contrast is cut for a cluster (results do not depend on it).
+
+    Attributes
+    ----------
+    tasks_per_worker : int
+        Aim for at least this many tasks of each contrast per worker thread (load balance, progress).
+    groups_ahead : int
+        Groups of batches submitted ahead of the ones collected, per worker thread (bounds the memory the
+        cluster holds in results not yet collected, and the statistic maps of TFCE and clusters).
+    cache_bytes : int
+        Each worker keeps the residualised chunks it read, up to this many bytes, for later tasks.
+    """
+
+    tasks_per_worker: int = 4
+    groups_ahead: int = 2
+    cache_bytes: int = 1 << 30
+
+
+@dataclass(frozen=True, eq=False)
+class _Job:
+    """One chunk of one contrast's run: the key of its cached data, its columns, the tile width."""
+
+    key: str
+    s: int
+    e: int
+    tile: int
+    batch_size: int
+    cache_bytes: int
+
+
+@dataclass(frozen=True, eq=False)
+class _ChunkOut:
+    """What a chunk task returns for a group of rearrangements starting at ``r0``."""
+
+    r0: int
+    s: int
+    e: int
+    observed: ObservedChunk | None
+    counts: np.ndarray
+    maxima: np.ndarray
+    maps: np.ndarray | None
+
+    def small(self) -> _ChunkOut:
+        return replace(self, maps=None)
+
+
+# ------------------------------------------------------------------------------------------------
+# On the workers
+# ------------------------------------------------------------------------------------------------
+
+_CACHE: OrderedDict[tuple[str, int], UnitChunk] = OrderedDict()
+_CACHE_LOCK = threading.Lock()
+
+
+def _unit(reader: Any, plan: ContrastPlan, job: _Job) -> UnitChunk:
+    """The chunk residualised and scaled, from this worker's cache or read from the images (speed only)."""
+    from .kernel import unit_columns
+
+    key = (job.key, job.s)
+    with _CACHE_LOCK:
+        got = _CACHE.get(key)
+        if got is not None:
+            _CACHE.move_to_end(key)
+            return got
+    unit = unit_columns(plan, reader.read(job.s, job.e))
+    with _CACHE_LOCK:
+        _CACHE[key] = unit
+        total = sum(u.W.nbytes for u in _CACHE.values())
+        while _CACHE and total > job.cache_bytes:
+            _, old = _CACHE.popitem(last=False)
+            total -= old.W.nbytes
+    return unit
+
+
+def _chunk_task(reader: Any, plan: ContrastPlan, job: _Job, rearr: tuple[int, Any, Any], observed: Any,
+                want_maps: bool) -> _ChunkOut:
+    """Counts and maxima of one chunk for a group of rearrangements (from ``r0``, in the run's batches);
+    the group starting at 0 also gives the observed statistics (``observed`` None), later ones count
+    against the thresholds of the chunk's observed task."""
+    r0, perm, flips = rearr
+    unit = _unit(reader, plan, job)
+    size = (perm if perm is not None else flips).shape[0]
+    v = job.e - job.s
+    maps = np.empty((size, v)) if want_maps else None
+    scratch = Scratch()
+    counts = np.zeros(v, dtype=np.int64)
+    maxima = np.empty(size)
+    first: ObservedChunk | None = None
+    threshold = None if observed is None else observed.observed.threshold
+    with single_threaded_blas():
+        for b0 in range(0, size, job.batch_size):
+            b1 = min(size, b0 + job.batch_size)
+            A = stack_rows(plan, None if perm is None else perm[b0:b1], None if flips is None else flips[b0:b1])
+            part_maps = None if maps is None else maps[b0:b1]
+            if threshold is None:
+                first, nulls = observed_chunk(plan, A, unit, job.tile, part_maps, scratch)
+                threshold = first.threshold
+            else:
+                nulls = chunk_nulls(plan, A, unit, threshold, job.tile, part_maps, scratch)
+            counts += nulls.counts
+            maxima[b0:b1] = nulls.maxima
+    return _ChunkOut(r0, job.s, job.e, first, counts, maxima, maps)
+
+
+def _small(out: _ChunkOut) -> _ChunkOut:
+    """A chunk task's result without its statistic maps (what the client collects)."""
+    return out.small()
+
+
+def _whole_map_task(outs: list[_ChunkOut], spec: Any, adjacency: Any) -> tuple[int, np.ndarray, np.ndarray]:
+    """The TFCE and cluster maxima of one batch, from the statistic maps of all its chunks (in column order)."""
+    outs = sorted(outs, key=lambda o: o.s)
+    maps = np.concatenate([o.maps for o in outs], axis=1)
+    tmax, cmax = map_nulls(maps, spec, adjacency)
+    return outs[0].r0, tmax, cmax
+
+
+# ------------------------------------------------------------------------------------------------
+# On the client
+# ------------------------------------------------------------------------------------------------
+
+
+def _groups(J: int, batch_size: int, per_group: int) -> list[tuple[int, int]]:
+    """Rearrangement ranges of whole batches (the run's batch boundaries), ``per_group`` batches each."""
+    step = batch_size * per_group
+    return [(r0, min(J, r0 + step)) for r0 in range(0, J, step)]
+
+
+class _Collector:
+    """Combines what the tasks return, by position: counts by sum, maxima by maximum (any order)."""
+
+    def __init__(self, acc: _Accumulated, map_nulls: MapNulls | None) -> None:
+        self.acc, self.map_nulls = acc, map_nulls
+
+    def chunk(self, out: _ChunkOut) -> None:
+        if out.observed is not None:
+            self.acc.observe(out.s, out.e, out.observed)
+        self.acc.add(out.r0, out.s, out.e, ChunkNulls(out.counts, out.maxima))
+
+    def whole(self, found: tuple[int, np.ndarray, np.ndarray]) -> None:
+        assert self.map_nulls is not None
+        r0, tmax, cmax = found
+        self.map_nulls.tfce_max[r0 : r0 + tmax.size] = tmax
+        self.map_nulls.cluster_max[r0 : r0 + cmax.size] = cmax
+
+
+def run_on_cluster(
+    executor: Any,
+    reader: Any,
+    test: ContrastTest,
+    rearrangements: Rearrangements,
+    maps: MapSettings,
+    execution: Execution,
+    work: ClusterWork = ClusterWork(),
+    progress: Callable[[int, int], None] | None = None,
+) -> PermutationResult:
+    """:func:`~groupmodel.inference.driver.run_permutations` on a :class:`groupmodel.runtime.cluster.DaskExecutor`,
+    the data read by the workers through ``reader`` (shape (n, V), ``read(s, e)``, pickles).
+
+    ``execution`` gives the batch and chunk sizes (as for the local run; the same results); ``progress``
+    is called with (tasks done, tasks in all).
+    """
+    X, V = _check(test, reader, maps, replace(execution, workers=None))
+    design_matrix(X)
+    r = rearrangements
+    plan = plan_contrast(X, test.weights, kind=test.kind, tail=test.tail, name=test.name, method=r.method,
+                         blocks=r.blocks, whole_blocks=r.whole_blocks)
+    pset = permutation_set(X.shape[0], r.n_perm, plan.method, blocks=r.blocks, whole_blocks=r.whole_blocks,
+                           seed=r.seed, classes=plan.classes)
+    run = _ClusterRun(executor, reader, plan, pset, V, execution, maps, work)
+    acc = run.go(progress)
+    return permutation_result(test, plan, pset, acc, run.map_nulls)
+
+
+class _ClusterRun:
+    """One contrast on the cluster: the jobs (chunks), the groups of batches, the tasks in flight."""
+
+    def __init__(self, executor: Any, reader: Any, plan: ContrastPlan, pset: Any, V: int, execution: Execution,
+                 maps: MapSettings, work: ClusterWork) -> None:
+        import uuid
+
+        self.executor, self.reader, self.plan, self.pset, self.V = executor, reader, plan, pset, V
+        self.maps, self.work = maps, work
+        J, size = pset.size, execution.batch_size
+        tile = tile_width(plan.m * min(size, J))  # as the local run: fixed by the batch size
+        key = uuid.uuid4().hex
+        self.jobs = [_Job(key, s, e, tile, size, work.cache_bytes) for s, e in _chunks(V, execution.chunk_size)]
+        self.threads = max(1, int(executor.workers))
+        n_batches = -(-J // size)
+        if maps.wanted:  # a whole-map task per batch
+            per_group = 1
+        else:
+            wanted = max(1, -(-work.tasks_per_worker * self.threads // len(self.jobs)))
+            per_group = max(1, -(-n_batches // wanted))
+        self.groups = _groups(J, size, per_group)
+        per_task = len(self.jobs) + (1 if maps.wanted else 0)
+        self.total = per_task * len(self.groups)
+        self.done = 0
+        self.map_nulls: MapNulls | None = None
+        self.acc = _Accumulated.empty(V, J)
+        self.collector = _Collector(self.acc, None)
+
+    def _rearr(self, r0: int, r1: int, broadcast: bool = False) -> Any:
+        return self.executor.scatter((r0, *self.pset.batch(r0, r1)), broadcast=broadcast)
+
+    def go(self, progress: Callable[[int, int], None] | None) -> _Accumulated:
+        ex = self.executor
+        self.progress = progress
+        reader_f, plan_f = ex.scatter(self.reader), ex.scatter(self.plan)
+        want = self.maps.wanted
+        rearr0 = self._rearr(*self.groups[0], broadcast=True)
+        first = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr0, None, want) for job in self.jobs]
+        observed = [ex.submit(_small, f) for f in first] if want else first
+        in_flight: dict[Any, str] = {}
+        try:
+            for fut in ex.completed(observed):
+                self._take(fut, "chunk")
+            spec_f = adj_f = None
+            if want:
+                spec_f, adj_f = self._observe_maps()
+                in_flight[ex.submit(_whole_map_task, first, spec_f, adj_f)] = "whole"
+            del first
+            pending = list(self.groups[1:])
+            limit = self.work.groups_ahead * self.threads * (len(self.jobs) + (1 if want else 0))
+            while pending or in_flight:
+                while pending and len(in_flight) < limit:
+                    r0, r1 = pending.pop(0)
+                    in_flight.update(self._submit_group(reader_f, plan_f, self._rearr(r0, r1), observed, spec_f,
+                                                        adj_f))
+                for fut in ex.first_done(list(in_flight)):
+                    self._take(fut, in_flight.pop(fut))
+        except BaseException:
+            ex.cancel(list(in_flight))
+            raise
+        return self.acc
+
+    def _submit_group(self, reader_f: Any, plan_f: Any, rearr_f: Any, observed: list[Any], spec_f: Any,
+                      adj_f: Any) -> dict[Any, str]:
+        ex, want = self.executor, self.maps.wanted
+        tasks = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr_f, obs, want)
+                 for job, obs in zip(self.jobs, observed, strict=True)]
+        if not want:
+            return dict.fromkeys(tasks, "chunk")
+        out = {ex.submit(_small, t): "chunk" for t in tasks}
+        out[ex.submit(_whole_map_task, tasks, spec_f, adj_f)] = "whole"
+        return out
+
+    def _take(self, fut: Any, kind: str) -> None:
+        found = fut.result()
+        if kind == "chunk":
+            self.collector.chunk(found)
+        else:
+            self.collector.whole(found)
+        self.done += 1
+        if self.progress is not None:
+            self.progress(self.done, self.total)
+
+    def _observe_maps(self) -> tuple[Any, Any]:
+        """The observed TFCE map and clusters (here, from the observed statistics), and the spec and
+        adjacency every whole-map task needs, sent once to every worker."""
+        adjacency = self.maps.adjacency
+        assert adjacency is not None
+        observed = observe_maps(self.acc.stat.copy(), self.plan, self.maps)
+        self.map_nulls = MapNulls(observed, self.pset.size, InlineMaps(adjacency), owned=False)
+        self.collector.map_nulls = self.map_nulls
+        if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
+            adjacency.neighbour_table()
+            adjacency.neighbour_chain()
+        return self.executor.scatter(observed.spec), self.executor.scatter(adjacency)
+

@@ -67,7 +67,7 @@ def fitted_chunks(session: ClusterSession, prepared: Prepared, chunk_voxels: int
                   progress: Callable[[int, int], None] | None = None) -> Iterator[tuple[slice, ChunkResult]]:
     """``(columns, fit)`` of every chunk, as the workers finish them (each chunk once; any order)."""
     ex = session.executor
-    reader_f, prepared_f = ex.scatter(session.reader), ex.scatter(prepared)
+    reader_f, prepared_f = ex.put(session.reader), ex.put(prepared)
     V = session.reader.n_columns
     futures = [ex.submit(_fit_task, reader_f, prepared_f, s, min(V, s + chunk_voxels))
                for s in range(0, V, chunk_voxels)]

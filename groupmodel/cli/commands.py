@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from ..errors import OutputError
+from ..errors import InputError, OutputError
 from ..outputs.folder import OutputFolder, OutputLock
 from .printing import print_disclaimer, print_model_report, print_removed, print_stale_lock, print_voxel_fit
 
@@ -45,6 +45,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
 def _fit(args: argparse.Namespace) -> int:
     print_removed(OutputFolder(args.out, force=args.force).removed)  # refuse an existing folder before any work
     if args.outcome:
+        if getattr(args, "scheduler", None) is not None:
+            raise InputError("--scheduler is for fits to images; a fit to one table column (--outcome) runs "
+                             "here; leave out --scheduler")
         return _fit_table(args)
     return _fit_images(args)
 
@@ -70,8 +73,17 @@ def _fit_images(args: argparse.Namespace) -> int:
 
     spec = load_spec(args.spec)
     options = spec.inference_options.with_overrides(**inference_overrides(args))
-    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
-                     inference=options)
+    executor = None
+    if args.scheduler is not None:
+        from ..runtime.cluster import open_scheduler
+
+        executor = open_scheduler(args.scheduler)
+    try:
+        fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                         inference=options, client=executor)
+    finally:
+        if executor is not None:
+            executor.close()
     print_voxel_fit(fit, options)
     write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures)
     print(f"wrote {args.out}")

@@ -38,6 +38,9 @@ from .whole_maps import InlineMaps, MapNulls, observe_maps
 
 __all__ = ["ClusterWork", "run_on_cluster"]
 
+_NO_MAPS = MapSettings()
+_EXECUTION = Execution()
+
 
 @dataclass(frozen=True)
 class ClusterWork:
@@ -57,6 +60,9 @@ class ClusterWork:
     tasks_per_worker: int = 4
     groups_ahead: int = 2
     cache_bytes: int = 1 << 30
+
+
+_WORK = ClusterWork()
 
 
 @dataclass(frozen=True, eq=False)
@@ -192,9 +198,9 @@ def run_on_cluster(
     reader: Any,
     test: ContrastTest,
     rearrangements: Rearrangements,
-    maps: MapSettings,
-    execution: Execution,
-    work: ClusterWork = ClusterWork(),
+    maps: MapSettings = _NO_MAPS,
+    execution: Execution = _EXECUTION,
+    work: ClusterWork = _WORK,
     progress: Callable[[int, int], None] | None = None,
 ) -> PermutationResult:
     """:func:`~groupmodel.inference.driver.run_permutations` on a :class:`groupmodel.runtime.cluster.DaskExecutor`,
@@ -243,15 +249,15 @@ class _ClusterRun:
         self.acc = _Accumulated.empty(V, J)
         self.collector = _Collector(self.acc, None)
 
-    def _rearr(self, r0: int, r1: int, broadcast: bool = False) -> Any:
-        return self.executor.scatter((r0, *self.pset.batch(r0, r1)), broadcast=broadcast)
+    def _rearr(self, r0: int, r1: int) -> Any:
+        return self.executor.put((r0, *self.pset.batch(r0, r1)))
 
     def go(self, progress: Callable[[int, int], None] | None) -> _Accumulated:
         ex = self.executor
         self.progress = progress
-        reader_f, plan_f = ex.scatter(self.reader), ex.scatter(self.plan)
+        reader_f, plan_f = ex.put(self.reader), ex.put(self.plan)
         want = self.maps.wanted
-        rearr0 = self._rearr(*self.groups[0], broadcast=True)
+        rearr0 = self._rearr(*self.groups[0])
         first = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr0, None, want) for job in self.jobs]
         observed = [ex.submit(_small, f) for f in first] if want else first
         in_flight: dict[Any, str] = {}
@@ -309,5 +315,5 @@ class _ClusterRun:
         if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
             adjacency.neighbour_table()
             adjacency.neighbour_chain()
-        return self.executor.scatter(observed.spec), self.executor.scatter(adjacency)
+        return self.executor.put(observed.spec), self.executor.put(adjacency)
 

@@ -9,6 +9,7 @@ are pure functions of their inputs, so a rerun returns the same result.
 from __future__ import annotations
 
 import logging
+import warnings
 from collections.abc import Callable, Iterable, Iterator
 from typing import Any, TypeVar
 
@@ -58,10 +59,13 @@ class DaskExecutor(_Base):
         passed to the task as their results, worker to worker."""
         return self.client.submit(fn, *args, pure=False)
 
-    def scatter(self, value: Any, broadcast: bool = True) -> Any:
-        """``value`` sent once (to every worker, or to one and from there where needed); a future to pass to
-        tasks instead of the value."""
-        return self.client.scatter(value, broadcast=broadcast, hash=False)
+    def put(self, value: Any) -> Any:
+        """A future holding ``value``, to pass to many tasks instead of the value (sent once to the cluster,
+        then worker to worker).  It is a task, not scattered data: the scheduler keeps the value and makes
+        it again on another worker when the worker holding it is lost."""
+        with warnings.catch_warnings():  # "large object in task graph": meant, it is sent once
+            warnings.simplefilter("ignore", UserWarning)
+            return self.client.submit(_value, value, pure=False)
 
     def first_done(self, futures: list[Any]) -> list[Any]:
         """Waits until one of ``futures`` is finished; those finished so far."""
@@ -86,12 +90,16 @@ class DaskExecutor(_Base):
             self._owned = None
 
 
+def _value(value: T) -> T:
+    return value
+
+
 def dask_executor(client: Any) -> DaskExecutor:
     """A :class:`DaskExecutor` on a user's ``distributed.Client`` (left open), or the executor itself."""
     return client if isinstance(client, DaskExecutor) else DaskExecutor(client)
 
 
-def open_scheduler(address: str, timeout: float = CONNECT_TIMEOUT) -> DaskExecutor:
+def open_scheduler(address: str, timeout: float | None = None) -> DaskExecutor:
     """Connect to ``tcp://host:port`` (any Dask address), or start ``local:N``, a LocalCluster of N worker
     processes with one thread each.  Close the executor when done.
 
@@ -101,12 +109,13 @@ def open_scheduler(address: str, timeout: float = CONNECT_TIMEOUT) -> DaskExecut
         Dask is not installed, the address is malformed, or no scheduler answered within ``timeout``.
     """
     distributed = _distributed()
+    timeout = CONNECT_TIMEOUT if timeout is None else timeout
     if address.startswith("local:"):
         count = address.removeprefix("local:")
         if not count.isdigit() or int(count) < 1:
             raise InputError(f"--scheduler {address}: expected local:N with N >= 1 worker processes, e.g. local:4")
         cluster = distributed.LocalCluster(n_workers=int(count), threads_per_worker=1, processes=True,
-                                           dashboard_address=None, silence_logs=logging.ERROR)
+                                           dashboard_address=":0", silence_logs=logging.ERROR)
         return DaskExecutor(distributed.Client(cluster), owned=cluster)
     if "://" not in address:
         raise InputError(f"--scheduler {address}: expected a scheduler address such as tcp://host:8786, or local:N")

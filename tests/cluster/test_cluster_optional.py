@@ -33,7 +33,8 @@ def test_a_fit_without_scheduler_imports_no_dask(study: Path, tmp_path: Path) ->
     code = (
         "import sys\n"
         "from groupmodel.cli import main\n"
-        f"code = main(['fit', {str(study)!r}, '--out', 'out', '--permutations', '20', '--tfce', '--jobs', '1', '--no-pictures'])\n"
+        f"code = main(['fit', {str(study)!r}, '--out', 'out', '--permutations', '20', '--tfce', '--jobs', '1',\n"
+        "              '--no-pictures'])\n"
         "loaded = sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed'))\n"
         "print('LOADED', loaded, code)\n"
     )

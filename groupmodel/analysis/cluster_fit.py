@@ -19,6 +19,7 @@ import numpy as np
 from ..engine.ols import ChunkResult, Prepared, fit_chunk
 from ..errors import ImageError, InputError
 from ..images.columns import ColumnReader, first_unreadable
+from ..inference.distributed import cached_columns, home_worker
 from ..runtime.cluster import CONNECT_TIMEOUT, DaskExecutor, dask_executor
 
 __all__ = ["ClusterSession", "cluster_session", "fitted_chunks"]
@@ -30,10 +31,12 @@ class ClusterSession:
 
     executor: DaskExecutor
     reader: ColumnReader
+    cache_bytes: int
 
 
-def cluster_session(client: Any, source: Any, data: Any) -> ClusterSession:
+def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> ClusterSession:
     """The session of one fit: waits for a worker, checks that every worker can read every image.
+    ``cache_bytes``: what each worker may keep of the data it read, for later tasks.
 
     Raises
     ------
@@ -55,12 +58,15 @@ def cluster_session(client: Any, source: Any, data: Any) -> ClusterSession:
             raise ImageError(f"Dask worker {worker}: cannot read image {path} (from {source.origin}); the workers "
                              "must see the images at the same paths as this machine: put them on a file system "
                              "shared with the workers")
-    return ClusterSession(executor, reader)
+    return ClusterSession(executor, reader, int(cache_bytes))
 
 
-def _fit_task(reader: ColumnReader, prepared: Prepared, s: int, e: int) -> tuple[int, int, ChunkResult]:
-    """One chunk's parametric fit, read by the worker (float64 from the storage dtype, as locally)."""
-    return s, e, fit_chunk(prepared, np.array(reader.read(s, e), dtype=np.float64, order="C"))
+def _fit_task(reader: ColumnReader, prepared: Prepared, s: int, e: int,
+              cache_bytes: int) -> tuple[int, int, ChunkResult]:
+    """One chunk's parametric fit, read by the worker (float64 from the storage dtype, as locally); the
+    chunk is kept on the worker for the permutations when it fits."""
+    y = np.array(cached_columns(reader, s, e, cache_bytes), dtype=np.float64, order="C")
+    return s, e, fit_chunk(prepared, y)
 
 
 def fitted_chunks(session: ClusterSession, prepared: Prepared, chunk_voxels: int,
@@ -69,8 +75,10 @@ def fitted_chunks(session: ClusterSession, prepared: Prepared, chunk_voxels: int
     ex = session.executor
     reader_f, prepared_f = ex.put(session.reader), ex.put(prepared)
     V = session.reader.n_columns
-    futures = [ex.submit(_fit_task, reader_f, prepared_f, s, min(V, s + chunk_voxels))
-               for s in range(0, V, chunk_voxels)]
+    starts = range(0, V, chunk_voxels)
+    addresses = ex.addresses() or [None]
+    futures = [ex.submit(_fit_task, reader_f, prepared_f, s, min(V, s + chunk_voxels), session.cache_bytes,
+                         near=home_worker(addresses, c, len(starts))) for c, s in enumerate(starts)]
     try:
         for done, fut in enumerate(ex.completed(futures), start=1):
             s, e, res = fut.result()

@@ -236,7 +236,7 @@ def _on_cluster(cluster: Any, test: Any, chosen: Any, map_settings: Any, executi
     """One contrast's permutations on the cluster (:func:`groupmodel.inference.distributed.run_on_cluster`)."""
     from ..inference.distributed import ClusterWork, run_on_cluster
 
-    work = ClusterWork(cache_bytes=execution.cache_bytes)
+    work = ClusterWork(cache_bytes=cluster.cache_bytes)
     return run_on_cluster(cluster.executor, cluster.reader, test, chosen, map_settings, execution, work, report)
 
 

@@ -195,7 +195,7 @@ def fit_images(
         if client is not None:
             from .cluster_fit import cluster_session
 
-            session = cluster_session(client, source, data)
+            session = cluster_session(client, source, data, budget.permutation_bytes)
         maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress, session)
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)

@@ -8,7 +8,8 @@ puts in the matrix (the same reading, the same storage dtype), so a fit is the s
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+import uuid
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -31,11 +32,14 @@ class ColumnReader:
         Position of each mask column in the C-order flattened grid (``np.flatnonzero(mask)``).
     dtype : str
         Storage dtype of the matrix (``float32``, or ``float64`` for float64 images).
+    token : str
+        Names this reader's data in the workers' caches.
     """
 
     source: ImageSource
     index: np.ndarray
     dtype: str
+    token: str = field(default_factory=lambda: uuid.uuid4().hex)
 
     @classmethod
     def of(cls, source: ImageSource, data: MaskedData) -> ColumnReader:

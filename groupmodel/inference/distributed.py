@@ -36,7 +36,7 @@ from .results import PermutationResult
 from .settings import ContrastTest, Execution, MapSettings, Rearrangements
 from .whole_maps import InlineMaps, MapNulls, observe_maps
 
-__all__ = ["ClusterWork", "run_on_cluster"]
+__all__ = ["ClusterWork", "cached_columns", "home_worker", "run_on_cluster"]
 
 _NO_MAPS = MapSettings()
 _EXECUTION = Execution()
@@ -97,28 +97,47 @@ class _ChunkOut:
 # On the workers
 # ------------------------------------------------------------------------------------------------
 
-_CACHE: OrderedDict[tuple[str, int], UnitChunk] = OrderedDict()
+_CACHE: OrderedDict[tuple[Any, ...], Any] = OrderedDict()
 _CACHE_LOCK = threading.Lock()
 
 
-def _unit(reader: Any, plan: ContrastPlan, job: _Job) -> UnitChunk:
-    """The chunk residualised and scaled, from this worker's cache or read from the images (speed only)."""
-    from .kernel import unit_columns
-
-    key = (job.key, job.s)
+def _cached(key: tuple[Any, ...], make: Callable[[], Any], cache_bytes: int) -> Any:
+    """This worker's copy of ``make()`` under ``key``, kept (least recently used first out) within
+    ``cache_bytes`` (speed only: a value dropped is made again, the same)."""
     with _CACHE_LOCK:
         got = _CACHE.get(key)
         if got is not None:
             _CACHE.move_to_end(key)
             return got
-    unit = unit_columns(plan, reader.read(job.s, job.e))
+    value = make()
     with _CACHE_LOCK:
-        _CACHE[key] = unit
-        total = sum(u.W.nbytes for u in _CACHE.values())
-        while _CACHE and total > job.cache_bytes:
+        _CACHE[key] = value
+        total = sum(_nbytes(v) for v in _CACHE.values())
+        while len(_CACHE) > 1 and total > cache_bytes:
             _, old = _CACHE.popitem(last=False)
-            total -= old.W.nbytes
-    return unit
+            total -= _nbytes(old)
+        if total > cache_bytes:
+            _CACHE.clear()
+    return value
+
+
+def _nbytes(value: Any) -> int:
+    return int(value.W.nbytes if isinstance(value, UnitChunk) else value.nbytes)
+
+
+def _unit(reader: Any, plan: ContrastPlan, job: _Job) -> UnitChunk:
+    """The chunk residualised and scaled for this contrast; the chunk's data as read are kept too, for the
+    other contrasts of the fit (the cache is for speed only)."""
+    from .kernel import unit_columns
+
+    return _cached(("unit", job.key, job.s),
+                   lambda: unit_columns(plan, cached_columns(reader, job.s, job.e, job.cache_bytes)), job.cache_bytes)
+
+
+def cached_columns(reader: Any, s: int, e: int, cache_bytes: int) -> np.ndarray:
+    """Columns ``s:e`` as read by ``reader`` (do not modify), kept on this worker for later tasks within
+    ``cache_bytes`` (the parametric fit and every contrast read each chunk once where it fits)."""
+    return _cached(("data", getattr(reader, "token", id(reader)), s, e), lambda: reader.read(s, e), cache_bytes)
 
 
 def _chunk_task(reader: Any, plan: ContrastPlan, job: _Job, rearr: tuple[int, Any, Any], observed: Any,
@@ -169,10 +188,21 @@ def _whole_map_task(outs: list[_ChunkOut], spec: Any, adjacency: Any) -> tuple[i
 # ------------------------------------------------------------------------------------------------
 
 
+def home_worker(addresses: list[Any], c: int, n_chunks: int, g: int = 0) -> Any:
+    """The worker chunk ``c``'s task of group ``g`` should preferably run on, where the chunk is likely
+    cached: chunks spread over the workers; with fewer chunks than workers, each chunk's groups spread
+    over its share of the workers (speed only: any worker may run any task)."""
+    W = len(addresses)
+    share = max(1, W // n_chunks)
+    return addresses[(c + n_chunks * (g % share)) % W]
+
+
 def _groups(J: int, batch_size: int, per_group: int) -> list[tuple[int, int]]:
-    """Rearrangement ranges of whole batches (the run's batch boundaries), ``per_group`` batches each."""
+    """Rearrangement ranges of whole batches (the run's batch boundaries): the first batch alone (the
+    observed pass, which every other task waits for), then ``per_group`` batches each."""
+    first = min(J, batch_size)
     step = batch_size * per_group
-    return [(r0, min(J, r0 + step)) for r0 in range(0, J, step)]
+    return [(0, first)] + [(r0, min(J, r0 + step)) for r0 in range(first, J, step)]
 
 
 class _Collector:
@@ -235,12 +265,13 @@ class _ClusterRun:
         key = uuid.uuid4().hex
         self.jobs = [_Job(key, s, e, tile, size, work.cache_bytes) for s, e in _chunks(V, execution.chunk_size)]
         self.threads = max(1, int(executor.workers))
-        n_batches = -(-J // size)
+        self.addresses = executor.addresses() or [None]
+        n_later = -(-J // size) - 1  # batches after the first
         if maps.wanted:  # a whole-map task per batch
             per_group = 1
         else:
             wanted = max(1, -(-work.tasks_per_worker * self.threads // len(self.jobs)))
-            per_group = max(1, -(-n_batches // wanted))
+            per_group = max(1, -(-n_later // wanted))
         self.groups = _groups(J, size, per_group)
         per_task = len(self.jobs) + (1 if maps.wanted else 0)
         self.total = per_task * len(self.groups)
@@ -258,24 +289,27 @@ class _ClusterRun:
         reader_f, plan_f = ex.put(self.reader), ex.put(self.plan)
         want = self.maps.wanted
         rearr0 = self._rearr(*self.groups[0])
-        first = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr0, None, want) for job in self.jobs]
+        first = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr0, None, want, near=self._home(c, 0))
+                 for c, job in enumerate(self.jobs)]
         observed = [ex.submit(_small, f) for f in first] if want else first
         in_flight: dict[Any, str] = {}
         try:
-            for fut in ex.completed(observed):
-                self._take(fut, "chunk")
             spec_f = adj_f = None
-            if want:
+            if want:  # the whole-map tasks need the observed map, here
+                for fut in ex.completed(observed):
+                    self._take(fut, "chunk")
                 spec_f, adj_f = self._observe_maps()
                 in_flight[ex.submit(_whole_map_task, first, spec_f, adj_f)] = "whole"
+            else:  # later tasks wait for their chunk's observed task on the cluster
+                in_flight.update(dict.fromkeys(observed, "chunk"))
             del first
-            pending = list(self.groups[1:])
+            pending = list(enumerate(self.groups))[1:]
             limit = self.work.groups_ahead * self.threads * (len(self.jobs) + (1 if want else 0))
             while pending or in_flight:
                 while pending and len(in_flight) < limit:
-                    r0, r1 = pending.pop(0)
-                    in_flight.update(self._submit_group(reader_f, plan_f, self._rearr(r0, r1), observed, spec_f,
-                                                        adj_f))
+                    g, (r0, r1) = pending.pop(0)
+                    in_flight.update(self._submit_group(g, reader_f, plan_f, self._rearr(r0, r1), observed,
+                                                        spec_f, adj_f))
                 for fut in ex.first_done(list(in_flight)):
                     self._take(fut, in_flight.pop(fut))
         except BaseException:
@@ -283,11 +317,14 @@ class _ClusterRun:
             raise
         return self.acc
 
-    def _submit_group(self, reader_f: Any, plan_f: Any, rearr_f: Any, observed: list[Any], spec_f: Any,
+    def _home(self, c: int, g: int) -> str | None:
+        return home_worker(self.addresses, c, len(self.jobs), g)
+
+    def _submit_group(self, g: int, reader_f: Any, plan_f: Any, rearr_f: Any, observed: list[Any], spec_f: Any,
                       adj_f: Any) -> dict[Any, str]:
         ex, want = self.executor, self.maps.wanted
-        tasks = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr_f, obs, want)
-                 for job, obs in zip(self.jobs, observed, strict=True)]
+        tasks = [ex.submit(_chunk_task, reader_f, plan_f, job, rearr_f, obs, want, near=self._home(c, g))
+                 for c, (job, obs) in enumerate(zip(self.jobs, observed, strict=True))]
         if not want:
             return dict.fromkeys(tasks, "chunk")
         out = {ex.submit(_small, t): "chunk" for t in tasks}

@@ -54,10 +54,17 @@ class DaskExecutor(_Base):
         info = self.client.scheduler_info(n_workers=-1)["workers"]
         return max(1, sum(int(w.get("nthreads", 1)) for w in info.values()))
 
-    def submit(self, fn: Callable[..., T], /, *args: Any) -> Any:
+    def submit(self, fn: Callable[..., T], /, *args: Any, near: str | None = None) -> Any:
         """A ``distributed.Future`` (its ``result()`` as with concurrent.futures); futures among ``args`` are
-        passed to the task as their results, worker to worker."""
-        return self.client.submit(fn, *args, pure=False)
+        passed to the task as their results, worker to worker.  ``near``: a worker address the task should
+        preferably run on (where its data may be cached); any other worker may take it."""
+        if near is None:
+            return self.client.submit(fn, *args, pure=False)
+        return self.client.submit(fn, *args, pure=False, workers=[near], allow_other_workers=True)
+
+    def addresses(self) -> list[str]:
+        """The addresses of the workers now connected, sorted."""
+        return sorted(self.client.scheduler_info(n_workers=-1)["workers"])
 
     def put(self, value: Any) -> Any:
         """A future holding ``value``, to pass to many tasks instead of the value (sent once to the cluster,
@@ -114,8 +121,13 @@ def open_scheduler(address: str, timeout: float | None = None) -> DaskExecutor:
         count = address.removeprefix("local:")
         if not count.isdigit() or int(count) < 1:
             raise InputError(f"--scheduler {address}: expected local:N with N >= 1 worker processes, e.g. local:4")
-        cluster = distributed.LocalCluster(n_workers=int(count), threads_per_worker=1, processes=True,
-                                           dashboard_address=":0", silence_logs=logging.ERROR)
+        import dask
+
+        # Dask's sampling profiler (a thread looking at the task's stack every 10 ms) slows the many small
+        # numpy calls of the tasks on a busy machine; the workers started here go without it.
+        with dask.config.set({"distributed.worker.profile.enabled": False}):
+            cluster = distributed.LocalCluster(n_workers=int(count), threads_per_worker=1, processes=True,
+                                               dashboard_address=":0", silence_logs=logging.ERROR)
         return DaskExecutor(distributed.Client(cluster), owned=cluster)
     if "://" not in address:
         raise InputError(f"--scheduler {address}: expected a scheduler address such as tcp://host:8786, or local:N")

@@ -152,7 +152,7 @@ def test_a_worker_without_the_images_is_exit_2_naming_the_first_missing_path(cli
         gone = source.refs[3].path
         gone.unlink()  # the client read it; the workers now cannot
         with pytest.raises(ImageError) as caught:
-            cluster_session(client, source, data)
+            cluster_session(client, source, data, 10**7)
     assert str(gone) in str(caught.value) and caught.value.exit_code == 2
 
 

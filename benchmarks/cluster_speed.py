@@ -9,8 +9,11 @@ What it does (all data invented and seeded, as in ``permutation_speed.py``):
 
    * the local engine (``run_permutations``) with 1 and 2 threads, on the loaded matrix;
    * the cluster driver (``run_on_cluster``) on a LocalCluster of 1 and 2 worker processes of one thread
-     each, including the workers' reading of their chunks from the images and the cluster's start-up of
-     the run (the cluster itself is started before the clock);
+     each, including the workers' reading of their chunks from the images (the cluster itself is started
+     before the clock);
+
+   alternating the two, ``--repeats`` times each (medians are printed), since the load of a shared
+   machine changes under a long run;
 
    and prints the time per permutation, the scaling from 1 to 2 workers, the overhead of N workers
    against N local threads (goal: within 15%), the tasks and the measured cost per task.  The p maps of
@@ -76,6 +79,7 @@ def main() -> None:
     ap.add_argument("--perms", type=int, default=None, help="permutations (5000)")
     ap.add_argument("--workers", type=int, nargs="+", default=[1, 2], help="worker counts (1 2)")
     ap.add_argument("--smooth", type=float, default=1.5)
+    ap.add_argument("--repeats", type=int, default=2, help="alternating local and cluster runs per count (2)")
     args = ap.parse_args()
     cfg = QUICK if args.quick else FULL
     J = args.perms or (500 if args.quick else 5000)
@@ -90,38 +94,36 @@ def main() -> None:
         L[0, 1] = 1.0
         test = ContrastTest(X, L, "t", "two-sided", "group")
         rearr = Rearrangements(n_perm=J, seed=1)
-        local: dict[int, float] = {}
-        reference = None
-        for threads in args.workers:
-            seconds, res = _timed(lambda t=threads: run_permutations(test, data.data, rearr,
-                                                                      execution=Execution(threads=t)))
-            local[threads] = seconds
-            reference = res if reference is None else reference
-            print(f"local engine, {threads} thread(s): {seconds:.1f} s, {1e3 * seconds / J:.2f} ms per permutation")
-        remote: dict[int, float] = {}
+        local: dict[int, list[float]] = {w: [] for w in args.workers}
+        remote: dict[int, list[float]] = {w: [] for w in args.workers}
+        reference = run_permutations(test, data.data, rearr, execution=Execution(threads=1))
         for workers in args.workers:
             ex = open_scheduler(f"local:{workers}")
             try:
                 ex.client.wait_for_workers(workers)
-                counted: list[int] = []
-                t0 = time.perf_counter()
-                res = run_on_cluster(ex, reader, test, rearr, work=ClusterWork(cache_bytes=2**30),
-                                     progress=lambda done, total, c=counted: c.append(total))
-                seconds = time.perf_counter() - t0
-                tasks = counted[-1]
+                for _ in range(args.repeats):  # local and cluster alternating: the load changes under us
+                    t0 = time.perf_counter()
+                    run_permutations(test, data.data, rearr, execution=Execution(threads=workers))
+                    local[workers].append(time.perf_counter() - t0)
+                    counted: list[int] = []
+                    t0 = time.perf_counter()
+                    res = run_on_cluster(ex, reader, test, rearr, work=ClusterWork(cache_bytes=2**30),
+                                         progress=lambda done, total, c=counted: c.append(total))
+                    remote[workers].append(time.perf_counter() - t0)
+                    same = np.array_equal(res.p_perm, reference.p_perm) and np.array_equal(res.p_fwe, reference.p_fwe)
+                    print(f"{workers} worker(s) / thread(s): local {local[workers][-1]:.1f} s, cluster "
+                          f"{remote[workers][-1]:.1f} s ({counted[-1]} tasks); p maps identical: {same}; "
+                          f"load {os.getloadavg()[0]:.1f}")
             finally:
                 ex.close()
-            remote[workers] = seconds
-            same = np.array_equal(res.p_perm, reference.p_perm) and np.array_equal(res.p_fwe, reference.p_fwe)
-            print(f"cluster, {workers} worker(s): {seconds:.1f} s, {1e3 * seconds / J:.2f} ms per permutation, "
-                  f"{tasks} tasks, {seconds * workers / tasks:.2f} s of a worker per task; p maps identical to "
-                  f"the local run: {same}")
         for w in args.workers:
-            if w in local:
-                print(f"overhead, {w} worker(s) against {w} local thread(s): {100 * (remote[w] / local[w] - 1):+.1f}%")
+            lo, re_ = float(np.median(local[w])), float(np.median(remote[w]))
+            print(f"{w} worker(s): local engine {1e3 * lo / J:.2f} ms, cluster {1e3 * re_ / J:.2f} ms per permutation "
+                  f"(medians); overhead {100 * (re_ / lo - 1):+.1f}%")
         if 1 in remote and 2 in remote:
-            print(f"scaling 1 -> 2 workers: {remote[1] / remote[2]:.2f}x (local 1 -> 2 threads: "
-                  f"{local.get(1, np.nan) / local.get(2, np.nan):.2f}x)")
+            r1, r2 = float(np.median(remote[1])), float(np.median(remote[2]))
+            l1, l2 = float(np.median(local[1])), float(np.median(local[2]))
+            print(f"scaling 1 -> 2: cluster {r1 / r2:.2f}x, local threads {l1 / l2:.2f}x")
         data.close()
     print(f"load average after: {os.getloadavg()}")
 

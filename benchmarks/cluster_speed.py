@@ -102,18 +102,21 @@ def main() -> None:
             try:
                 ex.client.wait_for_workers(workers)
                 for _ in range(args.repeats):  # local and cluster alternating: the load changes under us
-                    t0 = time.perf_counter()
+                    t0, c0 = time.perf_counter(), time.process_time()
                     run_permutations(test, data.data, rearr, execution=Execution(threads=workers))
                     local[workers].append(time.perf_counter() - t0)
+                    local_cpu = time.process_time() - c0
                     counted: list[int] = []
+                    w0 = sum(ex.on_every_worker(time.process_time).values())
                     t0 = time.perf_counter()
                     res = run_on_cluster(ex, reader, test, rearr, work=ClusterWork(cache_bytes=2**30),
                                          progress=lambda done, total, c=counted: c.append(total))
                     remote[workers].append(time.perf_counter() - t0)
+                    worker_cpu = sum(ex.on_every_worker(time.process_time).values()) - w0
                     same = np.array_equal(res.p_perm, reference.p_perm) and np.array_equal(res.p_fwe, reference.p_fwe)
-                    print(f"{workers} worker(s) / thread(s): local {local[workers][-1]:.1f} s, cluster "
-                          f"{remote[workers][-1]:.1f} s ({counted[-1]} tasks); p maps identical: {same}; "
-                          f"load {os.getloadavg()[0]:.1f}")
+                    print(f"{workers} worker(s) / thread(s): local {local[workers][-1]:.1f} s ({local_cpu:.1f} s CPU), "
+                          f"cluster {remote[workers][-1]:.1f} s ({worker_cpu:.1f} s CPU in the workers; "
+                          f"{counted[-1]} tasks); p maps identical: {same}; load {os.getloadavg()[0]:.1f}")
             finally:
                 ex.close()
         for w in args.workers:

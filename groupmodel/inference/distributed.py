@@ -26,7 +26,6 @@ from typing import Any
 
 import numpy as np
 
-from ..engine.ols import design_matrix
 from ..runtime.cores import single_threaded_blas
 from .driver import _Accumulated, _check, _chunks, permutation_result
 from .freedman_lane import ContrastPlan, plan_contrast, stack_rows
@@ -240,7 +239,6 @@ def run_on_cluster(
     is called with (tasks done, tasks in all).
     """
     X, V = _check(test, reader, maps, replace(execution, workers=None))
-    design_matrix(X)
     r = rearrangements
     plan = plan_contrast(X, test.weights, kind=test.kind, tail=test.tail, name=test.name, method=r.method,
                          blocks=r.blocks, whole_blocks=r.whole_blocks)

@@ -1,11 +1,12 @@
 """A voxelwise fit on a Dask cluster: the workers read their chunks of the images and run the same pure tasks.
 
 :func:`groupmodel.analysis.voxel_fit.fit_images` with ``client=`` comes here for the work: the parametric
-fit chunk by chunk (:func:`~groupmodel.engine.ols.fit_chunk`) and the permutation tasks
-(:func:`groupmodel.inference.distributed.run_on_cluster`).  The client sends each task the prepared design,
-the paths of the images (once per worker) and the columns of its chunk; the workers read the images from
-the shared file system themselves.  The client still reads every image once, to find the analysis mask
-(as a local run does).
+fit chunk by chunk (:class:`~groupmodel.analysis.chunk_fit.ChunkFit`) and the permutation tasks
+(:func:`groupmodel.inference.distributed.run_on_cluster`, and with variance groups
+:func:`groupmodel.inference.welch_distributed.welch_on_cluster`).  The client sends each task the chunk's fit
+(the prepared design), the paths of the images (once per worker) and the columns of its chunk; the workers
+read the images from the shared file system themselves.  The client still reads every image once, to find
+the analysis mask (as a local run does).
 """
 
 from __future__ import annotations
@@ -16,11 +17,11 @@ from typing import Any
 
 import numpy as np
 
-from ..engine.ols import ChunkResult, Prepared, fit_chunk
 from ..errors import ImageError, InputError
 from ..images.columns import ColumnReader, first_unreadable
 from ..inference.distributed import cached_columns, home_worker
 from ..runtime.cluster import CONNECT_TIMEOUT, DaskExecutor, dask_executor
+from .chunk_fit import ChunkFit, ChunkParts
 
 __all__ = ["ClusterSession", "cluster_session", "fitted_chunks"]
 
@@ -32,6 +33,10 @@ class ClusterSession:
     executor: DaskExecutor
     reader: ColumnReader
     cache_bytes: int
+
+    def record(self) -> dict[str, Any]:
+        """What the run record says of the cluster (it does not change the results)."""
+        return {"scheduler": self.executor.record()}
 
 
 def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> ClusterSession:
@@ -61,23 +66,23 @@ def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> Cl
     return ClusterSession(executor, reader, int(cache_bytes))
 
 
-def _fit_task(reader: ColumnReader, prepared: Prepared, s: int, e: int,
-              cache_bytes: int) -> tuple[int, int, ChunkResult]:
+def _fit_task(reader: ColumnReader, work: ChunkFit, s: int, e: int, cache_bytes: int) -> tuple[int, int, ChunkParts]:
     """One chunk's parametric fit, read by the worker (float64 from the storage dtype, as locally); the
     chunk is kept on the worker for the permutations when it fits."""
     y = np.array(cached_columns(reader, s, e, cache_bytes), dtype=np.float64, order="C")
-    return s, e, fit_chunk(prepared, y)
+    return s, e, work(y)
 
 
-def fitted_chunks(session: ClusterSession, prepared: Prepared, chunk_voxels: int,
-                  progress: Callable[[int, int], None] | None = None) -> Iterator[tuple[slice, ChunkResult]]:
-    """``(columns, fit)`` of every chunk, as the workers finish them (each chunk once; any order)."""
+def fitted_chunks(session: ClusterSession, work: ChunkFit, chunk_voxels: int,
+                  progress: Callable[[int, int], None] | None = None) -> Iterator[tuple[slice, ChunkParts]]:
+    """``(columns, parts)`` of every chunk (:class:`~.chunk_fit.ChunkFit`), as the workers finish them (each
+    chunk once; any order)."""
     ex = session.executor
-    reader_f, prepared_f = ex.put(session.reader), ex.put(prepared)
+    reader_f, work_f = ex.put(session.reader), ex.put(work)
     V = session.reader.n_columns
     starts = range(0, V, chunk_voxels)
     addresses = ex.addresses() or [None]
-    futures = [ex.submit(_fit_task, reader_f, prepared_f, s, min(V, s + chunk_voxels), session.cache_bytes,
+    futures = [ex.submit(_fit_task, reader_f, work_f, s, min(V, s + chunk_voxels), session.cache_bytes,
                          near=home_worker(addresses, c, len(starts))) for c, s in enumerate(starts)]
     try:
         for done, fut in enumerate(ex.completed(futures), start=1):

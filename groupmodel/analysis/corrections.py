@@ -167,6 +167,7 @@ def permutation_inference(
     chunk_voxels: int | None = None,
     progress: Callable[[str, int, int], None] | None = None,
     maps_bytes: int | None = None,
+    checkpoint: Any = None,
     cluster: Any = None,
 ) -> dict[str, HypothesisInference]:
     """Run Freedman-Lane permutation inference for every hypothesis.
@@ -185,6 +186,10 @@ def permutation_inference(
     maps_bytes : int, optional
         Memory for the whole statistic maps that TFCE and cluster inference hold per batch of
         rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
+    checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
+        Save (and resume from) the counts and maxima of each hypothesis's finished batches.
+    cluster : groupmodel.analysis.cluster_fit.ClusterSession, optional
+        Run the permutations on this Dask cluster (not with ``checkpoint``); the same results.
     """
     from ..inference.driver import run_permutations
     from ..inference.settings import BATCH_SIZE, ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
@@ -223,10 +228,13 @@ def permutation_inference(
 
             test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
             chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
-            if cluster is None:
-                res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report)
-            else:
+            if cluster is not None:  # (no checkpoint: refused with a cluster before any work)
                 res = _on_cluster(cluster, test, chosen, map_settings, execution, report)
+            else:
+                saved = None if checkpoint is None else checkpoint.contrast(
+                    h.name, {"permutations": options.permutations, "seed": options.seed, "method": chosen.method})
+                res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report,
+                                       checkpoint=saved)
             out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)
     return out
 

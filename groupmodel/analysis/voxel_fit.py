@@ -6,19 +6,23 @@ this module feeds it the chunks of the loaded images and collects the maps, then
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from contextlib import nullcontext
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from ..engine.ols import Prepared, fit_chunk, prepare
+from ..engine.ols import Prepared, prepare
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
+from ..outputs.provenance import RunClock, RunInputs
+from ..runtime.log import StageLog
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
+from .chunk_fit import ChunkFit, fitted_parts
 from .corrections import (
     HypothesisInference,
     InferenceOptions,
@@ -26,7 +30,13 @@ from .corrections import (
     parametric_corrections,
     permutation_inference,
 )
+from .effect_maps import effect_size_names, effect_sizes
+from .parallel import parallel_plan, spill_warning
+from .participant_check import ParticipantCheck, residual_table
 from .table_fit import require_fittable
+from .unequal_variances import UnequalVarianceTally
+from .welch_fit import WelchSetup, welch_maps, welch_record, welch_setup
+from .welch_inference import check_welch_inference, welch_permutation_inference
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -43,7 +53,8 @@ class VoxelFit:
     grid : groupmodel.images.Grid
     mask : ndarray of bool, shape grid.shape
     maps : dict
-        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``) ->
+        Hypothesis name -> statistic name (``effect``, ``se``, ``t``/``F``, ``z``, ``p``, ``mlog10p``, the
+        corrected p, and the effect sizes and intervals of :mod:`groupmodel.analysis.effect_maps`) ->
         float64 array of shape (n_in_mask,).
     residual_variance : ndarray, shape (n_in_mask,)
     df_resid : int
@@ -57,6 +68,16 @@ class VoxelFit:
         Hypothesis -> what its permutation maps were made with (method, J, exhaustive, seed, TFCE, ...).
     tables : dict
         Hypothesis -> kind (``voxel_fwe``, ``tfce_fwe``, ``cluster_extent_fwe``) -> cluster table.
+    inputs : RunInputs or None
+        The files the fit read (spec, participants table and JSON, mask, images), for the provenance record.
+    clock : RunClock
+        When the fit started (recorded with its wall time).
+    mean_input : ndarray, shape (n_in_mask,), or None
+        The mean of the input images (the background of the report's slices).
+    participant_residuals : DataFrame or None
+        Each observation's mean absolute residual across the mask (:mod:`.participant_check`).
+    runtime : dict
+        Cores available (and what limited them), threads and worker processes the permutations used.
     """
 
     model: Model
@@ -71,6 +92,13 @@ class VoxelFit:
     inference: dict[str, Any] | None = None
     records: dict[str, dict[str, Any]] = field(default_factory=dict)
     tables: dict[str, dict[str, pd.DataFrame]] = field(default_factory=dict)
+    inputs: RunInputs | None = None  # the files read (for the provenance of every sidecar)
+    clock: RunClock = field(default_factory=RunClock.start)  # when the fit started
+    mean_input: np.ndarray | None = None
+    participant_residuals: pd.DataFrame | None = None
+    runtime: dict[str, Any] = field(default_factory=dict)
+    #: With ``variance_groups``: the groups and the statistics used (v and G, df2 per voxel); else None.
+    variance_groups: dict[str, Any] | None = None
 
     @property
     def elements(self) -> str:
@@ -83,7 +111,7 @@ class VoxelFit:
         rows = []
         for h in self.model.hypotheses.values():
             m = self.maps[h.name]
-            stat = m["t"] if h.test == "t" else m["F"]
+            stat = statistic_map(m)
             # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
             tested = ~np.isnan(stat)
             rows.append({
@@ -91,7 +119,8 @@ class VoxelFit:
                 "test": h.test,
                 "tail": h.tail,
                 "df1": h.n_rows,
-                "df2": self.df_resid,
+                # with variance groups df2 is approximate and per voxel: its median over the tested voxels
+                "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_resid,
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
@@ -144,12 +173,18 @@ def fit_images(
     chunk_voxels: int | None = None,
     progress: bool = True,
     inference: InferenceOptions | None = None,
+    log: StageLog | None = None,
+    checkpoint: Any = None,
     client: Any = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
     Every hypothesis also gets Benjamini-Hochberg and Bonferroni adjusted p maps over the mask; with
     ``inference`` (``permutations > 0``) permutation inference runs on the same data while they are loaded.
+
+    TFCE and cluster nulls may run in worker processes (``inference.jobs``, within the cores and the memory
+    budget).  They are started without the caller's main module, so a script calling this needs no
+    ``if __name__ == "__main__":`` guard and may be read from standard input.
 
     Parameters
     ----------
@@ -167,13 +202,21 @@ def fit_images(
         Show a progress bar when stderr is a terminal.
     inference : InferenceOptions, optional
         Permutation inference settings (default: the spec's ``inference`` object).
+    log : StageLog, optional
+        Where to write a line per stage and progress lines for logs (default: nothing).
+    checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
+        Keep the counts and maxima of finished permutation batches there, and resume from them.
     client : dask.distributed.Client, optional
         Run the fit and the permutations on this Dask cluster (:mod:`groupmodel.analysis.cluster_fit`):
         its workers read the images themselves; ``memory_bytes`` is then also each worker's budget.  The
-        results are those of the local run.
+        results are those of the local run.  Not with ``checkpoint``.
     """
     from ..images import chunk_size_for
 
+    clock = RunClock.start()
+    if client is not None and checkpoint is not None:
+        raise InputError("a checkpoint is not available with a Dask cluster (its scheduler reruns a lost "
+                         "worker's tasks instead); leave out one or the other")
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
@@ -184,11 +227,18 @@ def fit_images(
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
     prepared = prepare(model.design.matrix, model.tests())
-    data = _load(source, mask if mask is not None else spec.mask, budget, progress)
+    welch = welch_setup(model, prepared)
+    if welch is not None:
+        check_welch_inference(inference)
+    log = log if log is not None else StageLog(quiet=True)
+    plan = parallel_plan(inference, budget)
+    log.info(plan.cores.describe())
+    with log.stage("reading images"):
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
-            n_maps = sum(len(T_MAPS if h.test == "t" else F_MAPS) for h in model.hypotheses.values()) + 1
+            n_maps = sum(len(_map_names(h)) for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
                                           budget.chunk_work_bytes(n_maps, n_vox))
         session = None
@@ -196,14 +246,28 @@ def fit_images(
             from .cluster_fit import cluster_session
 
             session = cluster_session(client, source, data, budget.permutation_bytes)
-        maps, resid_var = _parametric_pass(model, prepared, data, chunk_voxels, progress, session)
+        tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
+        with log.stage("fitting"):
+            if welch is None:
+                maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
+                                                           ci_level=inference.ci_level, tally=tally, session=session)
+            else:  # Welch's v and G: no effect sizes, mean image or participant check
+                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally, session)
+                extras = None
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
-                    + _flat_warnings(maps, n_vox, elements_of(data.grid)))
+                    + _flat_warnings(maps, n_vox, elements_of(data.grid))
+                    + tally.voxel_findings(elements_of(data.grid)))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
-        permuted = _permutation_pass(model, data, inference, budget, chunk_voxels, progress, session)
-        warnings += inference_notes(data.grid, inference)
+        with log.stage("permutations") if inference.active else nullcontext():
+            permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
+                                         budget, chunk_voxels, progress, log, checkpoint,
+                                         welch, session)
+        warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
+        if data.spilled:
+            warnings.append(spill_warning(model.design.n_observations * n_vox * 4, budget, -(-n_vox // chunk_voxels),
+                                          inference, len(model.hypotheses)))
         for name, res in permuted.items():
             maps[name].update(res.maps)
         report = {
@@ -215,42 +279,64 @@ def fit_images(
         return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
-                        tables={n: r.tables for n, r in permuted.items()})
+                        tables={n: r.tables for n, r in permuted.items()},
+                        inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
+                                                 [(r.path, r.volume) for r in source.refs], model.sample),
+                        clock=clock, mean_input=None if extras is None else extras[0],
+                        participant_residuals=None if extras is None else residual_table(
+                            model.design.participant_ids, extras[1]),
+                        runtime={**plan.as_dict(), **({} if session is None else session.record())},
+                        variance_groups=welch_record(welch) if welch is not None else None)
     finally:
         data.close()
 
 
-def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool) -> Any:
-    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar."""
+def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,
+          log: StageLog | None = None) -> Any:
+    """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar (and
+    progress lines for logs)."""
     from ..images import load_masked
 
     bar = progress_bar(len(source), "reading images", unit="image", enabled=progress)
+
+    def report(done: int, total: int) -> None:
+        bar.update_to(done)
+        if log is not None:
+            log.progress("reading images", done, total, "images")
+
     try:
-        return load_masked(source, mask, budget.data_bytes,
-                           progress=(lambda done, total: bar.update_to(done)) if bar.shown else None)
+        return load_masked(source, mask, budget.data_bytes, progress=report if bar.shown or log else None)
     finally:
         bar.close()
 
 
-def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int,
-                     progress: bool, session: Any = None) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
-    """Effect, SE, t or F, z, p and -log10 p maps of every hypothesis, and the residual variance, chunk by
-    chunk, here or on the cluster of ``session`` (the corrected p maps are allocated here and filled by the
-    corrections)."""
+def _map_names(h: Any) -> tuple[str, ...]:
+    """The parametric maps of one hypothesis: T_MAPS or F_MAPS, then its effect sizes and intervals."""
+    return (T_MAPS if h.test == "t" else F_MAPS) + effect_size_names(h)
+
+
+def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool, *,
+                     ci_level: float, tally: UnequalVarianceTally, session: Any = None
+                     ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
+    """Effect, SE, t or F, z, p, -log10 p, effect-size and interval maps of every hypothesis, and the residual
+    variance, chunk by chunk, here or on the cluster of ``session`` (intervals at ``ci_level``; the corrected
+    p maps are allocated here and filled by the corrections); also the mean input image and the
+    per-participant residual sums (added in chunk order), and the chunks counted by ``tally``."""
     n_vox = data.n_in_mask
-    maps = {h.name: {k: np.empty(n_vox) for k in (T_MAPS if h.test == "t" else F_MAPS)}
-            for h in model.hypotheses.values()}
+    maps = {h.name: {k: np.empty(n_vox) for k in _map_names(h)} for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
+    mean_input = np.empty(n_vox)
+    check = ParticipantCheck.empty(model.design.n_observations)
+    sums: dict[int, tuple[np.ndarray, int]] = {}
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
-        if session is None:
-            fitted = ((cols, fit_chunk(prepared, y)) for cols, y in data.chunks(chunk_voxels))
-        else:
-            from .cluster_fit import fitted_chunks
-
-            fitted = fitted_chunks(session, prepared, chunk_voxels)
-        for cols, res in fitted:
+        work = ChunkFit(prepared, model.design.matrix, tally.counter())
+        for cols, part in fitted_parts(work, data, chunk_voxels, session):
+            res = part.fit
             resid_var[cols] = res.residual_variance
+            mean_input[cols] = part.mean
+            sums[cols.start] = (part.sums, cols.stop - cols.start)
+            tally.add_counts(part.counts)
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
@@ -262,10 +348,14 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
                 m["z"][cols] = r.z
                 m["p"][cols] = r.p
                 m["mlog10p"][cols] = r.mlog10p
+                for k, values in effect_sizes(h, r, res.residual_variance, ci_level).items():
+                    m[k][cols] = values
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
-    return maps, resid_var
+    for s in sorted(sums):  # in chunk order: the same sums, bit for bit, in whatever order the chunks came
+        check.add_sums(*sums[s])
+    return maps, resid_var, (mean_input, check)
 
 
 def elements_of(grid: Any) -> str:
@@ -278,17 +368,23 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
     if not maps:
         return []
     first = next(iter(maps.values()))
-    n_flat = int(np.count_nonzero(np.isnan(first["t" if "t" in first else "F"])))
+    n_flat = int(np.count_nonzero(np.isnan(statistic_map(first))))
     if not n_flat:
         return []
     return [f"{n_flat} of {n_vox} {elements} have (numerically) zero residual variance, e.g. the same "
             "value in every image: their t, F, z and p are NaN (not tested)"]
 
 
+def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
+    """A hypothesis's statistic map: t or F, or with variance groups v or G."""
+    return next(maps[k] for k in ("t", "F", "v", "G") if k in maps)
+
+
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool, session: Any = None) -> dict[str, HypothesisInference]:
+                      chunk_voxels: int, progress: bool, log: StageLog, checkpoint: Any = None,
+                      welch: WelchSetup | None = None, session: Any = None) -> dict[str, HypothesisInference]:
     """Permutation inference of every hypothesis (nothing when no permutations are asked for), here or on
-    the cluster of ``session`` (progress in permutations here, in tasks there)."""
+    the cluster of ``session`` (progress in rearrangements here, in tasks there)."""
     if not options.active:
         return {}
     if session is None:
@@ -297,17 +393,23 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
     else:
         bar = progress_bar(0, "permutation tasks", unit="task", enabled=progress)
     done_before: dict[str, int] = {}
+    totals = {h: options.permutations for h in model.hypotheses}
 
     def report(name: str, done: int, total: int) -> None:
         if session is not None and name not in done_before:
             bar.grow(total)  # a contrast's task count is known when it starts
+            totals[name] = total
         bar.update(done - done_before.get(name, 0))
         done_before[name] = done
+        log.progress("permutations" if session is None else "permutation tasks", sum(done_before.values()),
+                     sum(totals.values()), "rearrangements" if session is None else "tasks")
 
     try:
+        if welch is not None:
+            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report, cluster=session)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
-                                     progress=report, cluster=session)
+                                     progress=report, checkpoint=checkpoint, cluster=session)
     finally:
         bar.close()
 

@@ -57,9 +57,37 @@ def table_choice(req: Request, files: Files) -> TableChoice:
 def align_rows(req: Request, files: Files) -> Alignment:
     """Which table row every design row is, with the findings on rows."""
     choice = table_choice(req, files)
+    repeated = _repeated(req, files, choice)
+    if repeated is not None:
+        return repeated
     if files.x.ids is not None:
         return _align_by_ids(req, files, choice)
     return _align_by_order(req, files, choice)
+
+
+def _repeated(req: Request, files: Files, choice: TableChoice) -> Alignment | None:
+    """Several rows per participant (repeated measures): one finding, and the checks that need one row per
+    participant skipped (see :mod:`groupmodel.audit.repeated`)."""
+    from .repeated import find_grouping, repeated_finding
+
+    ids = files.frame["participant_id"].tolist()
+    if files.x.ids is not None:
+        pos = {p: i for i, p in enumerate(ids)}
+        expected = np.array(sorted({pos[p] for p in files.x.ids if p in pos}), dtype=int)
+    else:
+        sample_rows = _sample_rows(files)
+        expected = sample_rows if sample_rows is not None else np.arange(len(ids))
+    candidates = [expected]
+    if files.x.ids is None and files.sample is None and (choice.factors or choice.covariates):
+        alt = _drop_missing(files, choice.factors, choice.covariates)
+        if alt is not None and len(alt[0]) < len(expected):
+            candidates.append(alt[0])  # the participants without n/a in the columns named
+    for rows in candidates:
+        table = prepare_table(files.frame, req.participants, choice, rows)
+        grouping = find_grouping(req, files, table, rows)
+        if grouping is not None:
+            return Alignment(table, None, (repeated_finding(req, files, grouping),))
+    return None
 
 
 def _sample_rows(files: Files) -> np.ndarray | None:

@@ -175,7 +175,8 @@ def _one_contrast(ctx: AuditContext, con: ContrastReport, space: RowSpace, canon
     con = dataclasses.replace(con, estimable=bool(ok.all()))
     if not ok.all():
         bad = ", ".join(str(k + 1) for k in np.flatnonzero(~ok))
-        deps = dependents_in_words(ctx.files.x.values, [ctx.brief(j) for j in range(L.shape[1])])
+        deps = dependents_in_words(ctx.files.x.values, [ctx.brief(j) for j in range(L.shape[1])],
+                                   ctx.files.x.tolerances())
         found.append(_finding(
             "error", "not_estimable",
             f"{title} ({where_rows(ctx, con)}) is not estimable: row {bad} is not in the row space of "
@@ -373,9 +374,10 @@ def _part_of_effect(ctx: AuditContext, con: ContrastReport, canonical: dict[str,
     return []
 
 
-def dependents_in_words(x: np.ndarray, names: list[str]) -> list[str]:
-    """:func:`groupmodel.checks.dependent_columns` for labels that already say 'column'."""
-    return [d.replace("column column ", "column ") for d in dependent_columns(x, names)]
+def dependents_in_words(x: np.ndarray, names: list[str], entry_tol: np.ndarray | None = None) -> list[str]:
+    """:func:`groupmodel.checks.dependent_columns` for labels that already say 'column'; ``entry_tol`` (the
+    rounding of the typed entries, per column) drops and shortens coefficients that are rounding noise."""
+    return [d.replace("column column ", "column ") for d in dependent_columns(x, names, entry_tol)]
 
 
 def same_rows(a: np.ndarray, b: np.ndarray, tol: float) -> bool:

@@ -84,6 +84,10 @@ def _patterns(files: Files, view: TableView, roles: list[ColumnRole]) -> _Patter
     n_cells = max(2, len(np.unique(cell_key[valid])))
     discrete = [r.index for r in roles if r.kind in ("unexplained", "factor", "interaction", "cell_function")
                 and len(np.unique(np.round(x.values[valid, r.index], 9))) <= n_cells]
+    # An unexplained column that agrees with the cells no better than its values shuffled over the rows is
+    # not a coding with typos (a column of +/-0.5 unrelated to the factors): read as an unknown column.
+    discrete = [j for j in discrete if roles[j].kind != "unexplained"
+                or _follows_cells(np.round(x.values[valid, j] / (2 * x.tolerance(j))), cell_key[valid])]
     if not any(roles[j].kind == "unexplained" for j in discrete):
         return None
     tol = np.array([2 * x.tolerance(j) for j in discrete])
@@ -95,6 +99,35 @@ def _patterns(files: Files, view: TableView, roles: list[ColumnRole]) -> _Patter
         if count * 2 > len(rows):
             majority[int(k)] = pat
     return _Patterns(discrete, tol, patterns, majority, cell_key, names, view)
+
+
+#: Shuffles of a column's values over the rows against which its agreement with the cells is judged, and the
+#: fraction of shuffles allowed to agree as well (a seeded, deterministic permutation test at the 1% level).
+SHUFFLES = 400
+SHUFFLE_LEVEL = 0.01
+
+
+def _misfits(values: np.ndarray, cells: np.ndarray) -> np.ndarray:
+    """Rows off their cell's most common value, for every row of ``values`` (shape (m, n)): shape (m,)."""
+    _, vcode = np.unique(values, return_inverse=True)
+    vcode = vcode.reshape(values.shape)
+    _, ccode = np.unique(cells, return_inverse=True)
+    n_v, n_c = int(vcode.max()) + 1, int(ccode.max()) + 1
+    key = ccode[None, :] * n_v + vcode
+    counts = np.zeros((values.shape[0], n_c * n_v), dtype=int)
+    np.add.at(counts, (np.arange(values.shape[0])[:, None], key), 1)
+    counts = counts.reshape(values.shape[0], n_c, n_v)
+    return values.shape[1] - counts.max(axis=2).sum(axis=1)
+
+
+def _follows_cells(values: np.ndarray, cells: np.ndarray) -> bool:
+    """Does a column agree with the cells (each cell one value, but for a few rows) better than chance?"""
+    observed = int(_misfits(values[None, :], cells)[0])
+    if observed == 0:
+        return True
+    rng = np.random.default_rng(20261202)
+    shuffled = np.array([rng.permutation(values) for _ in range(SHUFFLES)])
+    return bool((_misfits(shuffled, cells) <= observed).mean() <= SHUFFLE_LEVEL)
 
 
 def _reordered(req: Request, files: Files, table: PreparedTable, claimed: np.ndarray,

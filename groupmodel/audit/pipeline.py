@@ -12,6 +12,7 @@ finding (severity ``error``, ``warning`` or ``note``):
 5. what every contrast tests, over cell means, and the classic mistakes;
 6. rows out of place (each row's participant found from its coding and covariate values, or from the
    image list, whatever the order: see :mod:`groupmodel.audit.reorder`) and image lists out of order;
+   several images per participant in one model (see :mod:`groupmodel.audit.repeated`);
 7. with a spec: same column space or not, and which generated hypothesis each contrast equals;
 8. covariates: uncentred in an interaction, or confounded with a factor.
 
@@ -53,6 +54,7 @@ from .sections import (
     with_spec_matches,
 )
 from .spec import compare_with_spec
+from .variances import variance_findings
 
 __all__ = ["AuditReport", "ContrastReport", "HandDesign", "SECTIONS", "SMD_WARN", "audit"]
 
@@ -66,6 +68,7 @@ PIPELINE: tuple[Callable[[AuditContext], list[AuditFinding]], ...] = (
     contrast_findings,
     covariate_findings,
     spec_findings,
+    variance_findings,
 )
 
 

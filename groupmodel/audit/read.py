@@ -121,6 +121,10 @@ class MatrixFile:
         typed = 0.5 * 10.0 ** (-d) * 1.01 if d >= 1 else 0.0
         return max(typed, 1e-9 * max(scale, 1.0))
 
+    def tolerances(self) -> np.ndarray:
+        """:meth:`tolerance` of every column, shape (n_columns,)."""
+        return np.array([self.tolerance(j) for j in range(self.n_columns)])
+
     def entry_tolerance(self, rows: list[int]) -> float:
         """Largest rounding of the entries of some rows (contrast weights).
 

@@ -49,7 +49,7 @@ def rank_findings(ctx: AuditContext) -> list[AuditFinding]:
         out.append(_at("rank", "warning", "too_many_columns",
                        f"the design has {p} columns but only {n} rows: it cannot be full rank"))
     if rank < p:
-        deps = dependents_in_words(x, names)
+        deps = dependents_in_words(x, names, ctx.files.x.tolerances())
         out.append(_at("rank", "warning", "rank_deficient",
                        f"the design has rank {rank} with {p} columns: " + "; ".join(deps)
                        + " (an empty cell, a level coded twice, or an indicator of every level beside an intercept); "
@@ -198,6 +198,10 @@ def contrast_findings(ctx: AuditContext) -> list[AuditFinding]:
     out = list(ctx.contrasts.findings)
     for con in ctx.contrasts.reports:
         out.extend(con.findings)
+    if ctx.alignment is not None and any(
+            f.code == "repeated_measures" and "not estimable" in f.message for f in ctx.alignment.findings):
+        # participant columns absorb the between-participant effects: the repeated-measures finding says so
+        out = [f for f in out if f.code != "not_estimable"]
     return out
 
 

@@ -227,5 +227,5 @@ def member_brief(m: Any) -> str:
     if m.kind == "effect":
         return f"{m.factor} {m.level} vs {m.reference}"
     if m.kind == "polynomial":
-        return f"{m.factor} {('linear', 'quadratic', 'cubic')[min(m.degree or 1, 3) - 1]}"
+        return f"{m.factor} {degree_name(m.degree or 1)}"
     return m.factor

@@ -66,6 +66,7 @@ def _silence_stdout() -> None:
 def _run(argv: Sequence[str] | None) -> int:
     parser = make_parser()
     args = parser.parse_args(argv)
+    args.argv = list(sys.argv[1:] if argv is None else argv)  # recorded in dataset_description.json
     if args.command is None:
         parser.print_help()
         return 2

@@ -16,6 +16,7 @@ examples:
   groupmodel fit example_study/model.json --out results/
   groupmodel fit example_study/model.json --outcome hippocampus_signal --out roi/
   groupmodel check --design design.tsv --contrasts contrasts.tsv --participants participants.tsv
+  groupmodel report results/
 
 exit codes: 0 ok; 1 the model or data has problems; 2 usage or unreadable input.
 groupmodel supports research; it is not a clinical or diagnostic tool.
@@ -87,6 +88,7 @@ def make_parser() -> argparse.ArgumentParser:
     _add_build(sub)
     _add_fit(sub)
     _add_check(sub)
+    _add_report(sub)
     return p
 
 
@@ -137,6 +139,18 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    help="leave out participants whose image is missing (listed) instead of stopping")
     f.add_argument("--force", action="store_true", help="replace an existing non-empty --out folder")
     f.add_argument("--no-pictures", action="store_true", help="skip the PNG pictures of the design and contrasts")
+    f.add_argument("--dry-run", action="store_true",
+                   help="check spec, table, images and mask and say what the run would do (observations, voxels, "
+                   "hypotheses, permutations, memory, estimated time); write nothing; exit 0/1/2 as a real run")
+    f.add_argument("--checkpoint", type=Path, metavar="DIR",
+                   help="keep the counts and maxima of finished permutation batches in DIR (removed when the run "
+                   "ends well), so that a killed run can be continued with --resume")
+    f.add_argument("--resume", action="store_true",
+                   help="continue the run whose --checkpoint DIR is given (same command; the maps are identical to "
+                   "those of a run that was never stopped)")
+    f.add_argument("--checkpoint-every", type=finite_number, default=60.0, metavar="SECONDS",
+                   help="seconds between two saves of the checkpoint (default 60)")
+    f.add_argument("--quiet", action="store_true", help="no stage or progress lines on stderr (warnings still shown)")
     _add_inference_options(f)
     f.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
 
@@ -157,6 +171,9 @@ def _add_inference_options(f: argparse.ArgumentParser) -> None:
     f.add_argument("--tfce", action="store_true", help="threshold-free cluster enhancement (E=0.5, H=2)")
     f.add_argument("--cluster-threshold", type=finite_number, metavar="Z",
                    help="cluster-forming threshold as a z value for cluster-extent FWE (e.g. 3.1)")
+    f.add_argument("--ci-level", type=finite_number, default=None, metavar="LEVEL",
+                   help="confidence level of the intervals of effects and partial eta squared, between 0 and 1 "
+                   "(default 0.95)")
     f.add_argument("--jobs", type=whole_number(1), default=None, metavar="N",
                    help="worker processes for TFCE and cluster permutations (default: all cores this process "
                    "may use; results do not depend on it)")
@@ -200,3 +217,19 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
                    "sub-<label> in each path is compared with the row's participant")
     c.add_argument("--json", type=Path, help="also write the findings as JSON to this file")
     c.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)
+
+
+def _add_report(sub: argparse._SubParsersAction) -> None:
+    r = sub.add_parser(
+        "report",
+        help="build report.html again from an output folder",
+        description="Read the files of a groupmodel output folder (of build or fit) and write its report.html: "
+        "one self-contained page with the study, the design, the hypotheses, their sensitivity and the results.",
+        epilog="examples:\n  groupmodel report results/\n  groupmodel report results/ --background template.nii.gz\n",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    r.add_argument("folder", type=Path, help="the --out folder of a groupmodel build or fit")
+    r.add_argument("--background", type=Path, help="image on the grid of the maps to draw slices over (default: "
+                   "the mean of the input images, mean_input)")
+    r.add_argument("--no-pictures", action="store_true", help="leave the figures out of the report")
+    r.add_argument("--debug", action="store_true", help=argparse.SUPPRESS)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from ..text import DISCLAIMER
 
@@ -11,13 +11,14 @@ if TYPE_CHECKING:
     from ..analysis.voxel_fit import VoxelFit
     from ..model.assembly import Model
     from ..outputs.folder import StaleFolder, StaleLock
+    from ..runtime.log import StageLog
 
 
-def print_removed(removed: tuple[StaleFolder, ...]) -> None:
-    """One line naming the hidden folders of killed earlier runs that were just removed (nothing if none)."""
+def print_removed(removed: tuple[StaleFolder, ...], where: str = "beside --out") -> None:
+    """One line naming the folders of killed earlier runs that were just removed (nothing if none)."""
     if removed:
         names = ", ".join(f"{r.path.name} (process {r.pid})" for r in removed)
-        print(f"removed {names}: left beside --out by an earlier run that was killed before it finished")
+        print(f"removed {names}: left {where} by an earlier run that was killed before it finished")
 
 
 def print_stale_lock(stale: StaleLock | None) -> None:
@@ -58,8 +59,6 @@ def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
           f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
           f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
     print_exclusions(m)
-    for w in fit.warnings:
-        print(f"  warning: {w}")
     for h in m.hypotheses.values():
         print(f"  {h.name} [{h.test}]: {h.statement}")
     if options.active:
@@ -75,6 +74,9 @@ def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
     """The settings of permutation inference, then the method and rearrangements of each hypothesis."""
     rule = " (auto: sign flips for means, row permutation for differences and slopes)" \
         if options.method == "auto" else ""
+    if options.method == "auto" and getattr(fit, "variance_groups", None) is not None:
+        rule = (" (auto with variance groups: row permutation within the groups; sign flips for means and for "
+                "differences between the groups)")
     lines = [f"permutation inference: seed {options.seed}, Freedman-Lane; TFCE {'on' if options.tfce else 'off'}; "
              f"cluster threshold {options.cluster_threshold if options.cluster_threshold is not None else 'none'}; "
              f"method per hypothesis{rule}:"]
@@ -83,6 +85,18 @@ def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
         lines.append(f"  {name}: {method}, {rec.get('permutations')} rearrangements"
                      f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}")
     return "\n".join(lines)
+
+
+def log_findings(log: StageLog, findings: list[Any], warnings: list[str]) -> None:
+    """The design's findings (condition number, VIF, ...) and the fit's warnings, on the log (stderr); notes
+    only without --quiet."""
+    for f in findings:
+        if f.severity == "warning":
+            log.warning(f.message)
+        else:
+            log.info(str(f))
+    for w in warnings:
+        log.warning(w)
 
 
 def print_disclaimer() -> None:

@@ -98,11 +98,16 @@ def _fmt_coef(c: float) -> str:
     return number_text(abs(c), whole_tol=1e-6)
 
 
-def dependent_columns(matrix: np.ndarray, names: list[str]) -> list[str]:
+def dependent_columns(matrix: np.ndarray, names: list[str], entry_tol: np.ndarray | None = None) -> list[str]:
     """Describe each column that is a linear combination of earlier independent columns, in words.
 
     Columns are taken left to right; a column that adds nothing to the span of the columns kept so far is
     written as that combination, e.g. ``column site=B equals intercept - site=A``.
+
+    ``entry_tol`` (one absolute tolerance per column: the rounding of typed entries) lets the words drop terms
+    and shorten coefficients that are rounding noise (``-0.0016 x intercept`` where codes were typed with two
+    decimals), as long as the shorter combination still reproduces the column within that rounding; such a
+    combination is marked "within the rounding of the typed entries".
     """
     kept: list[int] = []
     out = []
@@ -118,8 +123,63 @@ def dependent_columns(matrix: np.ndarray, names: list[str]) -> list[str]:
             out.append(f"column {names[j]} is all zero")
             continue
         coef, *_ = np.linalg.lstsq(matrix[:, kept], matrix[:, j], rcond=None) if kept else (np.zeros(0),)
-        out.append(f"column {names[j]} equals {_combination_text(coef, [names[k] for k in kept])}")
+        note = ""
+        if entry_tol is not None and kept:
+            short = simplest_combination(matrix[:, kept], matrix[:, j], entry_tol[kept], float(entry_tol[j]))
+            if not np.allclose(short, coef, rtol=1e-9, atol=1e-12):
+                coef, note = short, " (within the rounding of the typed entries)"
+        out.append(f"column {names[j]} equals {_combination_text(coef, [names[k] for k in kept])}{note}")
     return out
+
+
+#: Most decimals a coefficient is shortened to when the typed entries are rounded.
+SNAP_DECIMALS = 4
+
+
+def simplest_combination(a: np.ndarray, y: np.ndarray, tol_a: np.ndarray, tol_y: float) -> np.ndarray:
+    """Coefficients ``c`` with ``a @ c`` equal to ``y`` within the typed rounding, with as few terms and as
+    few decimals as that allows.
+
+    A combination reproduces ``y`` when no row is off by more than ``tol_y + sum_k |c_k| tol_a[k]`` (the
+    rounding of the entries of ``y`` and of the columns used).  Terms are dropped smallest contribution first,
+    then coefficients rounded to the fewest decimals (two significant digits at least, up to
+    :data:`SNAP_DECIMALS` decimals), largest first, the others
+    refitted each time.  Without rounding (``tol`` about 0) this is the least-squares combination.
+    """
+    k = a.shape[1]
+    coef, *_ = np.linalg.lstsq(a, y, rcond=None)
+    slack = 1e-12 * max(1.0, float(np.abs(y).max()))
+
+    def fits(c: np.ndarray) -> bool:
+        return float(np.abs(a @ c - y).max()) <= tol_y + float(np.abs(c) @ tol_a) + slack
+
+    def refit(fixed: dict[int, float], free: list[int]) -> np.ndarray:
+        c = np.zeros(k)
+        for i, v in fixed.items():
+            c[i] = v
+        if free:
+            c[free], *_ = np.linalg.lstsq(a[:, free], y - a @ c, rcond=None)
+        return c
+
+    active = [i for i in range(k) if coef[i] != 0]
+    size = np.abs(coef) * np.abs(a).max(axis=0)
+    for i in sorted(active, key=lambda i: size[i]):
+        trial = refit({}, [m for m in active if m != i])
+        if fits(trial):
+            active, coef = [m for m in active if m != i], trial
+    fixed: dict[int, float] = {}
+    for i in sorted(active, key=lambda i: -abs(coef[i])):
+        # at least two significant digits: 0.3162 becomes 0.32, not 0.3
+        first = max(0, 1 - int(np.floor(np.log10(abs(coef[i]))))) if coef[i] != 0 else 0
+        for d in range(first, max(first, SNAP_DECIMALS) + 1):
+            v = round(float(coef[i]), d)
+            if v == 0:
+                continue
+            trial = refit({**fixed, i: v}, [m for m in active if m != i and m not in fixed])
+            if fits(trial):
+                fixed[i], coef = v, trial
+                break
+    return coef
 
 
 def _combination_text(coef: np.ndarray, names: list[str]) -> str:

@@ -197,29 +197,42 @@ def check_images(
 
     Raises
     ------
-    ImageError
-        The first problem found, naming the observation and the file.
+    ImageProblems
+        Every problem found (missing, unreadable, on another grid), each naming the observation and the file:
+        the one message when there is one, else a count by kind and the first :data:`MAX_LISTED_PROBLEMS`.
     """
     if source.mode == "4d":
         return _check_4d(source), []
 
     kept: list[int] = []
     dropped: list[tuple[str, str]] = []
+    problems: list[ImageProblem] = []
     first: tuple[ImageRef, _Info] | None = None
     for pos, ref in enumerate(source.refs):
         reason = _missing_reason(ref)
         if reason is not None:
             if drop_missing:
                 dropped.append((ref.label, reason))
-                continue
-            _raise_missing(ref, source)
-        info = _check_one(ref, source.origin)
+            else:
+                problems.append(_missing_problem(ref, source))
+            continue
+        try:
+            info = _check_one(ref, source.origin)
+        except ImageError as exc:
+            problems.append(ImageProblem("unreadable", str(exc)))
+            continue
         if first is None:
             first = (ref, info)
         else:
-            _compare(first, ref, info)
+            try:
+                _compare(first, ref, info)
+            except ImageError as exc:
+                problems.append(ImageProblem("on another grid", str(exc)))
+                continue
         kept.append(pos)
 
+    if problems:
+        raise_problems(problems, len(source), source.origin)
     if first is None:
         raise ImageError(
             f"expected at least one image; found none of {len(source)} (from {source.origin}); "
@@ -231,6 +244,53 @@ def check_images(
     return checked, dropped
 
 
+#: How many image problems an error lists line by line (the rest are counted).
+MAX_LISTED_PROBLEMS = 10
+
+
+@dataclass(frozen=True)
+class ImageProblem:
+    """One image that cannot be used: its kind (``missing``, ``unreadable``, ``on another grid``) and the
+    message naming the observation, the file and the fix."""
+
+    kind: str
+    message: str
+
+
+class ImageProblems(ImageError):
+    """Several images cannot be used: every problem, counted by kind (the first few listed line by line)."""
+
+    def __init__(self, message: str, problems: tuple[ImageProblem, ...]) -> None:
+        super().__init__(message)
+        self.problems = problems
+
+
+def problems_text(problems: list[ImageProblem], n_images: int, origin: str) -> str:
+    """``5 of 60 images cannot be used (3 missing, 1 on another grid, 1 unreadable; from ...)`` and the first
+    :data:`MAX_LISTED_PROBLEMS` messages, one per line."""
+    counts: dict[str, int] = {}
+    for p in problems:
+        counts[p.kind] = counts.get(p.kind, 0) + 1
+    drop = (f", or pass {DROP_MISSING_FLAG} to leave out participants whose image is missing"
+            if "missing" in counts else "")
+    head = (f"{len(problems)} of {n_images} images cannot be used "
+            f"({', '.join(f'{n} {kind}' for kind, n in counts.items())}; from {origin}); fix them all{drop}:")
+    lines = [f"  {p.message}" for p in problems[:MAX_LISTED_PROBLEMS]]
+    if len(problems) > MAX_LISTED_PROBLEMS:
+        lines.append(f"  ... and {len(problems) - MAX_LISTED_PROBLEMS} more")
+    return "\n".join([head, *lines])
+
+
+def raise_problems(problems: list[ImageProblem], n_images: int, origin: str) -> NoReturn:
+    """One problem: its own message; several: every one of them at once (:class:`ImageProblems`)."""
+    if len(problems) == 1:
+        raise ImageProblems(problems[0].message, tuple(problems))
+    if len(problems) == n_images and len({p.kind for p in problems}) == 1 and problems[0].kind != "missing":
+        # one cause for all (a wrong suffix, say): the first message says it
+        raise ImageProblems(f"{problems[0].message} (and the same for all {n_images} images)", tuple(problems))
+    raise ImageProblems(problems_text(problems, n_images, origin), tuple(problems))
+
+
 def _missing_reason(ref: ImageRef) -> str | None:
     """Why an observation has no image (no path, or no file there); None when the file exists."""
     if ref.path is None:
@@ -240,13 +300,13 @@ def _missing_reason(ref: ImageRef) -> str | None:
     return None
 
 
-def _raise_missing(ref: ImageRef, source: ImageSource) -> NoReturn:
+def _missing_problem(ref: ImageRef, source: ImageSource) -> ImageProblem:
     where = f"{ref.path}" if ref.path is not None else ref.problem
-    raise ImageError(
+    return ImageProblem("missing", (
         f"image for {ref.label} not found: {where} (from {source.origin}); add the file, fix the "
         f"{'pattern' if source.mode == 'pattern' else 'column'}, or pass {DROP_MISSING_FLAG} to "
         "leave the participant out"
-    )
+    ))
 
 
 def _check_one(ref: ImageRef, origin: str) -> _Info:

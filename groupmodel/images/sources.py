@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ImageError
+from ..runtime.paths import text_join
 from .grid import Grid, _is_nifti
 
 
@@ -186,7 +187,7 @@ def _pattern_source(images: str, ids: list[str], table: pd.DataFrame, base: Path
             continue
         for f in fields:
             values[f] = _as_text(row[f])  # type: ignore[assignment]
-        refs.append(ImageRef(i, label, base / images.format_map(values)))
+        refs.append(ImageRef(i, label, text_join(base, images.format_map(values))))
     return ImageSource(tuple(refs), "pattern", f'{source_label} pattern "{images}"')
 
 
@@ -198,7 +199,7 @@ def _column_source(images: str, ids: list[str], table: pd.DataFrame, base: Path,
         if text is None or not text.strip():
             refs.append(ImageRef(i, label, None, problem=f"n/a in column {images!r}"))
         else:
-            refs.append(ImageRef(i, label, base / text.strip()))
+            refs.append(ImageRef(i, label, text_join(base, text.strip())))
     return ImageSource(tuple(refs), "column", f'{source_label} column "{images}" of participants.tsv')
 
 
@@ -211,7 +212,7 @@ def _four_d_source(
     n_file_rows: int | None,
 ) -> ImageSource:
     """(c) One 4-D NIfTI file; :func:`check_images` later decides which volume belongs to which row."""
-    path = base / images
+    path = text_join(base, images)
     if not path.is_file():
         raise ImageError(
             f'{source_label} "{images}": expected a path pattern with {{participant_id}}, the name of a '

@@ -4,6 +4,11 @@ A spill is a temporary folder with one preallocated file of values (:func:`_new_
 numpy memmap whose resident pages are dropped as the work goes (:func:`release_pages`), compacted in place
 to the mask (:func:`_compact`, :mod:`.packed`), and read back in column blocks by plain file reads
 (:class:`SpillReader`).
+
+Each spill folder holds an owner record (process id, host, process start time; :mod:`groupmodel.runtime.owner`).
+A run killed outright (``kill -9``) cannot remove its spill; the next run that spills into the same folder, or
+calls :func:`remove_stale_spills`, removes the spill folders whose process is gone.  Folders of live runs, of
+other hosts, or without an owner record are left alone.
 """
 
 from __future__ import annotations
@@ -17,16 +22,32 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..runtime.owner import StaleFolder, remove_stale_folders_of, write_owner
 from .packed import PackedRows, compact_packed
 
 _SPILL_NAME = "data.f32"
+#: Prefix of every spill folder (in the work folder, by default TMPDIR).
+SPILL_PREFIX = "groupmodel-spill-"
+
+
+def remove_stale_spills(workdir: Path | str | None = None) -> tuple[StaleFolder, ...]:
+    """Remove the spill folders in ``workdir`` (default: the temporary folder, TMPDIR) of killed runs of this
+    host, recognised by their owner record; returns those removed."""
+    where = Path(tempfile.gettempdir() if workdir is None else workdir)
+    try:
+        candidates = sorted(p for p in where.glob(f"{SPILL_PREFIX}*") if p.is_dir())
+    except OSError:
+        return ()
+    return remove_stale_folders_of(candidates)
 
 
 def _new_spill(workdir: Path | str | None, n_values: int, dtype: type = np.float32) -> tuple[Path, np.memmap]:
     """A temporary folder with a preallocated memmap of ``n_values`` values of ``dtype``."""
     nbytes = n_values * np.dtype(dtype).itemsize
+    remove_stale_spills(workdir)  # space left by killed runs first
     try:
-        d = Path(tempfile.mkdtemp(prefix="groupmodel-spill-", dir=None if workdir is None else str(workdir)))
+        d = Path(tempfile.mkdtemp(prefix=SPILL_PREFIX, dir=None if workdir is None else str(workdir)))
+        write_owner(d)
     except OSError as exc:
         raise InputError(
             f"expected a writable folder for spilling data to disk; found {exc.strerror}: "

@@ -32,6 +32,7 @@ from ..engine.ols import design_matrix
 from ..errors import InputError
 from ..runtime.cores import available_cores, single_threaded_blas
 from ..runtime.executors import InlineExecutor, ThreadExecutor, thread_executor
+from .checkpoint import BatchState, ContrastCheckpoint
 from .freedman_lane import ContrastPlan, plan_contrast, stack_rows
 from .kernel import (
     ChunkNulls,
@@ -231,21 +232,53 @@ def permutation_result(test: ContrastTest, plan: ContrastPlan, pset: Permutation
     )
 
 
+def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
+    """Put back the counts and maxima of a checkpoint (after the observed batch was recomputed)."""
+    acc = run.acc
+    if saved.count.shape != acc.count.shape or saved.max_null.shape != acc.max_null.shape:
+        raise InputError(
+            f"the checkpoint holds {saved.count.size} elements and {saved.max_null.size} rearrangements, this run "
+            f"{acc.count.size} and {acc.max_null.size}; resume with the same data, or remove the checkpoint"
+        )
+    acc.count[:] = saved.count
+    acc.max_null[:] = saved.max_null
+    if map_nulls is not None:
+        map_nulls.drain()
+        if saved.tfce_max is not None:
+            map_nulls.tfce_max[:] = saved.tfce_max
+        if saved.cluster_max is not None:
+            map_nulls.cluster_max[:] = saved.cluster_max
+
+
+def _state(run: _Run, map_nulls: MapNulls | None, done: int) -> BatchState:
+    """The counts and maxima after the rearrangements ``0 .. done - 1`` (whole-map batches waited for)."""
+    if map_nulls is not None:
+        map_nulls.drain()
+    return BatchState(done, run.acc.count.copy(), run.acc.max_null.copy(),
+                      None if map_nulls is None else map_nulls.tfce_max.copy(),
+                      None if map_nulls is None else map_nulls.cluster_max.copy())
+
+
 def _batches(
     run: _Run,
     maps: MapSettings,
     execution: Execution,
     pool: InlineExecutor | ThreadExecutor,
     progress: Callable[[int, int], None] | None,
+    checkpoint: ContrastCheckpoint | None = None,
 ) -> MapNulls | None:
-    """Every batch of rearrangements, the observed one first; the whole-map nulls (if asked for) collected."""
+    """Every batch of rearrangements, the observed one first; the whole-map nulls (if asked for) collected.
+    With a checkpoint holding a saved state, the observed batch is recomputed and the run goes on after the
+    rearrangements the state counts."""
     plan, pset = run.plan, run.pset
     J, size = pset.size, execution.batch_size
     # Reused by every batch: a fresh (B, V) array per batch costs page faults.
     maps_buffer = np.empty((min(size, J), run.V)) if maps.wanted else None
     map_nulls: MapNulls | None = None
+    saved = checkpoint.load() if checkpoint is not None else None
+    starts = [0, *range(saved.done, J, size)] if saved is not None and saved.done > 0 else range(0, J, size)
     try:
-        for b0 in range(0, J, size):
+        for b0 in starts:
             b1 = min(J, b0 + size)
             batch_maps = None if maps_buffer is None else maps_buffer[: b1 - b0]
             batch = _Batch(b0, stack_rows(plan, *pset.batch(b0, b1)), batch_maps)
@@ -259,8 +292,13 @@ def _batches(
                     observed = observe_maps(batch.maps[0], plan, maps)
                     map_nulls = MapNulls.start(observed, J, maps.adjacency, execution.n_jobs, execution.workers)
                 map_nulls.submit(b0, batch.maps)
+            if b0 == 0 and saved is not None:
+                _restore(run, map_nulls, saved)
+                b1 = saved.done  # the state now counts the rearrangements 0 .. saved.done - 1
             if progress is not None:
                 progress(b1, J)
+            if checkpoint is not None and checkpoint.due(final=b1 == J):
+                checkpoint.save(_state(run, map_nulls, b1))
         if map_nulls is not None:
             map_nulls.finish()
     except BaseException:
@@ -277,6 +315,7 @@ def run_permutations(
     maps: MapSettings = _NO_MAPS,
     execution: Execution = _EXECUTION,
     progress: Callable[[int, int], None] | None = None,
+    checkpoint: ContrastCheckpoint | None = None,
 ) -> PermutationResult:
     """Freedman-Lane permutation inference for one contrast (see :mod:`groupmodel.inference.freedman_lane`).
 
@@ -294,6 +333,9 @@ def run_permutations(
         Threads, worker processes, batch and chunk sizes, cache (results do not depend on them).
     progress : callable(done, total), optional
         Called after each batch with the number of rearrangements done.
+    checkpoint : ContrastCheckpoint, optional
+        Where the counts and maxima are saved between batches, and loaded from to resume
+        (:mod:`groupmodel.inference.checkpoint`); the results are the same bits either way.
 
     Returns
     -------
@@ -313,7 +355,7 @@ def run_permutations(
     pool = thread_executor(run.n_threads, "groupmodel-perm")
     try:
         with single_threaded_blas():
-            map_nulls = _batches(run, maps, execution, pool, progress)
+            map_nulls = _batches(run, maps, execution, pool, progress, checkpoint)
     finally:
         pool.close(cancel=True)
     return run.result(test, map_nulls)

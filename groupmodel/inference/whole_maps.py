@@ -182,9 +182,13 @@ class MapNulls:
         self.tfce_max[start : start + tmax.size] = tmax
         self.cluster_max[start : start + cmax.size] = cmax
 
-    def finish(self) -> None:
+    def drain(self) -> None:
+        """Wait for every batch submitted so far (its maxima collected); the workers stay."""
         while self.pending:
             self._collect_one()
+
+    def finish(self) -> None:
+        self.drain()
         if self.owned:
             self.executor.close()
 

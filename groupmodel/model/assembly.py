@@ -20,6 +20,7 @@ from .estimability import alternatives
 from .hypotheses import Hypothesis, build_hypotheses
 from .spec import ModelSpec, load_spec
 from .table import Sample, select_sample
+from .variance_groups import variance_group_findings
 
 
 @dataclass
@@ -141,6 +142,7 @@ def build(
     design = build_design(spec, sample)
     findings = [Finding("note", "levels", n) for n in sample.notes]
     findings += check_design(design)
+    findings += variance_group_findings(spec, design)
     try:
         hypotheses = build_hypotheses(design, spec.hypotheses)
     except SpecError as exc:  # name the spec file and give a JSON path, as every other spec error

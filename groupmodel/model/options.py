@@ -50,6 +50,8 @@ class InferenceOptions:
     threads : int or None
         Threads for the permutation products (default: the cores the process may use); results do
         not depend on it.
+    ci_level : float
+        Confidence level of the intervals of effects and of partial eta squared (default 0.95).
     """
 
     permutations: int = 0
@@ -64,6 +66,7 @@ class InferenceOptions:
     mesh: Path | None = None
     jobs: int | None = None
     threads: int | None = None
+    ci_level: float = 0.95
 
     @property
     def active(self) -> bool:
@@ -98,7 +101,7 @@ class InferenceOptions:
         InputError
             TFCE, clusters or blocks without permutations; ``permutations`` or ``seed`` below 0;
             ``jobs``/``threads`` below 1; a cluster threshold or TFCE step that is not a finite number (the
-            step also > 0); whole blocks without blocks.
+            step also > 0); whole blocks without blocks; a ``ci_level`` not strictly between 0 and 1.
         """
         for option, value, least in (("--permutations", self.permutations, 0), ("--seed", self.seed, 0),
                                      ("--jobs", self.jobs, 1), ("--threads", self.threads, 1)):
@@ -110,6 +113,7 @@ class InferenceOptions:
         for option, number in (("--cluster-threshold", self.cluster_threshold), ("tfce_step", self.tfce_step)):
             if number is not None and not (isinstance(number, int | float) and math.isfinite(number)):
                 raise InputError(f"{option} must be a finite number; got {number!r}; give e.g. 3.1")
+        check_ci_level(self.ci_level)
         if self.tfce_step is not None and self.tfce_step <= 0:
             raise InputError(f"inference.tfce_step must be > 0; got {self.tfce_step!r}; leave it out for the default")
         if (self.tfce or self.cluster_threshold is not None or self.blocks or self.whole_blocks) \
@@ -121,3 +125,13 @@ class InferenceOptions:
         if self.whole_blocks and not self.blocks:
             raise InputError("--whole-blocks needs --blocks COLUMN (the exchangeability blocks); add it")
         return self
+
+
+def check_ci_level(level: Any) -> float:
+    """``level`` if it is a number strictly between 0 and 1 (a confidence level such as 0.95), else an InputError."""
+    if isinstance(level, bool) or not isinstance(level, int | float) or not 0 < level < 1:
+        raise InputError(
+            f"--ci-level (inference.ci_level) must be a number between 0 and 1; got {level!r}; "
+            "give e.g. --ci-level 0.95 for 95% intervals"
+        )
+    return float(level)

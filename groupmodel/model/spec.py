@@ -20,6 +20,7 @@ from typing import Any, Literal
 import jsonschema
 
 from ..errors import SpecError
+from ..runtime.paths import text_join
 from .jsonfile import check_values, read_json
 from .options import InferenceOptions
 
@@ -260,6 +261,8 @@ class ModelSpec:
     inference: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
     inference_options: InferenceOptions = field(default_factory=InferenceOptions)
+    #: A model factor whose groups get their own residual variance (Welch's v and G), or None.
+    variance_groups: str | None = None
 
     @property
     def base_dir(self) -> Path:
@@ -435,6 +438,21 @@ def _read_terms(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorS
     return tuple(terms)
 
 
+def _read_variance_groups(raw: Mapping[str, Any], name: str, factors: Mapping[str, FactorSpec],
+                          terms: tuple[Term, ...]) -> str | None:
+    """``variance_groups``: a factor that enters the model's terms (its groups' variances are estimated apart)."""
+    column = raw.get("variance_groups")
+    if column is None:
+        return None
+    in_model = [f for f in factors if any(f in t for t in terms)]
+    if column not in in_model:
+        raise SpecError(
+            f"{name} $.variance_groups: expected a factor of the model {in_model}, found {column!r}; "
+            "name a factor declared under factors and used in terms"
+        )
+    return str(column)
+
+
 def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     """Validate an already-parsed spec; ``path`` anchors relative paths and names the spec in errors."""
     path = Path(path)
@@ -453,7 +471,7 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
     sidecar = raw.get("participants_sidecar")
-    participants = base / raw["participants"]
+    participants = text_join(base, raw["participants"])
     if sidecar is not None:
         sidecar_path: Path | None = base / sidecar
     else:
@@ -471,9 +489,10 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         terms=terms,
         hypotheses={n: HypothesisSpec.read(n, body) for n, body in (raw.get("hypotheses") or {}).items()},
         images=raw.get("images"),
-        mask=(base / raw["mask"]) if "mask" in raw else None,
+        mask=text_join(base, raw["mask"]) if "mask" in raw else None,
         outcome=raw.get("outcome"),
         inference=dict(raw.get("inference") or {}),
         raw=raw,
         inference_options=InferenceOptions.parse(raw.get("inference") or {}, base),
+        variance_groups=_read_variance_groups(raw, name, factors, terms),
     )

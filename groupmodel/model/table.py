@@ -11,6 +11,7 @@ left-out row is listed with its reason.  Nothing vanishes silently.
 from __future__ import annotations
 
 import csv
+import hashlib
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -152,6 +153,7 @@ def read_table(path: Path) -> pd.DataFrame:
         rows.append([f.strip() for f in fields])
     frame = pd.DataFrame(rows, columns=header, dtype=object)
     _check_ids(name, frame["participant_id"])
+    frame.attrs["sha256"] = hashlib.sha256(data).hexdigest()  # of the bytes read (the run's provenance record)
     return frame
 
 

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import dataclasses
 import threading
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -17,7 +18,7 @@ from ..engine.linalg import condition_number, has_constant_column, matrix_rank, 
 from ..model.checks import cell_counts_by_term
 from .folder import OutputFolder
 from .numbers import tidy
-from .provenance import provenance
+from .provenance import RunClock, RunInputs, command_line, provenance, run_record
 
 if TYPE_CHECKING:
     from ..model.assembly import Model
@@ -94,13 +95,29 @@ def contrasts_sidecar(model: Model) -> dict[str, Any]:
     }
 
 
-def write_model(model: Model, out: OutputFolder, pictures: bool = True) -> list[str]:
-    """Write design and contrast files into an open output folder; returns the file names."""
+def included_frame(model: Model) -> pd.DataFrame:
+    """participants_included.tsv: each included observation with its factor levels and raw covariate (and
+    outcome) values, in design-row order (the report summarises covariates per cell from it)."""
+    data = model.sample.data
+    d = model.design
+    keep = ["participant_id", *d.factors, *[c for c in d.covariates if c in data],
+            *[c for c in model.sample.numeric_columns if c in data and c not in d.covariates]]
+    return data[list(dict.fromkeys(keep))].reset_index(drop=True)
+
+
+def write_model(model: Model, out: OutputFolder, pictures: bool = True,
+                run: dict[str, Any] | None = None) -> list[str]:
+    """Write design and contrast files into an open output folder; returns the file names.
+
+    ``run`` is the run record (:func:`~groupmodel.outputs.provenance.run_record`) the sidecars carry.
+    """
+    extra = {} if run is None else {"provenance": run}
     out.write_tsv("design.tsv", design_frame(model))
-    out.write_json("design.json", design_sidecar(model))
+    out.write_json("design.json", {**design_sidecar(model), **extra})
     out.write_tsv("contrasts.tsv", contrasts_frame(model))
-    out.write_json("contrasts.json", contrasts_sidecar(model))
-    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json"]
+    out.write_json("contrasts.json", {**contrasts_sidecar(model), **extra})
+    out.write_tsv("participants_included.tsv", included_frame(model))
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "participants_included.tsv"]
     if pictures:
         names += draw_pictures(model, out)
     return names
@@ -141,10 +158,25 @@ class PictureJob:
         return self._names
 
 
+def write_build(model: Model, o: OutputFolder, pictures: bool = True, command: Sequence[str] | None = None,
+                clock: RunClock | None = None) -> list[str]:
+    """The files of ``groupmodel build`` into an open output folder: design and contrast files with the run
+    record, dataset_description.json and the index; returns the file names."""
+    from .dataset import dataset_description, finish_folder
+
+    run = run_record(RunInputs.of_spec(model.spec, sample=model.sample), clock or RunClock.start())
+    from .report import write_report
+
+    names = write_model(model, o, pictures=pictures, run=run)
+    names += finish_folder(o, dataset_description("design", model.spec, command_line(command)))
+    return names + write_report(o, pictures=pictures)  # last: it reads the folder through its index
+
+
 def write_model_folder(model: Model, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
     """Write the design files atomically into ``out``; refuses a model with errors (ModelError)."""
+    clock = RunClock.start()
     folder = OutputFolder(out, force=force)
     model.raise_for_errors()
     with folder as o:
-        write_model(model, o, pictures=pictures)
+        write_build(model, o, pictures=pictures, clock=clock)
     return Path(out)

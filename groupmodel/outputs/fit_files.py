@@ -1,17 +1,22 @@
 """The files of a fit: results.tsv/json of a table fit; maps, sidecars, cluster tables and a summary of a voxel fit.
 
-Both are written atomically, beside the design and contrast files of the model.
+Both are written atomically, beside the design and contrast files of the model; the maps and tables of each
+hypothesis go to its own folder (:mod:`.index` has the layout and writes the index ``outputs.json``).
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from ..text import number_text
+from .dataset import dataset_description, finish_folder
 from .design_files import PictureJob, write_model, written_hypothesis
 from .folder import OutputFolder
-from .provenance import provenance
+from .index import map_path, sidecar_path, table_path
+from .provenance import RunInputs, command_line, provenance, run_record
+from .summary import summary_columns, summary_frame, summary_records
 
 if TYPE_CHECKING:
     from ..analysis.table_fit import TableFit
@@ -31,16 +36,33 @@ RESULTS_COLUMNS = {
     "df2": "residual degrees of freedom",
     "p": "p value for the hypothesis's tail",
     "z": "z of equal p (signed like t; upper tail for F)",
+    "ci_lower": "lower bound of the two-sided confidence interval of the estimate (t tests; level in ci_level)",
+    "ci_upper": "upper bound of the two-sided confidence interval of the estimate (t tests)",
+    "cohens_d": "estimate / residual SD, for a t test comparing two cell or marginal means (weights over cell "
+                "means summing to 0, positive part to 1); n/a elsewhere",
+    "partial_eta_squared": "F df1 / (F df1 + df2) (F = t squared for t tests)",
+    "partial_eta_squared_ci_lower": "lower bound of its two-sided confidence interval from the noncentral F "
+                                    "(Steiger 2004; lambda / (lambda + df1 + df2 + 1))",
+    "partial_eta_squared_ci_upper": "upper bound of the same interval",
 }
 
 
-def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, pictures: bool = True) -> Path:
-    """Write results.tsv, results.json and the design files (with their pictures) atomically."""
+def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, pictures: bool = True,
+                    command: Sequence[str] | None = None) -> Path:
+    """Write results.tsv, results.json and the design files (with their pictures) atomically, then
+    dataset_description.json, the index outputs.json and report.html."""
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
+    run = run_record(RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
-        write_model(fit.model, o, pictures=pictures)
+        write_model(fit.model, o, pictures=pictures, run=run)
         o.write_tsv("results.tsv", fit.table)
-        o.write_json("results.json", _results_sidecar(fit))
+        o.write_json("results.json", {**_results_sidecar(fit), "provenance": run})
+        if fit.cell_means is not None:
+            o.write_tsv("cell_means.tsv", fit.cell_means)
+        finish_folder(o, dataset_description(f"table fit ({fit.outcome})", fit.model.spec, command_line(command)))
+        write_report(o, pictures=pictures)
     return Path(out)
 
 
@@ -51,10 +73,12 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "n_observations": fit.model.design.n_observations,
         "df_resid": fit.result.df_resid,
         "residual_variance": float(fit.result.residual_variance[0]),
+        "ci_level": fit.ci_level,
         "columns": RESULTS_COLUMNS,
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 
 
@@ -71,6 +95,17 @@ CORRECTION_NOTES = {
     "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
+#: What the effect-size and interval maps hold (``{level}``: the confidence level in percent).
+EFFECT_SIZE_NOTES = {
+    "ci_lower": "lower bound of the two-sided {level}% confidence interval of the effect: effect - t(df2) x se",
+    "ci_upper": "upper bound of the two-sided {level}% confidence interval of the effect: effect + t(df2) x se",
+    "cohens_d": "Cohen's d: the effect (a difference of two cell or marginal means) / residual SD",
+    "partial_eta_squared": "partial eta squared, F df1 / (F df1 + df2) (F = t squared for a t test)",
+    "partial_eta_squared_ci_lower": "lower bound of the two-sided {level}% confidence interval of partial eta "
+                                    "squared, from the noncentral F (Steiger 2004)",
+    "partial_eta_squared_ci_upper": "upper bound of the two-sided {level}% confidence interval of partial eta "
+                                    "squared, from the noncentral F (Steiger 2004)",
 }
 #: What the cluster tables hold.
 CLUSTER_KINDS = {
@@ -95,11 +130,6 @@ _INTENTS = {"t": "t test", "F": "f test", "z": "z score", "p": "p value", "effec
             "mlog10p": "none", "residual_variance": "estimate"}
 
 
-def _map_name(grid: Any, stem: str) -> str:
-    """``stem.nii.gz`` for volumes; ``stem.func.gii`` for surface data (the GIFTI name of data over vertices)."""
-    return stem + (".func.gii" if grid.kind == "gifti" else ".nii.gz")
-
-
 def _in_words_of(grid: Any, text: str) -> str:
     """A note about voxels said of vertices for surface data."""
     if grid.kind != "gifti":
@@ -107,8 +137,9 @@ def _in_words_of(grid: Any, text: str) -> str:
     return text.replace("voxels", "vertices").replace("voxel's", "vertex's").replace("voxel", "vertex")
 
 
-def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -> dict[str, Any]:
-    """The JSON sidecar of one map."""
+def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, *, run: dict[str, Any] | None = None,
+                **extra: Any) -> dict[str, Any]:
+    """The JSON sidecar of one map (``run``: the run record, written last as ``provenance``)."""
     out: dict[str, Any] = {"hypothesis": name, "statistic": statistic}
     if name is not None:
         h = fit.model.hypotheses[name]
@@ -125,8 +156,13 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, **extra: Any) -
         })
     else:
         out.update({"df2": fit.df_resid})
+    record = getattr(fit, "variance_groups", None)
+    if record is not None:  # Welch's v and G: df2 is approximate and per voxel
+        out.update({"df2": record["df2"], "variance_groups": record})
     out.update(extra)
     out.update(provenance())
+    if run is not None:
+        out["provenance"] = run
     return out
 
 
@@ -141,51 +177,85 @@ def _intent(stat: str, h: Hypothesis, df_resid: int) -> tuple[str, tuple[int, ..
     return None
 
 
-def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis) -> list[str]:
-    """Every map of one hypothesis with its sidecar, then its cluster tables; returns the file names."""
+def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis, run: dict[str, Any]) -> list[str]:
+    """Every map of one hypothesis with its sidecar, then its cluster tables, into the hypothesis's folder
+    (paths from :mod:`.index`: one place per (hypothesis, statistic)); returns the file names."""
     from ..images import write_map
 
     written: list[str] = []
     for stat, values in fit.maps[h.name].items():
-        fname = _map_name(fit.grid, f"{h.name}_{stat}")
+        fname = map_path(h.name, stat, fit.grid.kind)
         write_map(o.file(fname), values, fit.mask, fit.grid, intent=_intent(stat, h, fit.df_resid),
                   description=f"groupmodel {h.name} {stat}"[:79])
-        # the sidecar is named after the map's stem: hypothesis names may contain dots
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
             extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
-        o.write_json(f"{h.name}_{stat}.json", map_sidecar(fit, h.name, stat, **extra))
+        if stat in EFFECT_SIZE_NOTES:
+            extra.update(effect_size_note(fit, stat))
+        o.write_json(sidecar_path(h.name, stat), map_sidecar(fit, h.name, stat, run=run, **extra))
         written.append(fname)
     for kind, table in fit.tables.get(h.name, {}).items():
-        tname = f"{h.name}_clusters_{kind}.tsv"
-        o.write_tsv(tname, table)
-        o.write_json(f"{h.name}_clusters_{kind}.json", map_sidecar(
-            fit, h.name, f"clusters_{kind}", **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
+        stat = f"clusters_{kind}"
+        o.write_tsv(table_path(h.name, stat), table)
+        o.write_json(sidecar_path(h.name, stat), map_sidecar(
+            fit, h.name, stat, run=run, **fit.records.get(h.name, {}), columns=CLUSTER_COLUMNS,
             clusters=_in_words_of(fit.grid, CLUSTER_KINDS[kind])))
-        written.append(tname)
+        written.append(table_path(h.name, stat))
     return written
 
 
-def _write_residuals_and_mask(o: OutputFolder, fit: VoxelFit) -> list[str]:
+def effect_size_note(fit: VoxelFit, stat: str) -> dict[str, Any]:
+    """The sidecar entries of an effect-size or interval map: what it holds and, for intervals, the level."""
+    level = float((fit.inference or {}).get("ci_level", 0.95))
+    out: dict[str, Any] = {"effect_size": EFFECT_SIZE_NOTES[stat].format(level=number_text(100 * level))}
+    if "ci_" in stat:
+        out["ci_level"] = level
+    return out
+
+
+def _write_residuals_and_mask(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
+
     from ..images import write_map, write_mask
 
-    fname = _map_name(fit.grid, "residual_variance")
+    fname = map_path(None, "residual_variance", fit.grid.kind)
     write_map(o.file(fname), fit.residual_variance, fit.mask, fit.grid, description="groupmodel residual variance")
-    o.write_json("residual_variance.json", map_sidecar(fit, None, "residual_variance"))
-    mname = _map_name(fit.grid, "mask")
+    o.write_json(sidecar_path(None, "residual_variance"), map_sidecar(fit, None, "residual_variance", run=run))
+    mname = map_path(None, "mask", fit.grid.kind)
     write_mask(o.file(mname), fit.mask, fit.grid)
-    o.write_json("mask.json", {"statistic": "mask", **fit.mask_report, **provenance(("software_version",))})
-    return [fname, mname]
+    o.write_json(sidecar_path(None, "mask"), {"statistic": "mask", **fit.mask_report,
+                                              **provenance(("software_version",)), "provenance": run})
+    return [fname, mname, *_write_participant_check(o, fit, run)]
 
 
-def _write_summary(o: OutputFolder, fit: VoxelFit) -> list[str]:
-    o.write_tsv("summary.tsv", fit.summary())
+def _write_participant_check(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
+    """The mean of the input images (the report's background) and each participant's mean |residual|."""
+    from ..images import write_map
+
+    names = []
+    if fit.mean_input is not None:
+        fname = map_path(None, "mean_input", fit.grid.kind)
+        write_map(o.file(fname), fit.mean_input, fit.mask, fit.grid, description="groupmodel mean input image")
+        o.write_json(sidecar_path(None, "mean_input"), map_sidecar(
+            fit, None, "mean_input", run=run, description="mean of the input images over the observations"))
+        names.append(fname)
+    if fit.participant_residuals is not None:
+        o.write_tsv("participants_residuals.tsv", fit.participant_residuals)
+        names.append("participants_residuals.tsv")
+    return names
+
+
+def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[str]:
+    frame = summary_frame(fit)
+    o.write_tsv("summary.tsv", frame)
     o.write_json("summary.json", {
         **provenance(),
         "spec": str(fit.model.spec.path), "n_observations": fit.model.design.n_observations,
         "df_resid": fit.df_resid, "mask": fit.mask_report,
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
         "warnings": fit.warnings, "inference": _inference_record(fit),
+        "hypotheses": summary_records(frame), "columns": summary_columns(fit),
+        "provenance": run,
+        "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
     })
     return ["summary.tsv", "summary.json"]
 
@@ -207,25 +277,33 @@ def _inference_record(fit: VoxelFit) -> dict[str, Any] | None:
 
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                     extra_writer: Callable[[OutputFolder], list[str]] | None = None,
-                    pictures: bool = True) -> list[str]:
-    """Write every map with its sidecar, the mask, the design files and a summary, atomically.
+                    pictures: bool = True, command: Sequence[str] | None = None) -> list[str]:
+    """Write every map with its sidecar, the mask, the design files and a summary, atomically; then
+    dataset_description.json and the index outputs.json (layout: :mod:`.index`).
 
-    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written.
+    ``command``: the command-line arguments (recorded in dataset_description.json; default ``sys.argv``).
+    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written; the
+    report (report.html, without figures when ``pictures`` is off) is written last, from the files.
     """
+    from .report import write_report
+
     folder = OutputFolder(out, force=force)
     written: list[str] = []
+    run = run_record(fit.inputs or RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
-        written += write_model(fit.model, o, pictures=False)
+        written += write_model(fit.model, o, pictures=False, run=run)
         job = PictureJob(fit.model, o) if pictures else None
         try:
             for h in fit.model.hypotheses.values():
-                written += _write_hypothesis(o, fit, h)
-            written += _write_residuals_and_mask(o, fit)
-            written += _write_summary(o, fit)
+                written += _write_hypothesis(o, fit, h, run)
+            written += _write_residuals_and_mask(o, fit, run)
+            written += _write_summary(o, fit, run)
             if extra_writer is not None:
                 written += extra_writer(o)
         finally:
             # never leave the thread writing into a folder that is being removed
             picture_names = job.join() if job is not None else []
-        written[4:4] = picture_names  # listed beside the design files, as before
+        written[5:5] = picture_names  # listed beside the design files, as before
+        written += finish_folder(o, dataset_description("voxelwise fit", fit.model.spec, command_line(command)))
+        written += write_report(o, pictures=pictures)  # last: it reads the folder through its index
     return written

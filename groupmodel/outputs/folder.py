@@ -20,10 +20,10 @@ import json
 import math
 import os
 import shutil
-import socket
 import sys
 import tempfile
 import time
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
@@ -33,6 +33,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import OutputError
+from ..runtime.owner import OWNER_FILE, StaleFolder, owner_alive_here, owner_record, remove_stale_folders_of
+from .target import OUTPUT_RECORD, check_target, output_record
 
 #: Text written for a missing value in every TSV groupmodel writes (BIDS convention).
 NA = "n/a"
@@ -55,6 +57,16 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
+def readable_text(text: str) -> str:
+    """``text`` with paths decoded under a non-UTF-8 locale (surrogate escapes) restored to their UTF-8 names;
+    bytes that are not UTF-8 at all become U+FFFD, so the file is always valid UTF-8."""
+    try:
+        text.encode("utf-8")
+        return text
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "replace")
+
+
 def dumps_json(obj: Any) -> str:
     """JSON text with 2-space indents, numpy values converted, non-finite floats made explicit."""
     return json.dumps(_jsonable(obj), indent=2, ensure_ascii=False) + "\n"
@@ -65,57 +77,12 @@ def format_tsv(frame: pd.DataFrame, float_format: str | None = None) -> str:
     return frame.to_csv(sep="\t", index=False, na_rep=NA, float_format=float_format, lineterminator="\n")
 
 
-#: The owner file inside a hidden folder being written (removed before the folder is renamed into place).
-OWNER_FILE = ".groupmodel-owner.json"
 #: Prefixes of the hidden folders beside ``--out`` (after ``.<name>``): files being written, a replaced folder.
 HIDDEN_KINDS = (".partial-", ".old-")
 
 
-def _process_start(pid: int) -> str | None:
-    """When process ``pid`` started (clock ticks since boot, Linux), to tell it from a later one with the same
-    id; None where /proc does not say."""
-    try:
-        stat = Path(f"/proc/{pid}/stat").read_text()
-    except OSError:
-        return None
-    fields = stat.rsplit(")", 1)[1].split()
-    return fields[19] if len(fields) > 19 else None
-
-
-def _process_gone(pid: int, started: str | None) -> bool:
-    """Whether process ``pid`` (started at ``started``) has ended (or its id now names another process)."""
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return True
-    except PermissionError:  # alive, another user's
-        return False
-    except OSError:
-        return False
-    try:
-        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except (OSError, IndexError):
-        return False
-    if state in ("Z", "X"):  # ended, not yet reaped by its parent
-        return True
-    now = _process_start(pid)
-    return started is not None and now is not None and now != started
-
-
-def _owner() -> dict[str, Any]:
-    pid = os.getpid()
-    return {"pid": pid, "host": socket.gethostname(), "process_start": _process_start(pid)}
-
-
 #: The lock file beside ``--out`` (``.<name>.lock``) held by the run writing there.
 LOCK_SUFFIX = ".lock"
-
-
-def _owner_alive_here(owner: dict[str, Any]) -> bool | None:
-    """Whether the process of an owner record is alive: True/False on this host, None on another host."""
-    if owner.get("host") != socket.gethostname():
-        return None
-    return not _process_gone(int(owner["pid"]), owner.get("process_start"))
 
 
 @dataclass(frozen=True)
@@ -148,7 +115,7 @@ class OutputLock:
     def __enter__(self) -> OutputLock:
         check_parent(self.target)
         self._make_parent()
-        record = {**_owner(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"), "command": sys.argv}
+        record = {**owner_record(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"), "command": sys.argv}
         for _ in range(3):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o666)
@@ -161,8 +128,12 @@ class OutputLock:
                     f"--out {self.target}: cannot create the lock file {self.path} ({exc.strerror}); "
                     "choose another path"
                 ) from exc
-            with os.fdopen(fd, "w", encoding="utf-8") as handle:
-                handle.write(json.dumps(record, ensure_ascii=False))
+            try:
+                with os.fdopen(fd, "w", encoding="utf-8") as handle:
+                    handle.write(json.dumps(record))  # ASCII: a path undecodable in the locale stays writable
+            except BaseException:
+                self.path.unlink(missing_ok=True)
+                raise
             self._held = True
             return self
         raise OutputError(f"--out {self.target}: could not take the lock {self.path}; try again")
@@ -171,7 +142,7 @@ class OutputLock:
         """Remove the existing lock file if its run is gone (on this host); else refuse this run."""
         try:
             owner = json.loads(self.path.read_text(encoding="utf-8"))
-            alive = _owner_alive_here(owner)
+            alive = owner_alive_here(owner)
         except FileNotFoundError:
             return  # released meanwhile: try again
         except (OSError, ValueError, KeyError, TypeError, AttributeError):
@@ -262,14 +233,6 @@ def _umask() -> int:
     return mask
 
 
-@dataclass(frozen=True)
-class StaleFolder:
-    """A hidden folder left beside ``--out`` by a run that was killed, removed by a later run."""
-
-    path: Path
-    pid: int
-
-
 def remove_stale_folders(target: Path) -> tuple[StaleFolder, ...]:
     """Remove the hidden folders beside ``target`` left by killed runs of this host (their process is gone).
 
@@ -277,24 +240,11 @@ def remove_stale_folders(target: Path) -> tuple[StaleFolder, ...]:
     host are considered; a folder of a live process, of another host, or without an owner file is left alone.
     """
     parent = target.parent if str(target.parent) else Path(".")
-    removed: list[StaleFolder] = []
     try:
         candidates = sorted(p for kind in HIDDEN_KINDS for p in parent.glob(f".{target.name}{kind}*"))
     except OSError:
         return ()
-    host = socket.gethostname()
-    for folder in candidates:
-        try:
-            owner = json.loads((folder / OWNER_FILE).read_text(encoding="utf-8"))
-            pid, started = int(owner["pid"]), owner.get("process_start")
-            if owner.get("host") != host or pid == os.getpid() or not _process_gone(pid, started):
-                continue
-        except (OSError, ValueError, KeyError, TypeError, AttributeError):
-            continue  # not ours to judge
-        shutil.rmtree(folder, ignore_errors=True)
-        if not folder.exists():
-            removed.append(StaleFolder(folder, pid))
-    return tuple(removed)
+    return remove_stale_folders_of(candidates)
 
 
 class OutputFolder:
@@ -311,9 +261,10 @@ class OutputFolder:
     target : Path
         The folder the user asked for.
     force : bool
-        Replace an existing non-empty folder.  Without it such a folder is an
-        :class:`~groupmodel.errors.OutputError` raised at construction, before
-        any work is done.
+        Replace an existing non-empty folder, if it is a groupmodel output (:mod:`.target`).  Without it such a
+        folder is an :class:`~groupmodel.errors.OutputError` raised at construction, before any work is done.
+    inputs : paths
+        The run's inputs: a ``--out`` holding one of them (or the working directory) is refused.
 
     Attributes
     ----------
@@ -321,19 +272,10 @@ class OutputFolder:
         Hidden folders of earlier, killed runs into the same place, removed at construction.
     """
 
-    def __init__(self, target: Path | str, force: bool = False) -> None:
+    def __init__(self, target: Path | str, force: bool = False, inputs: Iterable[Path | str | None] = ()) -> None:
         self.target = Path(target)
         self.force = force
-        if self.target.exists():
-            if not self.target.is_dir():
-                raise OutputError(
-                    f"--out {self.target}: expected a folder, found a file; choose another path"
-                )
-            if any(self.target.iterdir()) and not force:
-                raise OutputError(
-                    f"--out {self.target}: the folder exists and is not empty; "
-                    "choose another path or add --force to replace it"
-                )
+        check_target(self.target, force, inputs)
         check_parent(self.target)
         self.removed = remove_stale_folders(self.target)
         self.path: Path | None = None
@@ -343,7 +285,7 @@ class OutputFolder:
         try:
             parent.mkdir(parents=True, exist_ok=True)
             self.path = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.partial-", dir=parent))
-            (self.path / OWNER_FILE).write_text(json.dumps(_owner()), encoding="utf-8")
+            (self.path / OWNER_FILE).write_text(json.dumps(owner_record()), encoding="utf-8")
         except OSError as exc:
             raise OutputError(
                 f"--out {self.target}: cannot create a folder there ({exc.strerror}); choose another path"
@@ -362,10 +304,11 @@ class OutputFolder:
             return
         try:
             (self.path / OWNER_FILE).unlink()
+            (self.path / OUTPUT_RECORD).write_text(output_record(self.path), encoding="utf-8")
             os.chmod(self.path, 0o777 & ~_umask())  # as any folder the user creates (mkdtemp makes it 0700)
             if self.target.exists():
                 old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-", dir=self.path.parent))
-                (old / OWNER_FILE).write_text(json.dumps(_owner()), encoding="utf-8")
+                (old / OWNER_FILE).write_text(json.dumps(owner_record()), encoding="utf-8")
                 os.rename(self.target, old / "previous")
                 os.rename(self.path, self.target)
                 shutil.rmtree(old, ignore_errors=True)
@@ -384,7 +327,7 @@ class OutputFolder:
 
     def write_text(self, name: str, text: str) -> Path:
         p = self.file(name)
-        p.write_text(text, encoding="utf-8")
+        p.write_text(readable_text(text), encoding="utf-8")
         return p
 
     def write_json(self, name: str, obj: Any) -> Path:

@@ -1,6 +1,6 @@
 """Where work runs: cores and CPU quotas, single-threaded BLAS, and executors (inline, threads, processes)."""
 
-from .cores import available_cores, cpu_quota, single_threaded_blas
+from .cores import available_cores, core_limit, cpu_quota, single_threaded_blas
 from .executors import Executor, InlineExecutor, ProcessExecutor, ThreadExecutor, thread_executor
 
 __all__ = [
@@ -9,6 +9,7 @@ __all__ = [
     "ProcessExecutor",
     "ThreadExecutor",
     "available_cores",
+    "core_limit",
     "cpu_quota",
     "single_threaded_blas",
     "thread_executor",

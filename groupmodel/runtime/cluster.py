@@ -43,10 +43,19 @@ class DaskExecutor(_Base):
     client : distributed.Client
     owned : object, optional
         A cluster started for this executor (closed with it, as is then the client).
+    asked : str, optional
+        The ``--scheduler`` value it was opened with (for the run record).
     """
 
-    def __init__(self, client: Any, owned: Any = None) -> None:
-        self.client, self._owned = client, owned
+    def __init__(self, client: Any, owned: Any = None, asked: str | None = None) -> None:
+        self.client, self._owned, self.asked = client, owned, asked
+
+    def record(self) -> dict[str, Any]:
+        """The scheduler as asked for (``local:N`` or an address), its address and its workers now."""
+        info = self.client.scheduler_info(n_workers=-1)
+        workers = info.get("workers", {})
+        return {"asked": self.asked, "address": str(info.get("address", "")), "workers": len(workers),
+                "worker_threads": sum(int(w.get("nthreads", 1)) for w in workers.values())}
 
     @property
     def workers(self) -> int:
@@ -128,7 +137,7 @@ def open_scheduler(address: str, timeout: float | None = None) -> DaskExecutor:
         with dask.config.set({"distributed.worker.profile.enabled": False}):
             cluster = distributed.LocalCluster(n_workers=int(count), threads_per_worker=1, processes=True,
                                                dashboard_address=":0", silence_logs=logging.ERROR)
-        return DaskExecutor(distributed.Client(cluster), owned=cluster)
+        return DaskExecutor(distributed.Client(cluster), owned=cluster, asked=address)
     if "://" not in address:
         raise InputError(f"--scheduler {address}: expected a scheduler address such as tcp://host:8786, or local:N")
     try:
@@ -136,7 +145,7 @@ def open_scheduler(address: str, timeout: float | None = None) -> DaskExecutor:
     except (OSError, TimeoutError, ValueError) as exc:
         raise InputError(f"--scheduler {address}: no Dask scheduler answered within {timeout:g} s "
                          f"({type(exc).__name__}); start one (dask scheduler) or fix the address") from None
-    return DaskExecutor(client, owned=_ClientOnly(client))
+    return DaskExecutor(client, owned=_ClientOnly(client), asked=address)
 
 
 class _ClientOnly:

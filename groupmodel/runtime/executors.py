@@ -10,6 +10,7 @@ from __future__ import annotations
 import multiprocessing
 import os
 import signal
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterable, Iterator
@@ -94,7 +95,7 @@ def _quiet_worker(initializer: Callable[..., None] | None, *initargs: Any) -> No
     let signals through again and run the caller's initializer."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # also discards a Ctrl-C held back while the worker started
     if hasattr(signal, "pthread_sigmask"):
-        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
     threading.Thread(target=_exit_with_parent, args=(os.getppid(),), name="groupmodel-parent", daemon=True).start()
     if initializer is not None:
         initializer(*initargs)
@@ -111,26 +112,60 @@ def _noop() -> None:
     return None
 
 
+#: Signals held back while worker processes start: Ctrl-C, and SIGTERM (a batch system's time limit).
+_HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
+
+
 @contextmanager
 def _sigint_held() -> Iterator[None]:
-    """Ctrl-C held back (blocked, not lost) in this thread while worker processes start.
+    """Ctrl-C and SIGTERM held back (blocked, not lost) in this thread while worker processes start.
 
-    A child inherits the blocked signal through fork and exec, so a Ctrl-C while it imports cannot print a
-    traceback there; :func:`_quiet_worker` then ignores it for good.  In the parent the signal stays pending
-    (or reaches another thread) and raises KeyboardInterrupt as usual once it is let through.
+    A child inherits the blocked signals through fork and exec, so a Ctrl-C while it imports cannot print a
+    traceback there; :func:`_quiet_worker` then ignores Ctrl-C for good and lets SIGTERM through again.  In the
+    parent a signal stays pending (or reaches another thread) and raises as usual once it is let through: it
+    can no longer cut short the data the parent writes to a starting worker (which then failed with a
+    traceback, "pickle data was truncated").
     """
     if not hasattr(signal, "pthread_sigmask"):  # Windows: no signal masks (and no process-group Ctrl-C)
         yield
         return
-    previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
     try:
         yield
     finally:
         signal.pthread_sigmask(signal.SIG_SETMASK, previous)
 
 
+@contextmanager
+def _main_hidden() -> Iterator[None]:
+    """The caller's main module hidden from worker processes while they start.
+
+    A "spawn" worker first re-runs the parent's main script (as ``__mp_main__``) unless it is told nothing about
+    it.  A script without an ``if __name__ == "__main__":`` guard would then start the whole analysis again in
+    every worker (which fails, and the parent waited forever), and a script read from standard input cannot be
+    re-run at all.  The workers run only groupmodel's own functions, so they need nothing from the main module:
+    its ``__spec__`` and ``__file__`` are hidden while the processes start (the only moment ``multiprocessing``
+    reads them) and put back at once.
+    """
+    main = sys.modules.get("__main__")
+    if main is None:
+        yield
+        return
+    saved = {name: main.__dict__[name] for name in ("__spec__", "__file__") if name in main.__dict__}
+    main.__dict__["__spec__"] = None
+    main.__dict__.pop("__file__", None)
+    try:
+        yield
+    finally:
+        main.__dict__.pop("__spec__", None)
+        main.__dict__.update(saved)
+
+
 class ProcessExecutor(_Base):
     """A pool of fresh worker processes ("spawn": no inherited state, safe with threads and BLAS).
+
+    Scripts that use it need no ``if __name__ == "__main__":`` guard, and may be read from standard input: the
+    workers are started without the caller's main module (:func:`_main_hidden`).
 
     The workers ignore Ctrl-C (SIGINT, which a terminal sends to the whole process group): the parent gets
     it, and closing the executor shuts them down; they start at once, with Ctrl-C held back in the
@@ -153,7 +188,7 @@ class ProcessExecutor(_Base):
             initargs=(initializer, *initargs),
         )
         try:
-            with _sigint_held():  # the pool starts one worker per task submitted while none is idle
+            with _sigint_held(), _main_hidden():  # the pool starts one worker per task submitted while none is idle
                 for _ in range(self.workers):
                     self._pool.submit(_noop)
         except BaseException:  # Ctrl-C while they start: stop the ones started

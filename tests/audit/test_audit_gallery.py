@@ -59,6 +59,12 @@ def test_gallery_is_complete():
             "unexplained_named_factors", "short_first_contrast", "partial_main_effect", "correct_rounded_polynomial"},
         # covariates: centred within groups, the wrong column pasted
         10: {"covariate_centred_within", "covariate_wrong_column", "covariate_wrong_column_named"},
+        # several images per participant in one model: ids repeated, participant columns, rows repeated
+        11: {"repeated_ids", "repeated_participant_columns", "repeated_rows_no_ids", "correct_participant_averages"},
+        # rounding noise left out of dependent-column explanations
+        12: {"dependent_column_rounded_codes"},
+        # a +/-0.5 column unrelated to the factors: unexplained, not miscoded rows
+        13: {"unexplained_half_column"},
     }
     for kind, cases in kinds.items():
         assert cases <= set(CASES), (kind, cases - set(CASES))
@@ -75,10 +81,13 @@ def test_gallery_case(case: str, tmp_path: Path, capsys: pytest.CaptureFixture[s
         hits = [f for f in findings if f["code"] == want["code"]]
         assert hits, f"{case}: no {want['code']} finding in\n{text}"
         assert any(f["severity"] == want["severity"] and all(w in f["message"] for w in want["contains"])
+                   and not any(w in f["message"] for w in want.get("lacks", ()))
                    for f in hits), f"{case}: {want} not matched by {hits}"
         # The terminal report shows the same finding with its severity, one line each.
         assert any(line.strip().startswith(f"{want['severity']}: ") and want["contains"][0] in line
                    for line in text.splitlines())
+    for code in spec.get("absent", ()):
+        assert not [f for f in findings if f["code"] == code], f"{case}: a {code} finding in\n{text}"
     bad = [f for f in findings if f["severity"] in ("error", "warning")]
     if spec["clean"]:
         assert not bad, f"{case}: a correct set gave {bad}"

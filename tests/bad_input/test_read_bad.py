@@ -187,6 +187,24 @@ def test_inference_options_for_api_callers(settings: dict, fragment: str) -> Non
     assert fragment in str(exc.value)
 
 
+@pytest.mark.parametrize("value", ["95", "0", "1", "-0.5"])
+@pytest.mark.parametrize("table", [False, True])
+def test_ci_level_outside_zero_and_one(tmp_path: Path, value: str, table: bool) -> None:
+    spec = study(tmp_path, images=not table)
+    extra = ("--ci-level", value, *(("--outcome", "age") if table else ()))
+    fails(spec, 2, "--ci-level (inference.ci_level) must be a number between 0 and 1", "--ci-level 0.95",
+          command=("fit",), extra=extra)
+
+
+def test_ci_level_outside_zero_and_one_in_the_spec(tmp_path: Path) -> None:
+    fails(study(tmp_path, {**SPEC, "inference": {"ci_level": 95}}), 2, "$.inference.ci_level")
+
+
+def test_ci_level_for_api_callers() -> None:
+    with pytest.raises(InputError, match="between 0 and 1; got True"):
+        InferenceOptions(ci_level=True).validated()  # type: ignore[arg-type]
+
+
 def test_negative_seed_in_the_spec(tmp_path: Path) -> None:
     fails(study(tmp_path, {**SPEC, "inference": {"seed": -1}}), 2, "$.inference.seed", "minimum of 0")
 
@@ -235,7 +253,9 @@ def test_the_next_run_removes_what_a_killed_run_left(tmp_path: Path) -> None:
     assert not left.exists()
     removed = [line for line in stdout.getvalue().splitlines() if line.startswith("removed ")]
     assert len(removed) == 1 and left.name in removed[0] and f"process {proc.pid}" in removed[0]
-    assert sorted(p.name for p in out.iterdir()) == ["contrasts.json", "contrasts.tsv", "design.json", "design.tsv"]
+    assert sorted(p.name for p in out.iterdir()) == [".groupmodel-output.json", "contrasts.json", "contrasts.tsv",
+                                                     "dataset_description.json", "design.json", "design.tsv",
+                                                     "outputs.json", "participants_included.tsv", "report.html"]
 
 
 def test_a_live_run_and_unknown_folders_are_left_alone(tmp_path: Path) -> None:
@@ -266,8 +286,8 @@ def test_a_live_run_and_unknown_folders_are_left_alone(tmp_path: Path) -> None:
 def test_a_finished_folder_holds_no_owner_file(tmp_path: Path) -> None:
     with OutputFolder(tmp_path / "out") as folder:
         folder.write_text("a.txt", "x")
-    assert [p.name for p in (tmp_path / "out").iterdir()] == ["a.txt"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".groupmodel-output.json", "a.txt"]
     with OutputFolder(tmp_path / "out", force=True) as folder:
         folder.write_text("b.txt", "y")
-    assert [p.name for p in (tmp_path / "out").iterdir()] == ["b.txt"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".groupmodel-output.json", "b.txt"]
     assert [p.name for p in tmp_path.iterdir()] == ["out"]

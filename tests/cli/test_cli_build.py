@@ -19,10 +19,12 @@ import pandas as pd
 import pytest
 
 from groupmodel import cli
+from groupmodel.outputs.target import OUTPUT_RECORD
 
 STUDY = Path(__file__).resolve().parents[2] / "example_study"
 SPEC = STUDY / "model.json"
-DESIGN_FILES = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png"}
+DESIGN_FILES = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
+                "dataset_description.json", "outputs.json", "participants_included.tsv", "report.html"}
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 
@@ -70,7 +72,7 @@ def included(table: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
 # ------------------------------------------------------------------------------------------ build
 def test_build_writes_every_file(built: tuple[Path, str]) -> None:
     out, stdout = built
-    assert {p.name for p in out.iterdir()} == DESIGN_FILES
+    assert {p.name for p in out.iterdir()} == DESIGN_FILES | {OUTPUT_RECORD}
     for name in ("design.png", "contrasts.png"):
         assert (out / name).read_bytes()[:8] == PNG_MAGIC
     assert "wrote" in stdout
@@ -157,8 +159,15 @@ def test_existing_output_needs_force(tmp_path: Path) -> None:
     assert "--force" in stderr and stderr.count("\n") == 1
     assert [p.name for p in out.iterdir()] == ["keep.txt"]  # untouched
     code, _, stderr = run("build", str(SPEC), "--out", str(out), "--no-pictures", "--force")
+    assert code == 2 and "not a groupmodel output" in stderr  # --force replaces only groupmodel's own folders
+    assert [p.name for p in out.iterdir()] == ["keep.txt"]
+    (out / "keep.txt").unlink()
+    assert run("build", str(SPEC), "--out", str(out), "--no-pictures")[0] == 0
+    code, _, stderr = run("build", str(SPEC), "--out", str(out), "--no-pictures", "--force")
     assert code == 0, stderr
-    assert {p.name for p in out.iterdir()} == {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json"}
+    assert {p.name for p in out.iterdir()} == {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json",
+                                               "dataset_description.json", "outputs.json", "participants_included.tsv",
+                                               "report.html", OUTPUT_RECORD}
     empty = tmp_path / "empty"
     empty.mkdir()
     code, _, _ = run("build", str(SPEC), "--out", str(empty), "--no-pictures")

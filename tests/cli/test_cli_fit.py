@@ -1,7 +1,8 @@
 """``groupmodel fit`` on images from the command line: files written, --force, exit codes, progress bar.
 
 References: the issue's list of outputs (per t hypothesis effect, se, t, z, p, -log10 p maps; per F
-hypothesis F, z, p, -log10 p; the residual variance, the mask, the design files of ``build``, a summary),
+hypothesis F, z, p, -log10 p; the residual variance, the mask, the design files of ``build``, a summary;
+issue 16: intervals of t effects, Cohen's d of two-mean comparisons, partial eta squared with its interval),
 each map with a JSON sidecar; exit codes 0 / 1 / 2 as documented in ``groupmodel --help``.
 """
 
@@ -22,6 +23,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
+import scipy.stats
 
 from groupmodel.cli import main
 
@@ -32,8 +34,9 @@ HYPOTHESES = {
     "high_vs_low": {"compare": {"dose": ["high", "low"]}, "tail": "greater"},
     "score": {"slope": "score"},
 }
-T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
-F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+ETA_MAPS = ("partial_eta_squared", "partial_eta_squared_ci_lower", "partial_eta_squared_ci_upper")
+T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni", "ci_lower", "ci_upper", *ETA_MAPS)
+F_MAPS = ("F", "z", "p", "mlog10p", "p_fdr", "p_bonferroni", *ETA_MAPS)
 
 
 def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
@@ -61,11 +64,18 @@ def make_study(root: Path, n: int = 18, seed: int = 2) -> Path:
 def expected_files() -> set[str]:
     names = {"design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "design.png", "contrasts.png",
              "summary.tsv", "summary.json", "residual_variance.nii.gz", "residual_variance.json",
-             "mask.nii.gz", "mask.json"}
+             "mask.nii.gz", "mask.json", "dataset_description.json", "outputs.json",
+             "participants_included.tsv", "mean_input.nii.gz", "mean_input.json",
+             "participants_residuals.tsv", "report.html", ".groupmodel-output.json"}
     for name, h in HYPOTHESES.items():
-        for stat in (F_MAPS if "main" in h else T_MAPS):
-            names |= {f"{name}_{stat}.nii.gz", f"{name}_{stat}.json"}
+        for stat in (F_MAPS if "main" in h else T_MAPS) + (("cohens_d",) if "compare" in h else ()):
+            names |= {f"hypotheses/{name}/{stat}.nii.gz", f"hypotheses/{name}/{stat}.json"}
     return names
+
+
+def files_in(folder: Path) -> set[str]:
+    """Every file under ``folder``, as relative POSIX paths."""
+    return {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()}
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess:
@@ -86,19 +96,40 @@ def test_fit_writes_every_map_and_nothing_on_stderr(spec: Path, tmp_path: Path) 
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""
     assert "\r" not in proc.stdout  # no progress bar leaked into stdout either
-    assert set(p.name for p in out.iterdir()) == expected_files()
+    assert files_in(out) == expected_files()
     assert "18 observations" in proc.stdout and "wrote" in proc.stdout
     for name in HYPOTHESES:
         assert name in proc.stdout
-    for path in out.glob("*.nii.gz"):
+    for path in out.rglob("*.nii.gz"):
         img = nib.load(path)
         assert np.allclose(img.affine, AFFINE)
         if path.name != "mask.nii.gz":
             assert img.get_data_dtype() == np.float32
     summary = json.loads((out / "summary.json").read_text())
     assert summary["n_observations"] == 18 and summary["df_resid"] == 18 - 4
-    side = json.loads((out / "dose_F.json").read_text())
+    side = json.loads((out / "hypotheses/dose/F.json").read_text())
     assert side["hypothesis"] == "dose" and side["statistic"] == "F" and side["df1"] == 2
+
+
+def test_ci_level_option_sets_the_intervals_and_their_sidecars(spec: Path, tmp_path: Path, capsys) -> None:
+    # Reference: scipy.stats.t.ppf for the half-width of the interval at the level asked for (effect -/+ t se,
+    # read back from the float32 maps, ~1e-6); the issue for a note per statistic in each sidecar.
+    out = tmp_path / "ci90"
+    assert main(["fit", str(spec), "--out", str(out), "--ci-level", "0.9", "--no-pictures"]) == 0
+    capsys.readouterr()
+    maps = {s: np.asarray(nib.load(out / "hypotheses" / "high_vs_low" / f"{s}.nii.gz").dataobj, dtype=float)
+            for s in ("effect", "se", "ci_lower", "ci_upper")}
+    half = scipy.stats.t.ppf(0.95, 18 - 4) * maps["se"]
+    np.testing.assert_allclose(maps["ci_lower"], maps["effect"] - half, rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(maps["ci_upper"], maps["effect"] + half, rtol=1e-5, atol=1e-5)
+    side = json.loads((out / "hypotheses" / "high_vs_low" / "ci_lower.json").read_text())
+    assert side["ci_level"] == 0.9 and "90% confidence interval" in side["effect_size"]
+    side = json.loads((out / "hypotheses" / "dose" / "partial_eta_squared_ci_upper.json").read_text())
+    assert side["ci_level"] == 0.9 and "noncentral F" in side["effect_size"]
+    d_side = json.loads((out / "hypotheses" / "high_vs_low" / "cohens_d.json").read_text())
+    assert "Cohen's d" in d_side["effect_size"]
+    assert not (out / "hypotheses" / "score" / "cohens_d.nii.gz").exists()  # a slope: not two means compared
+    assert json.loads((out / "summary.json").read_text())["inference"]["ci_level"] == 0.9
 
 
 def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
@@ -113,8 +144,12 @@ def test_existing_folder_needs_force(spec: Path, tmp_path: Path) -> None:
     assert "Traceback" not in proc.stderr
     assert [p.name for p in out.iterdir()] == ["old.txt"]
     proc = run_cli("fit", str(spec), "--out", str(out), "--force")
+    assert proc.returncode == 2 and "not a groupmodel output" in proc.stderr  # not groupmodel's: kept
+    (out / "old.txt").unlink()
+    (out / "dataset_description.json").write_text('{"GeneratedBy": [{"Name": "groupmodel"}]}')
+    proc = run_cli("fit", str(spec), "--out", str(out), "--force")
     assert proc.returncode == 0, proc.stderr
-    assert set(p.name for p in out.iterdir()) == expected_files()
+    assert files_in(out) == expected_files()
 
 
 def test_exit_codes_in_process(spec: Path, tmp_path: Path, capsys) -> None:
@@ -145,7 +180,7 @@ def test_memory_option_gives_the_same_maps(spec: Path, tmp_path: Path, capsys) -
     assert main(["fit", str(spec), "--out", str(tmp_path / "a")]) == 0
     assert main(["fit", str(spec), "--out", str(tmp_path / "b"), "--memory", "20KB"]) == 0
     capsys.readouterr()
-    for name in ("dose_F", "high_vs_low_t", "score_effect", "residual_variance"):
+    for name in ("hypotheses/dose/F", "hypotheses/high_vs_low/t", "hypotheses/score/effect", "residual_variance"):
         a = np.asanyarray(nib.load(tmp_path / "a" / f"{name}.nii.gz").dataobj)
         b = np.asanyarray(nib.load(tmp_path / "b" / f"{name}.nii.gz").dataobj)
         np.testing.assert_array_equal(a, b)

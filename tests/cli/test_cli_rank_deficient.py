@@ -60,11 +60,11 @@ def test_image_fit_with_permutations(study, tmp_path: Path) -> None:
     code, out, err = run("fit", str(spec), "--out", str(tmp_path / "maps"), "--permutations", "20", "--seed", "2",
                          "--tfce")
     assert code == 0, err
-    assert "warning: the design has rank 6 with 7 columns" in out
+    assert "warning: the design has rank 6 with 7 columns" in err
     summary = json.loads((tmp_path / "maps" / "summary.json").read_text())
     text = json.dumps(summary)
     assert str(len(frame) - 6) in text
-    sidecar = json.loads((tmp_path / "maps" / "caffeine_at_A_p_fwe.json").read_text())
+    sidecar = json.loads((tmp_path / "maps" / "hypotheses/caffeine_at_A/p_fwe.json").read_text())
     assert sidecar["df2"] == len(frame) - 6 and sidecar["permutations"] == 20
 
 

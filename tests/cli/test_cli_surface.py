@@ -99,26 +99,26 @@ def test_surface_tfce_and_clusters_with_a_mesh(tmp_path, capsys) -> None:
     printed = capsys.readouterr().out
     assert code == 0
     assert "120 vertices in the mask" in printed and "voxel" not in printed
-    names = {p.name for p in out.iterdir()}
+    names = {p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file()}
     for stem in ("t", "p", "p_fwe", "tfce", "p_tfce_fwe", "p_cluster_fwe"):
-        assert f"b_vs_a_{stem}.func.gii" in names, stem
+        assert f"hypotheses/b_vs_a/{stem}.func.gii" in names, stem
     assert "mask.func.gii" in names and "residual_variance.func.gii" in names
     assert not any(n.endswith(".gii") and not n.endswith(".func.gii") for n in names)
     # TFCE of the observed t map, against relabelling the mesh at every threshold (scipy connected components)
-    side = json.loads((out / "b_vs_a_tfce.json").read_text())
+    side = json.loads((out / "hypotheses/b_vs_a/tfce.json").read_text())
     assert side["tfce"]["connectivity"] == "mesh edges"
-    t = _data(out / "b_vs_a_t.func.gii")
+    t = _data(out / "hypotheses/b_vs_a/t.func.gii")
     _, faces = grid_mesh()
-    np.testing.assert_allclose(_data(out / "b_vs_a_tfce.func.gii"),
+    np.testing.assert_allclose(_data(out / "hypotheses/b_vs_a/tfce.func.gii"),
                                brute_tfce_mesh(t, faces, side["tfce"]["dh"]), rtol=1e-5)  # float32 maps
     # The planted patch is found, and only it: one cluster of the 16 patch vertices in each table
-    assert np.all(_data(out / "b_vs_a_p_tfce_fwe.func.gii")[PATCH] < 0.05)
+    assert np.all(_data(out / "hypotheses/b_vs_a/p_tfce_fwe.func.gii")[PATCH] < 0.05)
     for kind in ("tfce_fwe", "cluster_extent_fwe", "voxel_fwe"):
-        table = pd.read_csv(out / f"b_vs_a_clusters_{kind}.tsv", sep="\t")
+        table = pd.read_csv(out / f"hypotheses/b_vs_a/clusters_{kind}.tsv", sep="\t")
         assert len(table) >= 1 and table["p_fwe"].iloc[0] < 0.05, kind
-        assert "vertices" in json.loads((out / f"b_vs_a_clusters_{kind}.json").read_text())["clusters"] \
+        assert "vertices" in json.loads((out / f"hypotheses/b_vs_a/clusters_{kind}.json").read_text())["clusters"] \
             or kind == "cluster_extent_fwe"
-    extent = pd.read_csv(out / "b_vs_a_clusters_cluster_extent_fwe.tsv", sep="\t")
+    extent = pd.read_csv(out / "hypotheses/b_vs_a/clusters_cluster_extent_fwe.tsv", sep="\t")
     assert extent["size"].iloc[0] <= len(PATCH) + 4
     summary = json.loads((out / "summary.json").read_text())
     assert summary["inference"]["mesh"] == str(tmp_path / "study" / "surf" / "grid.surf.gii")
@@ -129,19 +129,19 @@ def test_surface_without_mesh_writes_no_cluster_table_and_says_why(tmp_path, cap
     spec = make_surface_study(tmp_path / "study", mesh=None)
     out = tmp_path / "res"
     assert main(["fit", str(spec), "--out", str(out), "--permutations", "50"]) == 0
-    printed = capsys.readouterr().out
+    printed = capsys.readouterr().err  # warnings go to stderr
     assert not list(out.glob("*clusters*"))  # before: a 1-byte empty table
     summary = json.loads((out / "summary.json").read_text())
     assert any("no cluster tables" in w and "inference.mesh" in w for w in summary["warnings"])
     assert "warning: no cluster tables" in printed
-    assert (out / "b_vs_a_p_fwe.func.gii").exists()
+    assert (out / "hypotheses/b_vs_a/p_fwe.func.gii").exists()
 
 
 def test_surface_mesh_without_tfce_gives_the_voxel_fwe_table(tmp_path, capsys) -> None:
     spec = make_surface_study(tmp_path / "study")
     out = tmp_path / "res"
     assert main(["fit", str(spec), "--out", str(out), "--permutations", "100"]) == 0
-    table = pd.read_csv(out / "b_vs_a_clusters_voxel_fwe.tsv", sep="\t")
+    table = pd.read_csv(out / "hypotheses/b_vs_a/clusters_voxel_fwe.tsv", sep="\t")
     assert len(table) >= 1 and set(table["cluster"]) >= {1}
     assert "no cluster tables" not in capsys.readouterr().out
 

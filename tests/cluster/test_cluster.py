@@ -8,6 +8,7 @@ t of the cluster fit is also checked against statsmodels OLS at a few voxels.
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import signal
@@ -77,6 +78,13 @@ def _assert_same(a, b, label: str, same_chunks: bool) -> None:
                 np.testing.assert_array_equal(b.maps[name][stat], values, err_msg=where)
             else:
                 np.testing.assert_allclose(b.maps[name][stat], values, rtol=STAT_RTOL, atol=0, err_msg=where)
+    if a.mean_input is not None:  # the same mean per voxel; the residual sums per participant added in chunk order
+        np.testing.assert_array_equal(b.mean_input, a.mean_input, err_msg=label)
+        res_a, res_b = a.participant_residuals, b.participant_residuals
+        assert list(res_a.columns) == list(res_b.columns) and list(res_a.participant_id) == list(res_b.participant_id)
+        np.testing.assert_allclose(res_b.mean_abs_residual, res_a.mean_abs_residual, rtol=0 if same_chunks else 1e-12,
+                                   atol=0, err_msg=label)
+    assert a.warnings == b.warnings, label
 
 
 def test_cluster_fit_equals_the_local_fit_for_any_chunking(client, study: Path, local_fit) -> None:
@@ -175,9 +183,42 @@ def test_cli_scheduler_address_writes_the_local_maps(client, study: Path, tmp_pa
     assert main([*args, "--out", str(tmp_path / "there"), "--scheduler", client.scheduler.address]) == 0
     import nibabel as nib
 
-    for name in ("group_p_fwe", "age_p_perm", "age_t"):
-        here = sorted((tmp_path / "here").rglob(f"{name}.nii*"))
-        there = sorted((tmp_path / "there").rglob(f"{name}.nii*"))
-        assert here and len(here) == len(there), name
-        np.testing.assert_array_equal(np.asanyarray(nib.load(there[0]).dataobj),
-                                      np.asanyarray(nib.load(here[0]).dataobj), err_msg=name)
+    for name, stat in (("group", "p_fwe"), ("age", "p_perm"), ("age", "t"), ("b_vs_a", "cohens_d"),
+                      ("", "mean_input")):
+        here, there = (tmp_path / d / ("hypotheses/" + name if name else "") / f"{stat}.nii.gz"
+                       for d in ("here", "there"))
+        assert here.is_file() and there.is_file(), (name, stat)
+        np.testing.assert_array_equal(np.asanyarray(nib.load(there).dataobj), np.asanyarray(nib.load(here).dataobj),
+                                      err_msg=f"{name} {stat}")
+    tables = [(tmp_path / d / "participants_residuals.tsv").read_text() for d in ("here", "there")]
+    assert tables[0] == tables[1]
+    # The same files and the same index; the scheduler is in the run record, and only there.
+    files = sorted(str(p.relative_to(tmp_path / "here")) for p in (tmp_path / "here").rglob("*") if p.is_file())
+    assert files == sorted(str(p.relative_to(tmp_path / "there")) for p in (tmp_path / "there").rglob("*")
+                           if p.is_file())
+    index = [json.loads((tmp_path / d / "outputs.json").read_text()) for d in ("here", "there")]
+    assert _without_times(index[0]) == _without_times(index[1])
+    runtime = [json.loads((tmp_path / d / "summary.json").read_text())["runtime"] for d in ("here", "there")]
+    assert "scheduler" not in runtime[0]
+    assert runtime[1]["scheduler"]["asked"] == client.scheduler.address and runtime[1]["scheduler"]["workers"] == 2
+
+
+def _without_times(value):
+    """A JSON value without the keys that differ between any two runs (times, folders, digests of them)."""
+    if isinstance(value, dict):
+        return {k: _without_times(v) for k, v in value.items()
+                if not any(w in k for w in ("time", "date", "seconds", "command", "path", "sha"))}
+    if isinstance(value, list):
+        return [_without_times(v) for v in value]
+    return value
+
+
+def test_checkpoint_with_a_scheduler_is_refused_before_any_work(client, study: Path, tmp_path: Path,
+                                                                 capsys) -> None:
+    code = main(["fit", str(study), "--out", str(tmp_path / "out"), "--permutations", "20",
+                 "--checkpoint", str(tmp_path / "ck"), "--scheduler", client.scheduler.address])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "--checkpoint" in err[0] and "--scheduler" in err[0]
+    assert not (tmp_path / "out").exists() and not (tmp_path / "ck").exists()
+    with pytest.raises(InputError, match="checkpoint"):
+        fit_images(study, progress=False, inference=OPTS, client=client, checkpoint=object())

@@ -26,8 +26,11 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "example_study"
-#: Keys whose values legitimately change between versions or runs.
-VOLATILE_KEYS = {"software_version"}
+#: Keys whose values legitimately change between versions, runs or machines: versions, the time fields of the
+#: run record, the digest of the image list (it holds modification times, set anew by every checkout) and the
+#: command line in dataset_description.json (it holds --out).
+VOLATILE_KEYS = {"software_version", "software_versions", "started", "wall_time_seconds", "list_sha256",
+                 "Description", "runtime"}  # runtime: cores of the machine
 
 
 def _run(name: str, args: list[str], out: Path) -> None:
@@ -174,7 +177,8 @@ def compare(a: Path, b: Path, rtol: float = 0.0, pictures: bool = True) -> list[
     """Differences between two reference folders (empty list: the same)."""
     diffs: list[str] = []
     roots_a, roots_b = _roots(a), _roots(b)
-    wanted = (lambda p: p.is_file()) if pictures else (lambda p: p.is_file() and p.suffix != ".png")
+    # the report (report.html) embeds the pictures: compared with them
+    wanted = (lambda p: p.is_file()) if pictures else (lambda p: p.is_file() and p.suffix not in (".png", ".html"))
     files_a = {p.relative_to(a) for p in a.rglob("*") if wanted(p)}
     files_b = {p.relative_to(b) for p in b.rglob("*") if wanted(p)}
     for missing in sorted(files_a ^ files_b):
@@ -187,7 +191,7 @@ def compare(a: Path, b: Path, rtol: float = 0.0, pictures: bool = True) -> list[
             if name != "roots.json":
                 _json_diff(json.loads(_normalised(pa.read_text(), roots_a)),
                            json.loads(_normalised(pb.read_text(), roots_b)), name, rtol, diffs)
-        elif name.endswith(".png"):
+        elif name.endswith((".png", ".html")):
             if pa.read_bytes() != pb.read_bytes():
                 diffs.append(f"{name}: pictures differ")
         else:

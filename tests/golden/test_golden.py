@@ -2,7 +2,8 @@
 
 ``expected/`` was written by ``groupmodel fit tests/golden/model.json --out tests/golden/expected
 --permutations 60 --seed 7 --tfce --cluster-threshold 3.1`` (run from the repository top; pictures
-removed).  Every file must come out again with the same names, the same JSON and TSV content and the same
+removed, though ``outputs.json`` still lists them, as the run's index does).
+Every file must come out again with the same names, the same JSON and TSV content and the same
 map values.  Floats are compared to a relative 1e-9, not bit for bit, because the last bits of a BLAS
 product may differ between machines; everything else (file set, keys, text, counts) must be identical.
 Regenerate ``expected/`` only for a deliberate change of output, and say so in the commit.

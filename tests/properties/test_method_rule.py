@@ -114,6 +114,6 @@ def test_terminal_and_summary_record_the_method_of_each_hypothesis(planted, tmp_
     assert summary["inference"]["method"] == {"grand_mean": "sign_flip", "a_mean": "sign_flip",
                                               "b_vs_a": "permutation", "age": "permutation"}
     assert summary["inference"]["method_setting"] == "auto"
-    assert json.loads((out / "grand_mean_p_fwe.json").read_text())["method"] == "sign_flip"
-    assert json.loads((out / "b_vs_a_p_perm.json").read_text())["method"] == "permutation"
-    assert nib.load(out / "grand_mean_p_fwe.nii.gz").shape == (5, 4, 1)
+    assert json.loads((out / "hypotheses/grand_mean/p_fwe.json").read_text())["method"] == "sign_flip"
+    assert json.loads((out / "hypotheses/b_vs_a/p_perm.json").read_text())["method"] == "permutation"
+    assert nib.load(out / "hypotheses/grand_mean/p_fwe.nii.gz").shape == (5, 4, 1)

@@ -28,6 +28,7 @@ from nist_strd import EASY, HARD, NIST_DIR, SKIP_REASON, lre, read_nist
 from scipy import special, stats
 
 from groupmodel import __version__
+from groupmodel.analysis.effect_maps import effect_size_names
 from groupmodel.fit import F_MAPS, T_MAPS, fit_images, fit_table, write_voxel_fit
 from groupmodel.outputs.numbers import tidy
 
@@ -150,6 +151,10 @@ def _statsmodels_reference(fit, y: np.ndarray) -> dict[str, dict[str, float]]:
                 q = float(stats.t.cdf(t, df) if h.tail == "greater" else stats.t.sf(t, df))
             out[h.name] = {"effect": float(tt.effect[0]), "se": float(tt.sd[0, 0]), "t": t, "p": p, "z": z,
                            "mlog10p": _mlog10(p, q)}
+            # the 95% interval of the effect: statsmodels conf_int; d (where defined): effect / sqrt(scale)
+            out[h.name]["ci_lower"], out[h.name]["ci_upper"] = (float(v) for v in tt.conf_int(alpha=0.05)[0])
+            if "cohens_d" in effect_size_names(h):
+                out[h.name]["cohens_d"] = float(tt.effect[0]) / float(np.sqrt(res.scale))
         else:
             ft = res.f_test(h.weights)
             p = float(ft.pvalue)
@@ -213,9 +218,9 @@ def test_written_maps_read_back(study) -> None:
     design_cols = fit.model.design.column_names
     for h in fit.model.hypotheses.values():
         kinds = T_MAPS if h.test == "t" else F_MAPS
-        assert set(fit.maps[h.name]) == set(kinds)
+        assert set(fit.maps[h.name]) == set(kinds) | set(effect_size_names(h))
         for stat in kinds:
-            img = nib.load(out / f"{h.name}_{stat}.nii.gz")
+            img = nib.load(out / "hypotheses" / h.name / f"{stat}.nii.gz")
             assert img.get_data_dtype() == np.float32
             assert img.shape == SHAPE
             assert np.allclose(img.affine, AFFINE, rtol=0, atol=1e-6)
@@ -235,7 +240,7 @@ def test_written_maps_read_back(study) -> None:
                     assert _rel(value, float(adjusted[where]), floor) <= RTOL_F32, (h.name, stat, col)
                     continue
                 assert _rel(value, ref[h.name][stat], floor) <= RTOL_F32, (h.name, stat, col)
-            side = json.loads((out / f"{h.name}_{stat}.json").read_text())
+            side = json.loads((out / "hypotheses" / h.name / f"{stat}.json").read_text())
             for key in SIDECAR_KEYS:
                 assert key in side, (h.name, stat, key)
             assert side["hypothesis"] == h.name and side["statistic"] == stat
@@ -257,7 +262,7 @@ def test_written_maps_read_back(study) -> None:
     col = next(iter(refs))
     for h in fit.model.hypotheses.values():
         if h.test == "F":
-            side = json.loads((out / f"{h.name}_F.json").read_text())
+            side = json.loads((out / "hypotheses" / h.name / "F.json").read_text())
             assert side["df1"] == refs[col][h.name]["df1"] and side["df2"] == refs[col][h.name]["df2"]
 
 

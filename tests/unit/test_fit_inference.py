@@ -113,14 +113,14 @@ def test_cli_writes_permutation_maps_sidecars_and_cluster_tables(study, tmp_path
     printed = capsys.readouterr().out
     assert "permutation inference: seed 7, Freedman-Lane" in printed
     assert "  group: row permutation, 30 rearrangements" in printed
-    side = json.loads((out / "group_p_tfce_fwe.json").read_text())
+    side = json.loads((out / "hypotheses/group/p_tfce_fwe.json").read_text())
     for key in ("hypothesis", "statistic", "method", "permutations", "exhaustive", "seed", "tfce", "df1", "df2"):
         assert key in side, key
     assert side["statistic"] == "p_tfce_fwe" and side["seed"] == 7 and side["permutations"] == 30
     for kind in ("voxel_fwe", "tfce_fwe", "cluster_extent_fwe"):
-        table = pd.read_csv(out / f"group_clusters_{kind}.tsv", sep="\t")
+        table = pd.read_csv(out / f"hypotheses/group/clusters_{kind}.tsv", sep="\t")
         assert list(table.columns[:4]) == ["cluster", "sign", "size", "peak_stat"]
-        meta = json.loads((out / f"group_clusters_{kind}.json").read_text())
+        meta = json.loads((out / f"hypotheses/group/clusters_{kind}.json").read_text())
         assert meta["statistic"] == f"clusters_{kind}" and "clinical" in meta["note"] and "p_fwe" in meta["columns"]
     summary = json.loads((out / "summary.json").read_text())
     assert summary["inference"]["permutations"] == 30

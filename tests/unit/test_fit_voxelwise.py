@@ -24,6 +24,7 @@ import pytest
 
 import groupmodel.images as images_module
 import groupmodel.images.reading as images_reading
+from groupmodel.analysis.effect_maps import effect_size_names
 from groupmodel.errors import ImageError, InputError, ModelError, OutputError
 from groupmodel.fit import F_MAPS, T_MAPS, VoxelFit, fit_images, write_voxel_fit
 
@@ -133,7 +134,8 @@ def test_fit_contents(base_fit: VoxelFit) -> None:
     assert fit.residual_variance.shape == (n_vox,)
     assert list(fit.maps) == list(HYPOTHESES)
     for name, maps in fit.maps.items():
-        want = F_MAPS if fit.model.hypotheses[name].test == "F" else T_MAPS
+        h = fit.model.hypotheses[name]
+        want = (F_MAPS if h.test == "F" else T_MAPS) + effect_size_names(h)
         assert tuple(maps) == want
         for values in maps.values():
             assert values.shape == (n_vox,) and values.dtype == np.float64
@@ -276,12 +278,12 @@ def test_gifti_surface_equals_volume(tmp_path: Path, base_fit: VoxelFit) -> None
     assert_same_fit(_as_volume(fit), base_fit, rtol=0.0)
     out = tmp_path / "surface_out"
     write_voxel_fit(fit, out)
-    img = nib.load(out / "b_vs_a_t.func.gii")
+    img = nib.load(out / "hypotheses/b_vs_a/t.func.gii")
     assert len(img.darrays) == 1
     values = img.darrays[0].data
     assert values.dtype == np.float32
     np.testing.assert_array_equal(values, fit.maps["b_vs_a"]["t"].astype(np.float32))
-    assert json.loads((out / "b_vs_a_t.json").read_text())["statistic"] == "t"
+    assert json.loads((out / "hypotheses/b_vs_a/t.json").read_text())["statistic"] == "t"
 
 
 def _as_volume(fit: VoxelFit) -> VoxelFit:
@@ -388,10 +390,13 @@ def test_write_refuses_existing_folder_without_force(tmp_path: Path, base_fit: V
     with pytest.raises(OutputError):
         write_voxel_fit(base_fit, out)
     assert (out / "marker.txt").is_file()  # untouched
+    with pytest.raises(OutputError, match="did not write"):  # --force replaces only what groupmodel wrote
+        write_voxel_fit(base_fit, out, force=True)
+    (out / "marker.txt").unlink()
     write_voxel_fit(base_fit, out, force=True)
-    assert not (out / "marker.txt").exists()
     sidecars = [n.replace(".nii.gz", ".json") for n in names if n.endswith(".nii.gz")]
-    assert sorted(p.name for p in out.iterdir()) == sorted(names + sidecars)
+    files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
+    assert files == sorted([*names, *sidecars, ".groupmodel-output.json"])
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind
 
 
@@ -445,7 +450,7 @@ def test_hypothesis_names_with_dots_get_their_own_sidecars(tmp_path: Path) -> No
     write_voxel_fit(fit, out)
     for name, stats in (("age.slope", T_MAPS), ("group.main", F_MAPS)):
         for stat in stats:
-            assert (out / f"{name}_{stat}.nii.gz").is_file()
-            side = json.loads((out / f"{name}_{stat}.json").read_text())
+            assert (out / "hypotheses" / name / f"{stat}.nii.gz").is_file()
+            side = json.loads((out / "hypotheses" / name / f"{stat}.json").read_text())
             assert side["hypothesis"] == name and side["statistic"] == stat
     assert not (out / "age.json").exists() and not (out / "group.json").exists()

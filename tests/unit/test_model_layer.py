@@ -65,7 +65,7 @@ def test_options_from_spec_and_overrides() -> None:
     opts = base.with_overrides(permutations=100, tfce=True, seed=4)
     assert (opts.permutations, opts.tfce, opts.seed) == (100, True, 4) and base.permutations == 0
     cli = argparse.Namespace(permutations=100, seed=4, method="auto", blocks=None, whole_blocks=False, tfce=True,
-                             cluster_threshold=None, jobs=None, threads=None)
+                             cluster_threshold=None, jobs=None, threads=None, ci_level=None)
     assert spec.inference_options.with_overrides(**inference_overrides(cli)) == opts
     with pytest.raises(InputError, match="need permutations"):
         base.with_overrides(tfce=True)

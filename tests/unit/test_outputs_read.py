@@ -253,19 +253,19 @@ def test_voxel_fit_files_read_right(tmp_path: Path, capsys: pytest.CaptureFixtur
     assert "dose    F     upper" in printed
     contrasts = json.loads((out / "contrasts.json").read_text())["hypotheses"]
     for name, stat in (("dose", "F"), ("dose", "p_fwe"), ("lin", "effect"), ("raw", "t")):
-        side = json.loads((out / f"{name}_{stat}.json").read_text())
+        side = json.loads((out / "hypotheses" / name / f"{stat}.json").read_text())
         assert side["weights_over_cells"] == contrasts[name]["weights_over_cells"], (name, stat)
         assert side["weights"] == contrasts[name]["weights"]
         assert side["tail"] == contrasts[name]["tail"]
-    assert json.loads((out / "dose_F.json").read_text())["tail"] == "upper"
-    table = pd.read_csv(out / "dose_clusters_voxel_fwe.tsv", sep="\t")
+    assert json.loads((out / "hypotheses/dose/F.json").read_text())["tail"] == "upper"
+    table = pd.read_csv(out / "hypotheses/dose/clusters_voxel_fwe.tsv", sep="\t")
     assert table.columns.tolist() == ["cluster", "sign", "size", "peak_stat", "peak_index", "peak_i", "peak_j",
                                       "peak_k", "peak_x_mm", "peak_y_mm", "peak_z_mm", "com_x_mm", "com_y_mm",
                                       "com_z_mm", "p_fwe"]
     assert len(table) >= 1
     ijk = table.loc[0, ["peak_i", "peak_j", "peak_k"]].to_numpy(int)
     assert np.allclose(affine[:3, :3] @ ijk + affine[:3, 3], table.loc[0, ["peak_x_mm", "peak_y_mm", "peak_z_mm"]])
-    f_map = np.asanyarray(nib.load(out / "dose_F.nii.gz").dataobj)
+    f_map = np.asanyarray(nib.load(out / "hypotheses/dose/F.nii.gz").dataobj)
     assert f_map[tuple(ijk)] == pytest.approx(table.loc[0, "peak_stat"], rel=1e-6)
-    columns = json.loads((out / "dose_clusters_voxel_fwe.json").read_text())["columns"]
+    columns = json.loads((out / "hypotheses/dose/clusters_voxel_fwe.json").read_text())["columns"]
     assert "peak_i, peak_j, peak_k" in columns and "peak_x_mm, peak_y_mm, peak_z_mm" in columns

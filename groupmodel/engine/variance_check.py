@@ -1,0 +1,49 @@
+"""Do the residual variances of a factor's groups differ?  The rule shared by fits and ``groupmodel check``.
+
+Each group's residual variance is ``RSS_g / rho_g`` (:mod:`groupmodel.engine.welch`); the check is Levene's test
+as ``scipy.stats.levene`` computes it, centred on the group medians (the Brown-Forsythe form), applied to the OLS
+residuals of the groups.  A factor is flagged where the largest group variance exceeds the smallest by more than
+:data:`VARIANCE_RATIO_WARN` and Levene's p is below :data:`LEVENE_ALPHA`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import stats
+
+__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "group_variances", "unequal"]
+
+#: Largest over smallest residual variance of a factor's groups above which a fit warns (with Levene's p).
+VARIANCE_RATIO_WARN = 2.0
+#: Levene's test (scipy.stats.levene, median-centred) must give p below this too.
+LEVENE_ALPHA = 0.05
+
+
+def group_variances(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Residual variance of each group (k, v) and Levene's p (v,), NaN where some group has no spread.
+
+    Parameters
+    ----------
+    resid : ndarray, shape (n, v)
+        OLS residuals.
+    labels : ndarray of int, shape (n,)
+        Group 0 .. k-1 of every row.
+    rho : ndarray, shape (k,)
+        Each group's residual df (the sum of its diagonal of the residual-forming matrix).
+    """
+    k = rho.size
+    onehot = np.zeros((k, resid.shape[0]))
+    onehot[labels, np.arange(resid.shape[0])] = 1.0
+    variances = (onehot @ (resid * resid)) / rho[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = stats.levene(*[resid[labels == g] for g in range(k)], center="median", axis=0).pvalue
+    p = np.atleast_1d(np.asarray(p, dtype=float))
+    return variances, np.where(np.all(variances > 0, axis=0), p, np.nan)
+
+
+def unequal(variances: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """Where (v,) the variances differ by more than :data:`VARIANCE_RATIO_WARN`, with Levene's p below
+    :data:`LEVENE_ALPHA`."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = variances.max(axis=0) / variances.min(axis=0)
+        return (ratio > VARIANCE_RATIO_WARN) & (p < LEVENE_ALPHA)

@@ -1,0 +1,48 @@
+"""``groupmodel fit`` as a batch job runs it: output to files (no terminal), a scheduler's CPU allocation.
+
+Reference: the conventions of batch systems (SLURM_CPUS_PER_TASK is the cores allocated per task; OMP_NUM_THREADS
+the threads a program should run) [from memory].
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+EXAMPLE = ROOT / "example_study"
+
+
+def _run(tmp_path: Path, *args: str, **env: str) -> subprocess.CompletedProcess[str]:
+    full = {**os.environ, "PYTHONPATH": os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]), **env}
+    for name in ("SLURM_CPUS_PER_TASK", "OMP_NUM_THREADS"):
+        if name not in env:
+            full.pop(name, None)
+    return subprocess.run([sys.executable, "-m", "groupmodel.cli", *args], capture_output=True, text=True,
+                          env=full, cwd=tmp_path, timeout=300)
+
+
+def test_scheduler_allocation_logged_once_and_recorded(tmp_path: Path) -> None:
+    out = tmp_path / "res"
+    proc = _run(tmp_path, "fit", str(EXAMPLE / "model.json"), "--out", str(out), "--permutations", "20",
+                "--tfce", "--no-pictures", SLURM_CPUS_PER_TASK="1")
+    assert proc.returncode == 0, proc.stderr
+    log = proc.stdout.splitlines()
+    assert log.count("groupmodel: using 1 core (SLURM_CPUS_PER_TASK=1)") == 1
+    for stage in ("reading images", "fitting", "permutations"):
+        assert sum(line.startswith(f"groupmodel: {stage}: done in ") for line in log) == 1, log
+    assert "warning" not in proc.stdout
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["runtime"]["threads"] == 1 and summary["runtime"]["worker_processes"] == 0
+    assert summary["runtime"]["cores_from"] == "SLURM_CPUS_PER_TASK=1"
+    assert isinstance(summary["findings"], list)
+
+
+def test_quiet_run_has_no_stage_lines(tmp_path: Path) -> None:
+    proc = _run(tmp_path, "fit", str(EXAMPLE / "model.json"), "--out", str(tmp_path / "res"), "--quiet",
+                "--no-pictures", OMP_NUM_THREADS="1")
+    assert proc.returncode == 0 and proc.stderr == "", proc.stderr
+    assert "groupmodel: " not in proc.stdout and "wrote " in proc.stdout

@@ -189,7 +189,7 @@ def permutation_inference(
     checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
         Save (and resume from) the counts and maxima of each hypothesis's finished batches.
     cluster : groupmodel.analysis.cluster_fit.ClusterSession, optional
-        Run the permutations on this Dask cluster (not with ``checkpoint``); the same results.
+        Run the permutations on this Dask cluster; the same results.
     """
     from ..inference.driver import run_permutations
     from ..inference.settings import BATCH_SIZE, ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
@@ -228,11 +228,11 @@ def permutation_inference(
 
             test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
             chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
-            if cluster is not None:  # (no checkpoint: refused with a cluster before any work)
-                res = _on_cluster(cluster, test, chosen, map_settings, execution, report)
+            saved = None if checkpoint is None else checkpoint.contrast(
+                h.name, {"permutations": options.permutations, "seed": options.seed, "method": chosen.method})
+            if cluster is not None:
+                res = _on_cluster(cluster, test, chosen, map_settings, execution, report, saved)
             else:
-                saved = None if checkpoint is None else checkpoint.contrast(
-                    h.name, {"permutations": options.permutations, "seed": options.seed, "method": chosen.method})
                 res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report,
                                        checkpoint=saved)
             out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)
@@ -240,12 +240,13 @@ def permutation_inference(
 
 
 def _on_cluster(cluster: Any, test: Any, chosen: Any, map_settings: Any, execution: Any,
-                report: Callable[[int, int], None]) -> Any:
+                report: Callable[[int, int], None], checkpoint: Any = None) -> Any:
     """One contrast's permutations on the cluster (:func:`groupmodel.inference.distributed.run_on_cluster`)."""
     from ..inference.distributed import ClusterWork, run_on_cluster
 
     work = ClusterWork(cache_bytes=cluster.cache_bytes)
-    return run_on_cluster(cluster.executor, cluster.reader, test, chosen, map_settings, execution, work, report)
+    return run_on_cluster(cluster.executor, cluster.reader, test, chosen, map_settings, execution, work, report,
+                          checkpoint)
 
 
 def _surface_tables_adjacency(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:

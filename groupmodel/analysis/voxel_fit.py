@@ -209,14 +209,11 @@ def fit_images(
     client : dask.distributed.Client, optional
         Run the fit and the permutations on this Dask cluster (:mod:`groupmodel.analysis.cluster_fit`):
         its workers read the images themselves; ``memory_bytes`` is then also each worker's budget.  The
-        results are those of the local run.  Not with ``checkpoint``.
+        results are those of the local run.
     """
     from ..images import chunk_size_for
 
     clock = RunClock.start()
-    if client is not None and checkpoint is not None:
-        raise InputError("a checkpoint is not available with a Dask cluster (its scheduler reruns a lost "
-                         "worker's tasks instead); leave out one or the other")
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:

@@ -92,9 +92,6 @@ def _check_scheduler(args: argparse.Namespace) -> None:
     if args.outcome:
         raise InputError("--scheduler is for fits to images; a fit to one table column (--outcome) runs "
                          "here; leave out --scheduler")
-    if args.checkpoint is not None or args.resume:
-        raise InputError("--checkpoint and --resume are not available with --scheduler (a lost Dask worker's "
-                         "tasks are rerun by the scheduler instead); leave out one or the other")
 
 
 def _dry_run(args: argparse.Namespace) -> int:

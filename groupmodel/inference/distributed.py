@@ -196,30 +196,86 @@ def home_worker(addresses: list[Any], c: int, n_chunks: int, g: int = 0) -> Any:
     return addresses[(c + n_chunks * (g % share)) % W]
 
 
-def _groups(J: int, batch_size: int, per_group: int) -> list[tuple[int, int]]:
+def _groups(J: int, batch_size: int, per_group: int, resume_at: int = 0) -> list[tuple[int, int]]:
     """Rearrangement ranges of whole batches (the run's batch boundaries): the first batch alone (the
-    observed pass, which every other task waits for), then ``per_group`` batches each."""
+    observed pass, which every other task waits for), then ``per_group`` batches each, from ``resume_at``
+    when a checkpoint holds the state up to there."""
     first = min(J, batch_size)
     step = batch_size * per_group
-    return [(0, first)] + [(r0, min(J, r0 + step)) for r0 in range(first, J, step)]
+    return [(0, first)] + [(r0, min(J, r0 + step)) for r0 in range(max(first, resume_at), J, step)]
 
 
 class _Collector:
-    """Combines what the tasks return, by position: counts by sum, maxima by maximum (any order)."""
+    """Combines what the tasks return, by position: counts by sum, maxima by maximum (any order).
 
-    def __init__(self, acc: _Accumulated, map_nulls: MapNulls | None) -> None:
-        self.acc, self.map_nulls = acc, map_nulls
+    With a checkpoint the counts of each group of rearrangements are held back until the group and every
+    earlier one are complete, so that the state saved is that after a prefix of the rearrangements, as a local
+    run's (the maxima go in at once: a rearrangement's maximum over some chunks is at most its maximum over
+    all, so a saved partial maximum is raised to the right value on resuming)."""
+
+    def __init__(self, acc: _Accumulated, map_nulls: MapNulls | None, groups: list[tuple[int, int]],
+                 tasks_per_group: int, checkpoint: Any = None, resumed: bool = False) -> None:
+        self.acc, self.map_nulls, self.groups, self.checkpoint = acc, map_nulls, groups, checkpoint
+        self.left = {r0: tasks_per_group for r0, _ in groups}
+        self.held: dict[int, np.ndarray] = {}
+        self.next = 0  # the first group not yet counted in acc
+        self.skip_first = resumed  # the saved counts hold the first batch's already
 
     def chunk(self, out: _ChunkOut) -> None:
         if out.observed is not None:
             self.acc.observe(out.s, out.e, out.observed)
-        self.acc.add(out.r0, out.s, out.e, ChunkNulls(out.counts, out.maxima))
+        if self.checkpoint is None:
+            self.acc.add(out.r0, out.s, out.e, ChunkNulls(out.counts, out.maxima))
+            return
+        self.acc.add(out.r0, out.s, out.e, ChunkNulls(np.zeros_like(out.counts), out.maxima))
+        held = self.held.setdefault(out.r0, np.zeros_like(self.acc.count))
+        held[out.s : out.e] += out.counts
+        self._done(out.r0)
 
     def whole(self, found: tuple[int, np.ndarray, np.ndarray]) -> None:
         assert self.map_nulls is not None
         r0, tmax, cmax = found
         self.map_nulls.tfce_max[r0 : r0 + tmax.size] = tmax
         self.map_nulls.cluster_max[r0 : r0 + cmax.size] = cmax
+        if self.checkpoint is not None:
+            self._done(r0)
+
+    def _done(self, r0: int) -> None:
+        """One task of the group at ``r0`` is in; count the complete groups of the prefix, and save."""
+        self.left[r0] -= 1
+        advanced = False
+        while self.next < len(self.groups) and self.left[self.groups[self.next][0]] == 0:
+            g0 = self.groups[self.next][0]
+            held = self.held.pop(g0, None)
+            if held is not None and not (self.next == 0 and self.skip_first):
+                self.acc.count += held
+            self.next += 1
+            advanced = True
+        if advanced:
+            done = self.groups[self.next][0] if self.next < len(self.groups) else self.acc.max_null.size
+            if self.checkpoint.due(final=done == self.acc.max_null.size):
+                self.checkpoint.save(self._state(done))
+
+    def _state(self, done: int) -> Any:
+        from .checkpoint import BatchState
+
+        m = self.map_nulls
+        return BatchState(done, self.acc.count.copy(), self.acc.max_null.copy(),
+                          None if m is None else m.tfce_max.copy(), None if m is None else m.cluster_max.copy())
+
+    def restore(self, saved: Any) -> None:
+        """The counts and maxima of a checkpoint, before any task of this run is collected."""
+        from .driver import _restore_arrays
+
+        _restore_arrays(self.acc, saved)
+
+    def restore_maps(self, saved: Any) -> None:
+        """The TFCE and cluster maxima of a checkpoint (once the whole-map nulls exist)."""
+        if self.map_nulls is not None and saved is not None:
+            if saved.tfce_max is not None:
+                self.map_nulls.tfce_max[:] = saved.tfce_max
+            if saved.cluster_max is not None:
+                self.map_nulls.cluster_max[:] = saved.cluster_max
 
 
 def run_on_cluster(
@@ -231,12 +287,15 @@ def run_on_cluster(
     execution: Execution = _EXECUTION,
     work: ClusterWork = _WORK,
     progress: Callable[[int, int], None] | None = None,
+    checkpoint: Any = None,
 ) -> PermutationResult:
     """:func:`~groupmodel.inference.driver.run_permutations` on a :class:`groupmodel.runtime.cluster.DaskExecutor`,
     the data read by the workers through ``reader`` (shape (n, V), ``read(s, e)``, pickles).
 
     ``execution`` gives the batch and chunk sizes (as for the local run; the same results); ``progress``
-    is called with (tasks done, tasks in all).
+    is called with (tasks done, tasks in all); ``checkpoint`` (a
+    :class:`~groupmodel.inference.checkpoint.ContrastCheckpoint`) saves the state after each complete prefix
+    of the rearrangements and resumes from a saved one (made here or by a local run: the same format).
     """
     X, V = _check(test, reader, maps, replace(execution, workers=None))
     r = rearrangements
@@ -244,7 +303,7 @@ def run_on_cluster(
                          blocks=r.blocks, whole_blocks=r.whole_blocks)
     pset = permutation_set(X.shape[0], r.n_perm, plan.method, blocks=r.blocks, whole_blocks=r.whole_blocks,
                            seed=r.seed, classes=plan.classes)
-    run = _ClusterRun(executor, reader, plan, pset, V, execution, maps, work)
+    run = _ClusterRun(executor, reader, plan, pset, V, execution, maps, work, checkpoint)
     acc = run.go(progress)
     return permutation_result(test, plan, pset, acc, run.map_nulls)
 
@@ -253,7 +312,7 @@ class _ClusterRun:
     """One contrast on the cluster: the jobs (chunks), the groups of batches, the tasks in flight."""
 
     def __init__(self, executor: Any, reader: Any, plan: ContrastPlan, pset: Any, V: int, execution: Execution,
-                 maps: MapSettings, work: ClusterWork) -> None:
+                 maps: MapSettings, work: ClusterWork, checkpoint: Any = None) -> None:
         import uuid
 
         self.executor, self.reader, self.plan, self.pset, self.V = executor, reader, plan, pset, V
@@ -270,13 +329,18 @@ class _ClusterRun:
         else:
             wanted = max(1, -(-work.tasks_per_worker * self.threads // len(self.jobs)))
             per_group = max(1, -(-n_later // wanted))
-        self.groups = _groups(J, size, per_group)
+        saved = checkpoint.load() if checkpoint is not None else None
+        # a state saved inside the first batch (a local run's smaller batches) is not used: all is recomputed
+        self.saved = saved if saved is not None and saved.done >= min(J, size) else None
+        self.groups = _groups(J, size, per_group, self.saved.done if self.saved is not None else 0)
         per_task = len(self.jobs) + (1 if maps.wanted else 0)
         self.total = per_task * len(self.groups)
         self.done = 0
         self.map_nulls: MapNulls | None = None
         self.acc = _Accumulated.empty(V, J)
-        self.collector = _Collector(self.acc, None)
+        self.collector = _Collector(self.acc, None, self.groups, per_task, checkpoint, self.saved is not None)
+        if self.saved is not None:
+            self.collector.restore(self.saved)
 
     def _rearr(self, r0: int, r1: int) -> Any:
         return self.executor.put((r0, *self.pset.batch(r0, r1)))
@@ -347,6 +411,7 @@ class _ClusterRun:
         observed = observe_maps(self.acc.stat.copy(), self.plan, self.maps)
         self.map_nulls = MapNulls(observed, self.pset.size, InlineMaps(adjacency), owned=False)
         self.collector.map_nulls = self.map_nulls
+        self.collector.restore_maps(self.saved)
         if "grid" not in adjacency._cache:  # build the tables once, ship them with the adjacency
             adjacency.neighbour_table()
             adjacency.neighbour_chain()

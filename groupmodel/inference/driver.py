@@ -232,9 +232,8 @@ def permutation_result(test: ContrastTest, plan: ContrastPlan, pset: Permutation
     )
 
 
-def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
-    """Put back the counts and maxima of a checkpoint (after the observed batch was recomputed)."""
-    acc = run.acc
+def _restore_arrays(acc: _Accumulated, saved: BatchState) -> None:
+    """Put back the counts and maxima per rearrangement of a checkpoint (here or on a cluster)."""
     if saved.count.shape != acc.count.shape or saved.max_null.shape != acc.max_null.shape:
         raise InputError(
             f"the checkpoint holds {saved.count.size} elements and {saved.max_null.size} rearrangements, this run "
@@ -242,6 +241,11 @@ def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
         )
     acc.count[:] = saved.count
     acc.max_null[:] = saved.max_null
+
+
+def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
+    """Put back the counts and maxima of a checkpoint (after the observed batch was recomputed)."""
+    _restore_arrays(run.acc, saved)
     if map_nulls is not None:
         map_nulls.drain()
         if saved.tfce_max is not None:

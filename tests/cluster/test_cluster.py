@@ -219,12 +219,16 @@ def _without_times(value):
     return value
 
 
-def test_checkpoint_with_a_scheduler_is_refused_before_any_work(client, study: Path, tmp_path: Path,
-                                                                 capsys) -> None:
-    code = main(["fit", str(study), "--out", str(tmp_path / "out"), "--permutations", "20",
-                 "--checkpoint", str(tmp_path / "ck"), "--scheduler", client.scheduler.address])
-    err = capsys.readouterr().err.strip().splitlines()
-    assert code == 2 and len(err) == 1 and "--checkpoint" in err[0] and "--scheduler" in err[0]
-    assert not (tmp_path / "out").exists() and not (tmp_path / "ck").exists()
-    with pytest.raises(InputError, match="checkpoint"):
-        fit_images(study, progress=False, inference=OPTS, client=client, checkpoint=object())
+def test_cli_checkpoint_with_a_scheduler(client, study: Path, tmp_path: Path) -> None:
+    # Stopped and resumed runs on the cluster: tests/cluster/test_cluster_checkpoint.py; here the options together.
+    import nibabel as nib
+
+    args = ["fit", str(study), "--permutations", "40", "--seed", "8", "--tfce", "--no-pictures", "--quiet"]
+    assert main([*args, "--out", str(tmp_path / "here")]) == 0
+    ck = tmp_path / "ck"
+    assert main([*args, "--out", str(tmp_path / "there"), "--checkpoint", str(ck), "--checkpoint-every", "0",
+                 "--scheduler", client.scheduler.address]) == 0
+    assert not ck.exists()  # removed once the results are written
+    for stat in ("p_perm", "p_fwe", "p_tfce_fwe"):
+        here, there = (nib.load(tmp_path / d / "hypotheses" / "age" / f"{stat}.nii.gz") for d in ("here", "there"))
+        np.testing.assert_array_equal(np.asanyarray(there.dataobj), np.asanyarray(here.dataobj), err_msg=stat)

@@ -30,36 +30,40 @@ class ChunkParts:
     Attributes
     ----------
     fit : ChunkResult or WelchChunk
-    mean : ndarray (v,) or None
-        The mean input image over the observations (None with variance groups).
-    sums : ndarray (n,) or None
-        Each observation's sum of |residual| over the chunk (None with variance groups).
+    mean : ndarray (v,)
+        The mean input image over the observations.
+    sums : ndarray (n,)
+        Each observation's sum of |residual| (of the OLS fit) over the chunk.
     counts : dict
         Factor -> (voxels flagged, voxels tested) of the unequal-variance check.
     """
 
     fit: ChunkResult | WelchChunk
-    mean: np.ndarray | None
-    sums: np.ndarray | None
+    mean: np.ndarray
+    sums: np.ndarray
     counts: dict[str, tuple[int, int]]
 
 
 @dataclass(frozen=True, eq=False)
 class ChunkFit:
-    """The fit of one chunk (pickles; holds no data): OLS with ``prepared``, or Welch with ``welch``."""
+    """The fit of one chunk (pickles; holds no data): OLS with ``prepared``, or Welch with ``welch``, whose
+    residual sums are those of the OLS estimates ``solve @ y`` (``solve`` the design's pseudo-inverse)."""
 
     prepared: Prepared | None
-    design: np.ndarray | None
+    design: np.ndarray
     counter: Callable[[np.ndarray], dict[str, tuple[int, int]]]
     welch: WelchPrepared | None = None
+    solve: np.ndarray | None = None
 
     def __call__(self, y: np.ndarray) -> ChunkParts:
+        mean = np.mean(y, axis=0, dtype=np.float64)
         if self.welch is not None:
-            return ChunkParts(fit_chunk_welch(self.welch, y), None, None, self.counter(y))
-        assert self.prepared is not None and self.design is not None
+            assert self.solve is not None
+            beta = self.solve @ np.asarray(y, dtype=np.float64)
+            return ChunkParts(fit_chunk_welch(self.welch, y), mean, chunk_sums(self.design, y, beta), self.counter(y))
+        assert self.prepared is not None
         res = fit_chunk(self.prepared, y, beta=True)
-        return ChunkParts(res, np.mean(y, axis=0, dtype=np.float64), chunk_sums(self.design, y, res.beta),
-                          self.counter(y))
+        return ChunkParts(res, mean, chunk_sums(self.design, y, res.beta), self.counter(y))
 
 
 def fitted_parts(work: ChunkFit, data: Any, chunk_voxels: int,

@@ -23,6 +23,7 @@ from ..runtime.log import duration_text
 from ..runtime.memory import MemoryBudget
 from .corrections import InferenceOptions, adjacency_for, hypothesis_method
 from .parallel import ParallelPlan, parallel_plan
+from .strata_inference import check_strata_inference, stratum_method
 from .table_fit import require_fittable
 from .voxel_fit import elements_of, open_images
 
@@ -49,6 +50,13 @@ class DryRun:
     estimated_seconds: float | None
     dropped: list[tuple[str, str]]
 
+    def _strata_words(self) -> str:
+        strata = self.model.strata
+        if strata is None:
+            return ""
+        return (f", images of {len(strata.participant_ids)} participants; each hypothesis in its error stratum ("
+                + ", ".join(f"{n}: {t.stratum}" for n, t in strata.tests.items()) + ")")
+
     def lines(self) -> list[str]:
         spilled = self.data_bytes > self.budget.data_bytes
         memory = (f"memory: image data {self.data_bytes / 2**20:.1f} MB "
@@ -59,7 +67,7 @@ class DryRun:
         out = [
             f"dry run of {self.model.spec.name}: nothing is written",
             f"observations: {self.n_observations}" + (f" ({len(self.dropped)} left out for missing images)"
-                                                     if self.dropped else ""),
+                                                     if self.dropped else "") + self._strata_words(),
             f"{self.elements}: {self.n_elements} in the mask",
             f"hypotheses: {self.n_hypotheses} ({', '.join(self.model.hypotheses)})",
             f"permutations: {self.permutations if self.permutations else 'none (parametric corrections only)'}",
@@ -85,6 +93,8 @@ def dry_run(spec: ModelSpec | Path | str, mask: Path | str | None = None, memory
     require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
+    if model.strata is not None:
+        check_strata_inference(model, inference)
     start = time.perf_counter()
     in_mask = _read_all(source, mask if mask is not None else spec.mask)
     reading = time.perf_counter() - start
@@ -134,18 +144,17 @@ def _calibrate(model: Model, grid: Any, in_mask: np.ndarray, options: InferenceO
     real size (statistics and TFCE/cluster work do not depend on the values much), scaled to every hypothesis
     and the number of rearrangements asked for."""
     from ..inference.driver import run_permutations
-    from ..inference.settings import ContrastTest, Execution, MapSettings, Rearrangements
+    from ..inference.settings import Execution, MapSettings, Rearrangements
     from ..inference.tfce import TfceParams
 
-    n, V = model.design.n_observations, int(in_mask.sum())
-    data = np.random.default_rng(0).standard_normal((n, V)).astype(np.float32)
+    V = int(in_mask.sum())
     h = next(iter(model.hypotheses.values()))
-    test = ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name)
+    test, method = _first_test(model, h, options)
+    data = np.random.default_rng(0).standard_normal((test.design.shape[0], V)).astype(np.float32)
     mask = in_mask if grid.kind == "nifti" else in_mask.reshape(-1)
     adjacency = adjacency_for(grid, mask, options)
     maps = MapSettings(adjacency, TfceParams(dh=options.tfce_step) if options.tfce else None,
                        options.cluster_threshold)
-    method = hypothesis_method(h, options.method)
     def timed(n_perm: int) -> float:
         start = time.perf_counter()
         run_permutations(test, data, Rearrangements(n_perm=n_perm, method=method, seed=options.seed), maps,
@@ -160,4 +169,21 @@ def _calibrate(model: Model, grid: Any, in_mask: np.ndarray, options: InferenceO
             break
         J *= 4
     per = seconds / J
+    # with within-participant factors each hypothesis has its own stacked model: the first one stands for all
     return per * options.permutations * len(model.hypotheses) / max(1, plan.jobs if adjacency is not None else 1)
+
+
+def _first_test(model: Model, h: Any, options: InferenceOptions) -> tuple[Any, str]:
+    """The model the calibration times and its method: the hypothesis as fitted (in its error stratum, as the
+    participants' stacked transformed values, when there are within-participant factors)."""
+    from ..inference.settings import ContrastTest
+
+    if model.strata is None:
+        return (ContrastTest(model.design.matrix, h.weights, kind=h.test, tail=h.test_tail, name=h.name),
+                hypothesis_method(h, options.method))
+    t = model.strata.tests[h.name]
+    eye = np.eye(t.within_df)
+    kind = "t" if t.is_t else "F"
+    test = ContrastTest(np.kron(model.strata.design_of(h.name), eye), np.kron(t.between_weights, eye), kind=kind,
+                        tail=t.tail if kind == "t" else "two-sided", name=h.name)
+    return test, stratum_method(model, h.name, options.method)

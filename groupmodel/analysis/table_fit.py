@@ -20,6 +20,7 @@ from ..outputs.provenance import RunClock
 from ..text import DISCLAIMER
 from .cell_means import cell_means
 from .effect_maps import EFFECT_SIZE_STATS, effect_sizes
+from .strata_fit import StrataTableFit, fit_strata_table
 from .unequal_variances import UnequalVarianceTally
 from .welch_fit import table_welch, welch_setup
 
@@ -93,7 +94,8 @@ def require_fittable(model: Model) -> None:
         raise ModelError(f"{model.spec.name}: the spec has no hypotheses to test; add a 'hypotheses' object")
 
 
-def fit_table(spec: ModelSpec | Path | str, outcome: str, ci_level: float | None = None) -> TableFit:
+def fit_table(spec: ModelSpec | Path | str, outcome: str,
+              ci_level: float | None = None) -> TableFit | StrataTableFit:
     """Fit every hypothesis of ``spec`` to the numeric table column ``outcome``.
 
     Rows with ``n/a`` in the outcome are left out and listed with the other exclusions.  Intervals are at
@@ -105,13 +107,15 @@ def fit_table(spec: ModelSpec | Path | str, outcome: str, ci_level: float | None
     level = check_ci_level(spec.inference_options.ci_level if ci_level is None else ci_level)
     model = build(spec, numeric_columns=[outcome])
     require_fittable(model)
+    if model.strata is not None:  # within-participant factors: each hypothesis in its error stratum
+        return fit_strata_table(model, outcome, level, clock)
     y = model.sample.data[outcome].to_numpy(dtype=float)[:, None]
     prepared = prepare(model.design.matrix, model.tests())
     result = fit_chunk(prepared, y)
     table, record = results_table(model, result, ci_level=level), None
     setup = welch_setup(model, prepared)
-    if setup is not None:  # Welch's v and G with their approximate df (no effect sizes: n/a columns)
-        table, record = table_welch(model, setup, y, RESULT_COLUMNS)
+    if setup is not None:  # Welch's v and G with their approximate df (intervals; the effect sizes n/a)
+        table, record = table_welch(model, setup, y, RESULT_COLUMNS, ci_level=level)
     tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
     tally.add(y)
     model.findings += [Finding("warning", "unequal_variances", m) for m in tally.table_findings()]

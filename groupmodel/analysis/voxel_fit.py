@@ -33,6 +33,8 @@ from .corrections import (
 from .effect_maps import effect_size_names, effect_sizes
 from .parallel import parallel_plan, spill_warning
 from .participant_check import ParticipantCheck, residual_table
+from .strata_inference import check_strata_inference, strata_permutation_inference
+from .strata_voxels import STRATA_EXTRA_MAPS, average_df, strata_degrees, strata_pass
 from .table_fit import require_fittable
 from .unequal_variances import UnequalVarianceTally
 from .welch_fit import WelchSetup, welch_maps, welch_record, welch_setup
@@ -99,6 +101,12 @@ class VoxelFit:
     runtime: dict[str, Any] = field(default_factory=dict)
     #: With ``variance_groups``: the groups and the statistics used (v and G, df2 per voxel); else None.
     variance_groups: dict[str, Any] | None = None
+    #: Hypothesis -> (df1, df2) where they differ by hypothesis (within-participant factors: its stratum).
+    degrees: dict[str, tuple[int, int]] = field(default_factory=dict)
+
+    def df_of(self, name: str) -> tuple[int, int]:
+        """A hypothesis's numerator and denominator degrees of freedom."""
+        return self.degrees.get(name, (self.model.hypotheses[name].n_rows, self.df_resid))
 
     @property
     def elements(self) -> str:
@@ -118,9 +126,9 @@ class VoxelFit:
                 "hypothesis": h.name,
                 "test": h.test,
                 "tail": h.tail,
-                "df1": h.n_rows,
+                "df1": self.df_of(h.name)[0],
                 # with variance groups df2 is approximate and per voxel: its median over the tested voxels
-                "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_resid,
+                "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_of(h.name)[1],
                 "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
                 "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
@@ -223,8 +231,13 @@ def fit_images(
     require_fittable(model)
     model, source, dropped = open_images(model, drop_missing)
     require_fittable(model)
-    prepared = prepare(model.design.matrix, model.tests())
-    welch = welch_setup(model, prepared)
+    if model.strata is not None:
+        check_strata_inference(model, inference)
+        if client is not None:
+            raise InputError(f"{spec.name}: within-participant factors are fitted on this machine only, not on a "
+                             "Dask cluster; leave out --scheduler (client)")
+    prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
+    welch = welch_setup(model, prepared) if prepared is not None else None
     if welch is not None:
         check_welch_inference(inference)
     log = log if log is not None else StageLog(quiet=True)
@@ -235,26 +248,34 @@ def fit_images(
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
-            n_maps = sum(len(_map_names(h)) for h in model.hypotheses.values()) + 1
-            chunk_voxels = chunk_size_for(model.design.n_observations, len(prepared.tests),
+            extra = STRATA_EXTRA_MAPS if model.strata is not None else 0  # the epsilon and corrected p maps
+            n_maps = sum(len(_map_names(h)) + extra for h in model.hypotheses.values()) + 1
+            chunk_voxels = chunk_size_for(model.design.n_observations, len(model.hypotheses),
                                           budget.chunk_work_bytes(n_maps, n_vox))
         session = None
         if client is not None:
             from .cluster_fit import cluster_session
 
             session = cluster_session(client, source, data, budget.permutation_bytes)
-        tally = UnequalVarianceTally(model, prepared.u, prepared.centred)
+        tally = UnequalVarianceTally(model, prepared.u, prepared.centred) if prepared is not None else None
+        degrees: dict[str, tuple[int, int]] = {}
         with log.stage("fitting"):
-            if welch is None:
+            if prepared is None:  # within-participant factors: each hypothesis in its error stratum
+                maps, resid_var, mean_input = strata_pass(model, data, chunk_voxels, progress, inference.ci_level)
+                extras = None
+                degrees, df_resid = strata_degrees(model), average_df(model)  # residual variance: averages'
+            elif welch is None:
                 maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
                                                            ci_level=inference.ci_level, tally=tally, session=session)
-            else:  # Welch's v and G: no effect sizes, mean image or participant check
-                maps, resid_var = welch_maps(model, welch, data, chunk_voxels, progress, tally, session)
-                extras = None
+                mean_input, df_resid = extras[0], prepared.df_resid
+            else:  # Welch's v and G: intervals only (no effect sizes)
+                maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally, session,
+                                                     ci_level=inference.ci_level)
+                mean_input, df_resid = extras[0], prepared.df_resid
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid))
-                    + tally.voxel_findings(elements_of(data.grid)))
+                    + (tally.voxel_findings(elements_of(data.grid)) if tally is not None else []))
         for name, extra in parametric_corrections({n: m["p"] for n, m in maps.items()}).items():
             maps[name].update(extra)
         with log.stage("permutations") if inference.active else nullcontext():
@@ -273,17 +294,17 @@ def fit_images(
             "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
             "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
         }
-        return VoxelFit(model, data.grid, data.mask, maps, resid_var, prepared.df_resid, report, dropped,
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, df_resid, report, dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
                         tables={n: r.tables for n, r in permuted.items()},
                         inputs=RunInputs.of_spec(spec, mask if mask is not None else spec.mask,
                                                  [(r.path, r.volume) for r in source.refs], model.sample),
-                        clock=clock, mean_input=None if extras is None else extras[0],
+                        clock=clock, mean_input=mean_input,
                         participant_residuals=None if extras is None else residual_table(
-                            model.design.participant_ids, extras[1]),
+                            model.design.participant_ids, extras[1], None if welch is None else welch.groups.labels),
                         runtime={**plan.as_dict(), **({} if session is None else session.record())},
-                        variance_groups=welch_record(welch) if welch is not None else None)
+                        variance_groups=welch_record(welch) if welch is not None else None, degrees=degrees)
     finally:
         data.close()
 
@@ -402,6 +423,9 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
                      sum(totals.values()), "rearrangements" if session is None else "tasks")
 
     try:
+        if model.strata is not None:  # within-participant factors: rearranged in each hypothesis's stratum
+            return strata_permutation_inference(model, data, options, budget.permutation_bytes, chunk_voxels,
+                                                progress=report, checkpoint=checkpoint)
         if welch is not None:
             return welch_permutation_inference(model, welch, data, options, chunk_voxels, report, cluster=session)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,

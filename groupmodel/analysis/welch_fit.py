@@ -12,7 +12,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ..engine.effect_sizes import DEFAULT_CI_LEVEL, t_interval
 from ..engine.ols import Prepared
+from ..engine.participant_check import ParticipantCheck
 from ..engine.welch import WelchChunk, WelchPrepared, fit_chunk_welch, prepare_welch
 from ..model.assembly import Model
 from ..model.variance_groups import VarianceGroups, variance_groups_of
@@ -23,7 +25,9 @@ __all__ = ["STATISTICS", "WELCH_F_MAPS", "WELCH_T_MAPS", "WelchSetup", "welch_ma
            "welch_results_table", "welch_setup"]
 
 #: Maps of each kind of test with variance groups: ``v`` and ``G`` replace ``t`` and ``F``; ``df2`` is per voxel.
-WELCH_T_MAPS = ("effect", "se", "v", "df2", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
+#: A t hypothesis keeps the interval of its effect (with the Welch se and df); the standardized effects (Cohen's d
+#: over one residual SD, partial eta squared from a pooled F) are not defined with several variances.
+WELCH_T_MAPS = ("effect", "se", "v", "df2", "z", "p", "mlog10p", "p_fdr", "p_bonferroni", "ci_lower", "ci_upper")
 WELCH_F_MAPS = ("G", "df2", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
 #: What the sidecars and results.json say of the statistics.
 STATISTICS = {
@@ -64,12 +68,15 @@ def welch_record(setup: WelchSetup, group_variance: np.ndarray | None = None) ->
     return out
 
 
-def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], voxel: int = 0) -> pd.DataFrame:
-    """The rows of results.tsv with v / G, their approximate df2 and p."""
+def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], voxel: int = 0,
+                        ci_level: float = DEFAULT_CI_LEVEL) -> pd.DataFrame:
+    """The rows of results.tsv with v / G, their approximate df2 and p, and the ``ci_level`` interval of a t
+    hypothesis's effect (the effect sizes stay n/a)."""
     records = []
     for h in model.hypotheses.values():
         r = chunk[h.name]
         t = h.test == "t"
+        ci = t_interval(r.effect, r.se, r.df2, ci_level) if t else None
         records.append({
             "hypothesis": h.name,
             "test": h.test,
@@ -81,30 +88,44 @@ def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], vox
             "df2": float(r.df2[voxel]),
             "p": float(r.p[voxel]),
             "z": float(r.z[voxel]),
+            "ci_lower": float(ci.lower[voxel]) if ci is not None else np.nan,
+            "ci_upper": float(ci.upper[voxel]) if ci is not None else np.nan,
         })
     return pd.DataFrame.from_records(records, columns=columns)
 
 
 def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, progress: bool,
-               tally: Any, session: Any = None) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray]:
-    """The maps of every hypothesis (:data:`WELCH_T_MAPS`, :data:`WELCH_F_MAPS`; the corrected p maps allocated)
-    and the pooled residual variance, chunk by chunk, here or on the cluster of ``session``; ``tally``
-    (:class:`~.unequal_variances.UnequalVarianceTally`) counts every chunk too."""
+               tally: Any, session: Any = None, ci_level: float = DEFAULT_CI_LEVEL
+               ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
+    """The maps of every hypothesis (:data:`WELCH_T_MAPS`, :data:`WELCH_F_MAPS`; the corrected p maps allocated;
+    intervals at ``ci_level``) and the pooled residual variance, chunk by chunk, here or on the cluster of
+    ``session``; ``tally`` (:class:`~.unequal_variances.UnequalVarianceTally`) counts every chunk too.  Also the
+    mean input image and the per-participant residual sums (of the OLS fit, whose estimates v and G share; added
+    in chunk order), as a pooled fit gives them."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in (WELCH_T_MAPS if h.test == "t" else WELCH_F_MAPS)}
             for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
+    mean_input = np.empty(n_vox)
+    design = model.design.matrix
+    check = ParticipantCheck.empty(model.design.n_observations)
+    sums: dict[int, tuple[np.ndarray, int]] = {}
+    solve = np.linalg.pinv(design)  # the OLS (minimum-norm) estimates: the same fitted values for any solution
     bar = progress_bar(n_vox, "fitting", enabled=progress)
-    work = ChunkFit(None, None, tally.counter(), welch=setup.prepared)
+    work = ChunkFit(None, design, tally.counter(), welch=setup.prepared, solve=solve)
     try:
         for cols, part in fitted_parts(work, data, chunk_voxels, session):
             res = part.fit
             resid_var[cols] = res.residual_variance
+            mean_input[cols] = part.mean
+            sums[cols.start] = (part.sums, cols.stop - cols.start)
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
                     m["effect"][cols] = r.effect
                     m["se"][cols] = r.se
+                    ci = t_interval(r.effect, r.se, r.df2, ci_level)
+                    m["ci_lower"][cols], m["ci_upper"][cols] = ci.lower, ci.upper
                 m[r.statistic_name][cols] = r.statistic
                 for key in ("df2", "z", "p", "mlog10p"):
                     m[key][cols] = getattr(r, key)
@@ -112,11 +133,14 @@ def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, pr
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
-    return maps, resid_var
+    for s in sorted(sums):  # in chunk order: the same sums, bit for bit, in whatever order the chunks came
+        check.add_sums(*sums[s])
+    return maps, resid_var, (mean_input, check)
 
 
-def table_welch(model: Model, setup: WelchSetup, y: np.ndarray, columns: list[str]) -> tuple[pd.DataFrame,
-                                                                                            dict[str, Any]]:
+def table_welch(model: Model, setup: WelchSetup, y: np.ndarray, columns: list[str],
+                ci_level: float = DEFAULT_CI_LEVEL) -> tuple[pd.DataFrame, dict[str, Any]]:
     """results.tsv rows and the results.json record of a one-column fit with variance groups."""
     chunk = fit_chunk_welch(setup.prepared, y)
-    return welch_results_table(model, chunk, columns), welch_record(setup, chunk.group_variance[:, 0])
+    return (welch_results_table(model, chunk, columns, ci_level=ci_level),
+            welch_record(setup, chunk.group_variance[:, 0]))

@@ -35,6 +35,12 @@ MAX_MATCHINGS = 5040
 #: A matching that keeps at least this share of rows where the table has them is taken as the rows' own (rows
 #: sorted by group keep about half in place by chance, so a weaker agreement says nothing).
 STRONG_AGREEMENT = 0.75
+#: ... and so is one that keeps at least this share in place *and* more than chance would, by AGREEMENT_SDS
+#: standard deviations: rows in a random order agree with the table's cells in about sum(n_c^2) / n rows, with
+#: about that variance (a Poisson count), while a shift or a moved block keeps every row outside it.  (The share
+#: guards against the best of many matchings of equal-sized cells agreeing beyond chance by selection alone.)
+FAIR_AGREEMENT = 0.4
+AGREEMENT_SDS = 3.0
 
 
 @dataclass(frozen=True)
@@ -223,7 +229,8 @@ def _match_cells(pid: np.ndarray, view: TableView, s: tuple[str, ...],
     for pats, _ in groups.values():
         total *= math.factorial(len(pats))
     means = _pattern_means(files, discrete, pid, n_pat)
-    more = (agree, cells, n, cov is not None, pid)
+    chance = float(np.sum(cell_count.astype(float) ** 2)) / n
+    more = (agree, cells, n, cov is not None, pid, chance + AGREEMENT_SDS * math.sqrt(chance))
     if total > MAX_MATCHINGS:
         found = _factorwise(pid, means, view, s, more)
         if found is not None:
@@ -357,16 +364,18 @@ def _pattern_means(files: Files, discrete: list[int], pid: np.ndarray, n_pat: in
 
 
 def _matching_key(bij: dict[int, int], means: np.ndarray, view: TableView, s: tuple[str, ...],
-                  more: tuple[np.ndarray, np.ndarray, int, bool, np.ndarray]) -> tuple:
-    """Sort key of a matching: covariate agreement, simplest codings, rows kept in place, conventions."""
-    agree, cells, n, by_cov, pid = more
+                  more: tuple[np.ndarray, np.ndarray, int, bool, np.ndarray, float]) -> tuple:
+    """Sort key of a matching: covariate agreement, simplest codings, rows kept in place (when beyond chance),
+    conventions."""
+    agree, cells, n, by_cov, pid, beyond_chance = more
     index = {int(c): a for a, c in enumerate(cells)}
     got = float(sum(agree[p, index[c]] for p, c in bij.items()))
     dims = view.dims(s)
     cell_levels = np.array(np.unravel_index(np.array([bij[p] for p in range(len(bij))]), dims)).T
     structure, canon = _structure(means, cell_levels, s, view)
     order = _level_order_score(pid, bij, dims)
-    strong = got if by_cov or got >= STRONG_AGREEMENT * n else 0.0
+    fair = got >= FAIR_AGREEMENT * n and got >= beyond_chance
+    strong = got if by_cov or got >= STRONG_AGREEMENT * n or fair else 0.0
     return (-(got if by_cov else 0.0), structure, -strong, -canon, -order, -got)
 
 

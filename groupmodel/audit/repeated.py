@@ -260,9 +260,10 @@ def repeated_finding(req: Request, files: Files, grouping: Grouping) -> AuditFin
     fix = ("; give the model a spec instead: \"observations\": \"observations.tsv\" (tab-separated, one row per "
            "image with participant_id and the within-participant columns such as session) and \"within\": true on "
            f"each within-participant factor{f' (here the factor coded in {within})' if within else ''}: "
-           f"between-participant effects are then tested on each participant's average over the images "
-           f"({parts.right} df) and within-participant effects on each participant's within contrasts; or average "
-           f"each participant's images and give one row per participant ({n_part} rows)")
+           "each hypothesis is then tested in its error stratum: between-participant effects in the between "
+           f"stratum on each participant's average over the within cells ({parts.right} df), within-participant "
+           "effects in the within stratum on each participant's within contrasts (README: Within-participant "
+           f"factors); or average each participant's images and give one row per participant ({n_part} rows)")
     return AuditFinding(severity, "repeated_measures", head + body + fix, "rows")  # type: ignore[arg-type]
 
 

@@ -52,7 +52,7 @@ def _inputs(args: argparse.Namespace) -> list[Any]:
     from ..model.spec import load_spec
 
     spec = load_spec(args.spec)  # a broken spec is reported here, before any work, as it would be later
-    return [args.spec, getattr(args, "mask", None), spec.participants]
+    return [args.spec, getattr(args, "mask", None), spec.participants, spec.observations]
 
 
 def check_build_images(model: Any) -> None:
@@ -77,7 +77,8 @@ def check_build_images(model: Any) -> None:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     """``groupmodel fit``: one table column with --outcome, else every voxel of the images."""
-    _check_scheduler(args)
+    if args.outcome:
+        refuse_image_options(args)
     if args.dry_run:
         return _dry_run(args)
     with OutputLock(args.out) as lock:  # a second run into the same --out is refused at once
@@ -85,13 +86,21 @@ def cmd_fit(args: argparse.Namespace) -> int:
         return _fit(args)
 
 
-def _check_scheduler(args: argparse.Namespace) -> None:
-    """Refuse, before any work, what --scheduler does not go with."""
-    if getattr(args, "scheduler", None) is None:
-        return
-    if args.outcome:
-        raise InputError("--scheduler is for fits to images; a fit to one table column (--outcome) runs "
-                         "here; leave out --scheduler")
+#: Options of a voxelwise fit that a table fit (--outcome) cannot honour: (attribute, option, value when not given).
+_IMAGE_OPTIONS = (("permutations", "--permutations", None), ("tfce", "--tfce", False),
+                  ("cluster_threshold", "--cluster-threshold", None), ("blocks", "--blocks", None),
+                  ("whole_blocks", "--whole-blocks", False), ("method", "--method", "auto"),
+                  ("checkpoint", "--checkpoint", None), ("resume", "--resume", False), ("mask", "--mask", None),
+                  ("scheduler", "--scheduler", None))
+
+
+def refuse_image_options(args: argparse.Namespace) -> None:
+    """A usage error (exit 2, before any work) for options of a voxelwise fit given with --outcome, which would
+    otherwise be ignored (a table fit reports parametric p only)."""
+    given = [opt for name, opt, unset in _IMAGE_OPTIONS if getattr(args, name, unset) not in (unset, 0)]
+    if given:
+        raise InputError(f"fit --outcome fits one table column with parametric p: {', '.join(given)} "
+                         "apply to voxelwise fits only; leave them out, or leave out --outcome to fit the images")
 
 
 def _dry_run(args: argparse.Namespace) -> int:
@@ -126,9 +135,11 @@ def _fit(args: argparse.Namespace) -> int:
 def _fit_table(args: argparse.Namespace) -> int:
     from ..analysis.table_fit import fit_table
     from ..outputs.fit_files import write_table_fit
+    from ..runtime.log import StageLog
 
     fit = fit_table(args.spec, args.outcome, ci_level=args.ci_level)
-    print_model_report(fit.model)
+    print_model_report(fit.model, findings=False)
+    log_findings(StageLog(quiet=args.quiet), fit.model.findings, [])
     print()
     print(fit.format())
     write_table_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))
@@ -188,6 +199,8 @@ def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
         # threads and worker processes do not change the results: a resume may use others
         "inference": {k: v for k, v in options.as_dict().items() if k not in ("jobs", "threads")},
     }
+    if spec.observations is not None:  # several images per participant: their table is an input too
+        parameters["observations_sha256"] = file_digest(spec.observations)
     folder = CheckpointFolder(args.checkpoint, parameters, resume=args.resume, every=args.checkpoint_every)
     saved = folder.progress()
     if args.resume:

@@ -27,13 +27,14 @@ def print_stale_lock(stale: StaleLock | None) -> None:
         print(f"replaced {stale.path.name}: the lock of process {stale.pid}, which ended without releasing it")
 
 
-def print_model_report(model: Model) -> None:
-    """The model of ``build`` and of a table fit: size, columns, exclusions, findings, hypotheses."""
+def print_model_report(model: Model, findings: bool = True) -> None:
+    """The model of ``build`` and of a table fit: size, columns, exclusions, findings (unless ``findings`` is
+    False: a fit logs them on stderr instead, :func:`log_findings`), hypotheses."""
     d = model.design
     print(f"{model.spec.name}: {d.n_observations} observations, {d.n_columns} columns "
           f"({', '.join(d.column_names)})")
     print_exclusions(model)
-    if model.findings:
+    if model.findings and findings:
         print("findings:")
         for finding in model.findings:
             print(f"  {finding}")
@@ -55,8 +56,10 @@ def print_exclusions(model: Model) -> None:
 def print_voxel_fit(fit: VoxelFit, options: InferenceOptions) -> None:
     """A voxelwise fit before its files are written: sample and mask, warnings, hypotheses, inference, summary."""
     m = fit.model
-    print(f"{m.spec.name}: {m.design.n_observations} observations, {m.design.n_columns} columns, "
-          f"{fit.df_resid} residual df; {fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
+    shape = (f"{m.design.n_columns} columns, {fit.df_resid} residual df" if m.strata is None else
+             f"{len(m.strata.participant_ids)} participants, each hypothesis in its error stratum (df in the summary)")
+    print(f"{m.spec.name}: {m.design.n_observations} observations, {shape}; "
+          f"{fit.mask_report['voxels_in_mask']} {fit.elements} in the mask "
           f"({fit.mask_report['voxels_left_out_nonfinite_in_some_images']} left out for NaN/inf in some images)")
     print_exclusions(m)
     for h in m.hypotheses.values():
@@ -83,7 +86,8 @@ def _inference_line(fit: VoxelFit, options: InferenceOptions) -> str:
     for name, rec in fit.records.items():
         method = _METHOD_WORDS.get(rec.get("method"), rec.get("method"))
         lines.append(f"  {name}: {method}, {rec.get('permutations')} rearrangements"
-                     f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}")
+                     f"{' (all that exist: exact)' if rec.get('exhaustive') else ''}"
+                     f"{'; ' + rec['stratum'] + ' stratum: ' + rec['rearranged'] if 'stratum' in rec else ''}")
     return "\n".join(lines)
 
 

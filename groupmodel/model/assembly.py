@@ -19,6 +19,7 @@ from .design import Design, build_design
 from .estimability import alternatives
 from .hypotheses import Hypothesis, build_hypotheses
 from .spec import ModelSpec, load_spec
+from .strata import Strata, stratify
 from .table import Sample, select_sample
 from .variance_groups import variance_group_findings
 
@@ -44,6 +45,8 @@ class Model:
     design: Design
     hypotheses: dict[str, Hypothesis]
     findings: list[Finding] = field(default_factory=list)
+    #: With within-participant factors: the error stratum of every hypothesis (:mod:`.strata`); else None.
+    strata: Strata | None = None
 
     @property
     def errors(self) -> list[Finding]:
@@ -154,4 +157,8 @@ def build(
                                     f"hypothesis {h.name} is not estimable: {problem}{instead}"))
         for note in h.notes:
             findings.append(Finding("note", "hypothesis_rows", f"hypothesis {h.name}: {note}"))
-    return Model(spec, sample, design, hypotheses, findings)
+    strata = None
+    if spec.observations is not None:
+        strata, hypotheses, more = stratify(spec, design, hypotheses)
+        findings += [Finding(*f) for f in more]
+    return Model(spec, sample, design, hypotheses, findings, strata)

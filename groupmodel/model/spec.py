@@ -46,6 +46,7 @@ class FactorSpec:
     coding: Coding = "effect"
     reference: str | None = None
     scores: tuple[float, ...] | None = None
+    within: bool = False  # a within-participant factor: its levels are rows of the observations table
 
 
 @dataclass(frozen=True)
@@ -261,8 +262,14 @@ class ModelSpec:
     inference: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
     inference_options: InferenceOptions = field(default_factory=InferenceOptions)
+    #: The observations table (one row per image), when some factors are within-participant.
+    observations: Path | None = None
     #: A model factor whose groups get their own residual variance (Welch's v and G), or None.
     variance_groups: str | None = None
+
+    def within_factors(self) -> tuple[str, ...]:
+        """Model factors marked ``"within": true``, in declared order."""
+        return tuple(f for f in self.model_factors() if self.factors[f].within)
 
     @property
     def base_dir(self) -> Path:
@@ -392,7 +399,7 @@ def _read_factors(raw: Mapping[str, Any], name: str) -> dict[str, FactorSpec]:
             )
         if scores is not None and len(set(scores)) != len(scores):
             raise SpecError(f"{name} $.factors.{fname}.scores: scores must differ; found {list(scores)}")
-        factors[fname] = FactorSpec(fname, levels, f.get("coding", "effect"), ref, scores)
+        factors[fname] = FactorSpec(fname, levels, f.get("coding", "effect"), ref, scores, bool(f.get("within")))
     return factors
 
 
@@ -468,6 +475,8 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
     covariates = _read_covariates(raw, name, factors)
     terms = _read_terms(raw, name, factors, covariates)
 
+    observations = base / raw["observations"] if "observations" in raw else None
+    _check_within(name, factors, covariates, observations, raw.get("variance_groups"))
     exclude = tuple(raw.get("exclude", []))
     include = {k: tuple(_as_level(v) for v in vals) for k, vals in (raw.get("include") or {}).items()}
     sidecar = raw.get("participants_sidecar")
@@ -494,5 +503,29 @@ def spec_from_dict(raw: Any, path: Path | str) -> ModelSpec:
         inference=dict(raw.get("inference") or {}),
         raw=raw,
         inference_options=InferenceOptions.parse(raw.get("inference") or {}, base),
+        observations=observations,
         variance_groups=_read_variance_groups(raw, name, factors, terms),
     )
+
+
+def _check_within(name: str, factors: Mapping[str, FactorSpec], covariates: Mapping[str, CovariateSpec],
+                  observations: Path | None, variance_groups: Any = None) -> None:
+    """Within-participant factors need the observations table; covariates are centred by between factors;
+    variance groups are not offered with an observations table."""
+    if observations is not None and variance_groups is not None:
+        raise SpecError(
+            f"{name} $.variance_groups: unequal variances by group (Welch's v and G) are not available with an "
+            'observations table (several images per participant); remove "variance_groups" or "observations"'
+        )
+    within = [f for f, fs in factors.items() if fs.within]
+    if within and observations is None:
+        raise SpecError(
+            f"{name} $.factors.{within[0]}.within: a within-participant factor needs one row per image in an "
+            'observations table; add "observations": "observations.tsv" to the spec'
+        )
+    for cname, c in covariates.items():
+        if c.within is not None and c.within in within:
+            raise SpecError(
+                f"{name} $.covariates.{cname}.center.within: {c.within!r} is a within-participant factor and "
+                "covariates are between-participant; centre within a between-participant factor or on the mean"
+            )

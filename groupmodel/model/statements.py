@@ -137,6 +137,16 @@ def _factorise(design: Design, w: np.ndarray) -> tuple[np.ndarray, list[str], li
     return tensor, names, averaged, fixed
 
 
+def _positive_first(terms: list[tuple[float, str]]) -> list[tuple[float, str]]:
+    """A difference of two terms written as ``a - b``, never ``-b + a``; other combinations keep level order (a
+    trend reads best in the order of its levels)."""
+    scale = max((abs(c) for c, _ in terms), default=0.0) or 1.0
+    used = [(c, s) for c, s in terms if abs(c) > 1e-12 * scale]
+    if len(used) == 2 and used[0][0] < 0 < used[1][0]:
+        return [used[1], used[0]]
+    return terms
+
+
 def describe_cell_weights(design: Design, w: np.ndarray, slope_of: str | None = None) -> str:
     """A cell-weight row (n_cells,) in words, simplified where it factorises.
 
@@ -158,7 +168,7 @@ def describe_cell_weights(design: Design, w: np.ndarray, slope_of: str | None = 
             terms.append((float(tensor[idx]), label))
     else:
         terms.append((float(tensor), f"slope of {slope_of}" if slope_of else "mean of the cells"))
-    text = combination(terms) + " = 0"
+    text = combination(_positive_first(terms)) + " = 0"
     extras = []
     if averaged:
         extras.append("averaged equally over " + crossing(list(reversed(averaged))))

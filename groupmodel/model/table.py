@@ -77,6 +77,10 @@ class Sample:
     sidecar_levels: dict[str, tuple[str, ...]] = field(default_factory=dict, repr=False)
     numeric_columns: tuple[str, ...] = ()
     extra_exclusions: dict[str, str] = field(default_factory=dict)
+    #: With an observations table: the participants and observations tables as read (``table`` is then the
+    #: observations joined to the participants, one row per image); None otherwise.
+    participants_table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
+    observations_table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
 
     @property
     def n(self) -> int:
@@ -101,8 +105,8 @@ class Sample:
         return self.table.iloc[self.file_rows].reset_index(drop=True)
 
 
-def read_table(path: Path) -> pd.DataFrame:
-    """Read a BIDS participants table as text.
+def read_table(path: Path, what: str = "participants table", unique: bool = True) -> pd.DataFrame:
+    """Read a BIDS participants table (or, with ``unique=False``, an observations table) as text.
 
     Returns
     -------
@@ -116,14 +120,14 @@ def read_table(path: Path) -> pd.DataFrame:
     """
     name = path.name
     if not path.exists():
-        raise TableError(f"participants table {path}: file not found; check the path in the model spec")
+        raise TableError(f"{what} {path}: file not found; check the path in the model spec")
     if path.is_dir():
-        raise TableError(f"participants table {path}: expected a TSV file, found a folder; give the file")
+        raise TableError(f"{what} {path}: expected a TSV file, found a folder; give the file")
     try:
         data = path.read_bytes()
     except OSError as exc:
-        raise TableError(f"participants table {path}: cannot be read ({exc.strerror}); check the file") from None
-    lines = decode_utf8(data, f"participants table {path}", TableError, encoding="utf-8-sig").splitlines()
+        raise TableError(f"{what} {path}: cannot be read ({exc.strerror}); check the file") from None
+    lines = decode_utf8(data, f"{what} {path}", TableError, encoding="utf-8-sig").splitlines()
     lines = [ln for ln in lines if ln.strip()]
     if not lines:
         raise TableError(f"{name}: the file is empty; expected a header row starting with participant_id")
@@ -152,16 +156,18 @@ def read_table(path: Path) -> pd.DataFrame:
             )
         rows.append([f.strip() for f in fields])
     frame = pd.DataFrame(rows, columns=header, dtype=object)
-    _check_ids(name, frame["participant_id"])
+    _check_ids(name, frame["participant_id"], unique)
     frame.attrs["sha256"] = hashlib.sha256(data).hexdigest()  # of the bytes read (the run's provenance record)
     return frame
 
 
-def _check_ids(name: str, ids: pd.Series) -> None:
-    """Every row has a participant_id, and no id appears twice."""
+def _check_ids(name: str, ids: pd.Series, unique: bool = True) -> None:
+    """Every row has a participant_id, and (``unique``) no id appears twice."""
     missing_id = [i + 1 for i, v in enumerate(ids) if v in MISSING]
     if missing_id:
         raise TableError(f"{name} row {missing_id[0]}: participant_id is missing; give every row an id")
+    if not unique:
+        return
     dup_mask = ids.duplicated(keep=False)
     if dup_mask.any():
         first = ids[dup_mask].iloc[0]
@@ -232,6 +238,8 @@ def select_sample(
         An earlier selection whose table, sidecar levels, numeric columns and exclusions are reused.
     """
     extra = dict(extra_exclusions or {})
+    if spec.observations is not None:
+        return _select_with_observations(spec, sidecar_levels, numeric_columns, extra, sample)
     if sample is not None:
         table, sidecar_levels = sample.table, sample.sidecar_levels
         numeric_columns = tuple(numeric_columns) or sample.numeric_columns
@@ -421,3 +429,141 @@ def _select_rows(
     for c in covariates:
         out[c] = _numbers(name, c, rows, data[c].tolist())
     return Sample(data=out, exclusions=tuple(exclusions), levels=levels, source=spec.participants, notes=notes)
+
+
+# --------------------------------------------------------------------------------------------------
+# Several images per participant: the observations table joined to the participants table
+# --------------------------------------------------------------------------------------------------
+def _select_with_observations(spec: ModelSpec, sidecar_levels: dict[str, tuple[str, ...]] | None,
+                              numeric_columns: Sequence[str], extra: dict[str, str],
+                              sample: Sample | None) -> Sample:
+    """Participants selected on the between-participant columns, then their rows of the observations table
+    (one per image) checked on the within-participant and numeric columns; one row of ``data`` per image."""
+    assert spec.observations is not None
+    if sample is not None and sample.participants_table is not None and sample.observations_table is not None:
+        ptable, obs, sidecar_levels = sample.participants_table, sample.observations_table, sample.sidecar_levels
+        numeric_columns = tuple(numeric_columns) or sample.numeric_columns
+        extra = {**sample.extra_exclusions, **extra}
+    else:
+        ptable = read_table(spec.participants)
+        obs = read_table(spec.observations, "observations table", unique=False)
+    if sidecar_levels is None:
+        sidecar_levels = read_sidecar_levels(spec.participants_sidecar)
+    within = spec.within_factors()
+    between = between_spec(spec)
+    joined = _join(spec, ptable, obs)
+    lifted = [c for c in list(between.columns_used()) + list(spec.include)
+              if c in obs.columns and c not in ptable.columns]
+    people = _select_rows(between, _lift(spec, ptable, joined, lifted), sidecar_levels, (), extra or None)
+    ospec = replace(spec, participants=spec.observations)
+    kept_ids = set(people.data["participant_id"])
+    numeric = [c for c in numeric_columns if c not in between.columns_used()]
+    needed = list(within) + numeric
+    _check_columns(replace(ospec, include={}, exclude=()), joined, needed)
+    exclusions = list(people.exclusions)
+    keep: list[int] = []
+    for i, rec in enumerate(joined.to_dict("records")):
+        if rec["participant_id"] not in kept_ids:
+            continue
+        empty = next((c for c in needed if rec[c] == ""), None)
+        if empty is not None:
+            raise TableError(f"{ospec.participants.name} row {i + 1}, column {empty!r}: the field is empty; "
+                             "write n/a for a missing value (BIDS) or fill it in")
+        missing = [c for c in needed if rec[c] in MISSING]
+        if missing:
+            exclusions.append(Exclusion(rec["participant_id"], i + 1, f"{spec.observations.name} row {i + 1}: "
+                                        f"missing value (n/a) in column {', '.join(missing)}"))
+            continue
+        keep.append(i)
+    _check_one_per_cell(spec, joined, keep, within)
+    data = _observation_data(ospec, people, joined, keep, within, numeric, sidecar_levels)
+    entered = set(data["participant_id"])
+    for _, row in people.data.iterrows():
+        if row["participant_id"] not in entered:
+            exclusions.append(Exclusion(row["participant_id"], int(row["row"]),
+                                        f"no usable row in {spec.observations.name}"))
+    return Sample(data=data, exclusions=tuple(exclusions), levels={**people.levels, **data.attrs["levels"]},
+                  source=spec.participants, notes=people.notes + data.attrs["notes"], table=joined,
+                  sidecar_levels=dict(sidecar_levels), numeric_columns=tuple(numeric_columns),
+                  extra_exclusions=extra, participants_table=ptable, observations_table=obs)
+
+
+def between_spec(spec: ModelSpec) -> ModelSpec:
+    """The spec restricted to its between-participant factors and the terms made of them only."""
+    within = set(spec.within_factors())
+    return replace(spec, factors={f: fs for f, fs in spec.factors.items() if not fs.within},
+                   terms=tuple(t for t in spec.terms if not within.intersection(t)), observations=None)
+
+
+def _join(spec: ModelSpec, ptable: pd.DataFrame, obs: pd.DataFrame) -> pd.DataFrame:
+    """The observations table with each participant's columns of participants.tsv, as text, in its row order."""
+    assert spec.observations is not None
+    oname, pname = spec.observations.name, spec.participants.name
+    both = [c for c in obs.columns if c != "participant_id" and c in ptable.columns]
+    if both:
+        raise TableError(f"{oname} line 1: column {both[0]!r} is also in {pname}; keep each column in one table")
+    known = dict(zip(ptable["participant_id"], range(len(ptable)), strict=True))
+    for i, pid in enumerate(obs["participant_id"]):
+        if pid not in known:
+            raise TableError(f"{oname} row {i + 1}: participant_id {pid!r} is not in {pname}; "
+                             "add the participant to the participants table or fix the id")
+    positions = [known[p] for p in obs["participant_id"]]
+    extra = ptable.drop(columns=["participant_id"]).iloc[positions].reset_index(drop=True)
+    return pd.concat([obs.reset_index(drop=True), extra], axis=1)
+
+
+def _lift(spec: ModelSpec, ptable: pd.DataFrame, joined: pd.DataFrame, columns: Sequence[str]) -> pd.DataFrame:
+    """Between-participant columns kept in the observations table, one value per participant (refusing one
+    that varies within a participant); participants without observations get n/a."""
+    assert spec.observations is not None
+    out = ptable.copy()
+    for c in columns:
+        values: dict[str, str] = {}
+        for i, (pid, v) in enumerate(zip(joined["participant_id"], joined[c], strict=True)):
+            if values.setdefault(pid, v) != v:
+                raise TableError(
+                    f"{spec.observations.name} row {i + 1}, column {c!r}: participant {pid} has {values[pid]!r} "
+                    f"and {v!r}; {c} is between-participant (a factor without \"within\": true, or a covariate) "
+                    "and must be the same in every row of a participant"
+                )
+        out[c] = [values.get(p, "n/a") for p in out["participant_id"]]
+    return out
+
+
+def _check_one_per_cell(spec: ModelSpec, joined: pd.DataFrame, keep: Sequence[int], within: Sequence[str]) -> None:
+    """At most one row per participant and within-participant cell."""
+    assert spec.observations is not None
+    seen: dict[tuple[str, ...], int] = {}
+    for i in keep:
+        key = (joined["participant_id"].iloc[i], *(joined[f].iloc[i] for f in within))
+        if key in seen:
+            cell = ", ".join(f"{f}={v}" for f, v in zip(within, key[1:], strict=True)) or "(no within factor)"
+            raise TableError(
+                f"{spec.observations.name} rows {seen[key] + 1} and {i + 1}: participant {key[0]} has two rows "
+                f"for {cell}; give one image per participant and within-participant cell (average runs first)"
+            )
+        seen[key] = i
+
+
+def _observation_data(ospec: ModelSpec, people: Sample, joined: pd.DataFrame, keep: list[int],
+                      within: Sequence[str], numeric: Sequence[str],
+                      sidecar_levels: Mapping[str, tuple[str, ...]]) -> pd.DataFrame:
+    """One row per kept image: participant_id, row (in the observations table), the participant's between
+    columns, the within factors (text) and the numeric columns (float64); levels and notes in ``attrs``."""
+    rows = [i + 1 for i in keep]
+    ids = joined["participant_id"].iloc[keep].tolist()
+    per_person = people.data.set_index("participant_id")
+    out = pd.DataFrame({"participant_id": ids, "row": rows})
+    for c in per_person.columns:
+        if c != "row":
+            out[c] = per_person[c].reindex(ids).to_numpy()
+    notes: list[str] = []
+    levels: dict[str, tuple[str, ...]] = {}
+    for f in within:
+        values = joined[f].iloc[keep].tolist()
+        levels[f] = _factor_levels(ospec, f, values, rows, sidecar_levels, notes) if keep else ()
+        out[f] = pd.Series(values, dtype=object)
+    for c in numeric:
+        out[c] = _numbers(ospec.participants.name, c, rows, joined[c].iloc[keep].tolist())
+    out.attrs["levels"], out.attrs["notes"] = levels, notes
+    return out

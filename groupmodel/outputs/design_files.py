@@ -19,6 +19,7 @@ from ..model.checks import cell_counts_by_term
 from .folder import OutputFolder
 from .numbers import tidy
 from .provenance import RunClock, RunInputs, command_line, provenance, run_record
+from .strata_files import strata_sidecar, write_strata
 
 if TYPE_CHECKING:
     from ..model.assembly import Model
@@ -83,6 +84,8 @@ def design_sidecar(model: Model) -> dict[str, Any]:
         ],
         "excluded": [e.as_dict() for e in model.sample.exclusions],
         "findings": [f.as_dict() for f in model.findings],
+        **({"observations": str(model.spec.observations), "strata": strata_sidecar(model.strata)}
+           if model.strata is not None else {}),
     }
 
 
@@ -91,8 +94,17 @@ def contrasts_sidecar(model: Model) -> dict[str, Any]:
     return {
         **provenance(),
         "columns": model.design.column_names,
-        "hypotheses": {name: written_hypothesis(h).as_dict(model.design) for name, h in model.hypotheses.items()},
+        "hypotheses": {name: {**written_hypothesis(h).as_dict(model.design), **_stratum_of(model, name)}
+                       for name, h in model.hypotheses.items()},
     }
+
+
+def _stratum_of(model: Model, name: str) -> dict[str, Any]:
+    """With within-participant factors: the stratum a hypothesis is tested in and on what data (else nothing)."""
+    if model.strata is None or model.strata.tests[name].problems:
+        return {}
+    t = model.strata.tests[name]
+    return {"stratum": t.stratum, "tested_on": t.transformed}
 
 
 def included_frame(model: Model) -> pd.DataFrame:
@@ -117,7 +129,8 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True,
     out.write_tsv("contrasts.tsv", contrasts_frame(model))
     out.write_json("contrasts.json", {**contrasts_sidecar(model), **extra})
     out.write_tsv("participants_included.tsv", included_frame(model))
-    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "participants_included.tsv"]
+    names = ["design.tsv", "design.json", "contrasts.tsv", "contrasts.json", "participants_included.tsv",
+             *write_strata(model, out)]
     if pictures:
         names += draw_pictures(model, out)
     return names

@@ -16,6 +16,7 @@ from .design_files import PictureJob, write_model, written_hypothesis
 from .folder import OutputFolder
 from .index import map_path, sidecar_path, table_path
 from .provenance import RunInputs, command_line, provenance, run_record
+from .strata_files import effect_size_notes
 from .summary import summary_columns, summary_frame, summary_records
 
 if TYPE_CHECKING:
@@ -66,7 +67,45 @@ def write_table_fit(fit: TableFit, out: Path | str, force: bool = False, picture
     return Path(out)
 
 
+#: The further columns of results.tsv for a model with within-participant factors.
+STRATA_COLUMNS = {
+    "stratum": "error stratum: between (participant averages), within (within contrasts) or mixed (a weighted "
+               "sum over within cells that is neither)",
+    "epsilon_gg": "Greenhouse-Geisser (1959) epsilon (F tests with more than one within df; else n/a)",
+    "epsilon_hf": "Huynh-Feldt (1976) epsilon, Lecoutre (1991) form, at most 1 (as epsilon_gg)",
+    "p_gg": "p of F on df1 x epsilon_gg and df2 x epsilon_gg (as epsilon_gg)",
+    "p_hf": "p of F on df1 x epsilon_hf and df2 x epsilon_hf (as epsilon_gg)",
+    "participants": "participants who entered the hypothesis (a missing within cell it needs leaves one out)",
+}
+#: How the effect-size columns read for a model with within-participant factors (each in its stratum).
+STRATA_EFFECT_COLUMNS = {
+    "df2": "error degrees of freedom of the hypothesis's stratum",
+    "ci_lower": "lower bound of the two-sided confidence interval of the estimate, on the stratum's df2 (t tests)",
+    "ci_upper": "upper bound of the same interval",
+    "cohens_d": "estimate / residual SD of the data fitted in the stratum, for a t test comparing two cell or "
+                "marginal means: within stratum the SD of the differences (d_z), between stratum of the "
+                "participant averages, mixed stratum of the values in the within cell; n/a elsewhere (see "
+                "strata.NAME.cohens_d_sd)",
+    "partial_eta_squared": "F df1 / (F df1 + df2) = SSH / (SSH + SSE) in the stratum (sphericity-assumed F)",
+    "partial_eta_squared_ci_lower": "lower bound of its noncentral-F interval on the stratum's df (Steiger 2004); "
+                                    "n/a for F tests with more than one within df (see "
+                                    "strata.NAME.partial_eta_squared_interval)",
+}
+
+
 def _results_sidecar(fit: TableFit) -> dict[str, Any]:
+    if hasattr(fit, "strata_sidecar"):  # within-participant factors: the strata say what was fitted
+        return {
+            **provenance(),
+            "outcome": fit.outcome,
+            "n_observations": fit.model.design.n_observations,
+            "ci_level": fit.ci_level,
+            "columns": {**RESULTS_COLUMNS, **STRATA_COLUMNS, **STRATA_EFFECT_COLUMNS},
+            "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
+                           for n, h in fit.model.hypotheses.items()},
+            "strata": fit.strata_sidecar(),
+            "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        }
     return {
         **provenance(),
         "outcome": fit.outcome,
@@ -78,6 +117,7 @@ def _results_sidecar(fit: TableFit) -> dict[str, Any]:
         "hypotheses": {n: {"statement": h.statement, "test": h.test, "tail": h.tail}
                        for n, h in fit.model.hypotheses.items()},
         "excluded": [e.as_dict() for e in fit.model.sample.exclusions],
+        "warnings": [], "findings": [f.as_dict() for f in fit.model.findings],
         **({"variance_groups": fit.variance_groups} if fit.variance_groups is not None else {}),
     }
 
@@ -92,9 +132,19 @@ CORRECTION_NOTES = {
     "p_bonferroni": "Bonferroni adjusted p, min(1, p x voxels in the mask)",
     "p_perm": "uncorrected permutation p (identity included: never below 1/J)",
     "p_fwe": "family-wise error p from the maximum statistic over the mask (Nichols and Holmes 2002)",
+    "p_hf": "Huynh-Feldt (1976) corrected p: F on df1 x epsilon_hf and df2 x epsilon_hf (uncorrected for multiple "
+            "comparisons)",
+    "p_gg": "Greenhouse-Geisser (1959) corrected p: F on df1 x epsilon_gg and df2 x epsilon_gg (uncorrected for "
+            "multiple comparisons)",
     "tfce": "threshold-free cluster enhancement (Smith and Nichols 2009) of the statistic, sign kept",
     "p_tfce_fwe": "family-wise error p from the maximum TFCE over the mask",
     "p_cluster_fwe": "family-wise error p of the voxel's cluster, by cluster size at the stated z threshold",
+}
+#: What the sphericity maps of an F test with more than one within-participant df hold.
+SPHERICITY_NOTES = {
+    "epsilon_gg": "Greenhouse-Geisser (1959) epsilon tr(S)^2 / (c tr(S^2)) of the residual cross-products S of the "
+                  "c orthonormal within contrasts; 1 under sphericity, at least 1/c",
+    "epsilon_hf": "Huynh-Feldt (1976) epsilon, Lecoutre (1991) form, at most 1",
 }
 #: What the effect-size and interval maps hold (``{level}``: the confidence level in percent).
 EFFECT_SIZE_NOTES = {
@@ -150,10 +200,13 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, *, run: dict[st
             "weights": written["weights"],
             # over cell means (over cell slopes for a slope), as in contrasts.json
             **{k: written[k] for k in CELL_WEIGHT_KEYS if k in written},
-            "df1": h.n_rows,
-            "df2": fit.df_resid,
+            "df1": fit.df_of(name)[0],
+            "df2": fit.df_of(name)[1],
             "tail": h.tail,
         })
+        if fit.model.strata is not None:  # within-participant factors: where and on what it was tested
+            out["stratum"] = fit.model.strata.tests[name].stratum
+            out["stratum_test"] = fit.model.strata.tests[name].as_dict(fit.model.strata)
     else:
         out.update({"df2": fit.df_resid})
     record = getattr(fit, "variance_groups", None)
@@ -166,12 +219,12 @@ def map_sidecar(fit: VoxelFit, name: str | None, statistic: str, *, run: dict[st
     return out
 
 
-def _intent(stat: str, h: Hypothesis, df_resid: int) -> tuple[str, tuple[int, ...]] | None:
+def _intent(stat: str, df: tuple[int, int]) -> tuple[str, tuple[int, ...]] | None:
     """The NIfTI intent of a map: t and F with their degrees of freedom, z and p without; others none."""
     if stat == "t":
-        return ("t test", (df_resid,))
+        return ("t test", (df[1],))
     if stat == "F":
-        return ("f test", (h.n_rows, df_resid))
+        return ("f test", df)
     if stat in ("z", "p"):
         return (_INTENTS[stat], ())
     return None
@@ -185,13 +238,17 @@ def _write_hypothesis(o: OutputFolder, fit: VoxelFit, h: Hypothesis, run: dict[s
     written: list[str] = []
     for stat, values in fit.maps[h.name].items():
         fname = map_path(h.name, stat, fit.grid.kind)
-        write_map(o.file(fname), values, fit.mask, fit.grid, intent=_intent(stat, h, fit.df_resid),
+        write_map(o.file(fname), values, fit.mask, fit.grid, intent=_intent(stat, fit.df_of(h.name)),
                   description=f"groupmodel {h.name} {stat}"[:79])
         extra = dict(fit.records.get(h.name, {})) if stat in PERMUTATION_STATS else {}
         if stat in CORRECTION_NOTES:
             extra["correction"] = _in_words_of(fit.grid, CORRECTION_NOTES[stat])
+        if stat in SPHERICITY_NOTES:
+            extra["sphericity"] = SPHERICITY_NOTES[stat]
         if stat in EFFECT_SIZE_NOTES:
             extra.update(effect_size_note(fit, stat))
+            if fit.model.strata is not None:  # in the stratum: the SD of d, or why an interval is missing
+                extra.update(effect_size_notes(fit.model.strata.tests[h.name]))
         o.write_json(sidecar_path(h.name, stat), map_sidecar(fit, h.name, stat, run=run, **extra))
         written.append(fname)
     for kind, table in fit.tables.get(h.name, {}).items():
@@ -210,6 +267,8 @@ def effect_size_note(fit: VoxelFit, stat: str) -> dict[str, Any]:
     out: dict[str, Any] = {"effect_size": EFFECT_SIZE_NOTES[stat].format(level=number_text(100 * level))}
     if "ci_" in stat:
         out["ci_level"] = level
+    if stat in ("ci_lower", "ci_upper") and getattr(fit, "variance_groups", None) is not None:
+        out["effect_size"] += " (se and df2 of Welch's v: a residual variance per variance group)"
     return out
 
 
@@ -256,6 +315,7 @@ def _write_summary(o: OutputFolder, fit: VoxelFit, run: dict[str, Any]) -> list[
         "hypotheses": summary_records(frame), "columns": summary_columns(fit),
         "provenance": run,
         "findings": [f.as_dict() for f in fit.model.findings], "runtime": fit.runtime,
+        **({"variance_groups": fit.variance_groups} if getattr(fit, "variance_groups", None) is not None else {}),
     })
     return ["summary.tsv", "summary.json"]
 

@@ -6,6 +6,7 @@ without edits here:
     dataset_description.json           the folder as a BIDS derivatives dataset
     outputs.json                       this index: every other file with kind, hypothesis, statistic
     design.tsv/json/png, contrasts.*   the model
+    stratum-<s>_design/transforms/contrasts.tsv   with within-participant factors: each error stratum's model
     summary.tsv/json, results.tsv/json the run as a whole (voxelwise fit / table fit)
     mask.nii.gz, residual_variance.*   maps that belong to no hypothesis
     report.html
@@ -32,6 +33,8 @@ KINDS = ("map", "sidecar", "table", "design", "contrasts", "picture", "summary",
          "results", "other")
 #: Endings of map files (volumes and surface data).
 MAP_ENDINGS = (".nii.gz", ".nii", ".func.gii", ".gii")
+#: The files of an error stratum (within-participant factors) start with this.
+STRATUM_PREFIX = "stratum-"
 _TOP_KINDS = {"design": "design", "contrasts": "contrasts", "summary": "summary", "results": "results",
               "dataset_description": "dataset", "report": "report"}
 
@@ -103,6 +106,8 @@ def classify(path: str) -> IndexEntry:
         return IndexEntry(path, "picture", None, stem)
     if stem in _TOP_KINDS:
         return IndexEntry(path, _TOP_KINDS[stem], None, None)
+    if stem.startswith(STRATUM_PREFIX) and ending == ".tsv":  # an error stratum's design, transforms, contrasts
+        return IndexEntry(path, "contrasts" if stem.endswith("_contrasts") else "design", None, stem)
     if stem == "mask":
         return IndexEntry(path, "mask" if ending in MAP_ENDINGS else "sidecar", None, "mask")
     kind = _kind_of_ending(ending)

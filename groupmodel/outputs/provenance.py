@@ -83,7 +83,10 @@ class RunInputs:
         """The inputs of ``spec`` (a ModelSpec); ``observations`` only where the spec has such a key; with the
         ``sample`` read from the participants table, the SHA-256 of the bytes it was read from."""
         observations = getattr(spec, "observations", None)
-        digest = getattr(getattr(sample, "table", None), "attrs", {}).get("sha256")
+        # with an observations table, sample.table is the join: the participants table as read is kept apart
+        table = getattr(sample, "participants_table", None)
+        table = table if table is not None else getattr(sample, "table", None)
+        digest = getattr(table, "attrs", {}).get("sha256")
         return cls(spec=spec.path, participants=spec.participants, participants_sidecar=spec.participants_sidecar,
                    observations=Path(observations) if isinstance(observations, str | Path) else None,
                    mask=None if mask is None else Path(mask), images=tuple(images), participants_sha256=digest)

@@ -84,9 +84,10 @@ class DaskExecutor(_Base):
             return self.client.submit(_value, value, pure=False)
 
     def first_done(self, futures: list[Any]) -> list[Any]:
-        """Waits until one of ``futures`` is finished; those finished so far."""
+        """Waits until one of ``futures`` is finished; those finished so far, in the order of ``futures`` (so
+        that a task is taken before the tasks submitted after it that finished with it)."""
         done, _ = _distributed().wait(futures, return_when="FIRST_COMPLETED")
-        return list(done)
+        return [f for f in futures if f in done]
 
     def cancel(self, futures: list[Any]) -> None:
         self.client.cancel(futures)

@@ -51,7 +51,8 @@ def test_gallery_is_complete():
         5: {"main_effect_at_reference", "weights_not_sum_zero", "not_a_cell_mean"},
         6: {"rows_swapped", "row_typo", "images_out_of_order", "rows_sorted_by_factor", "rows_sorted_by_two_factors",
             "rows_sorted_one_factor", "rows_block_moved", "rows_shifted_by_one", "rows_and_images_sorted",
-            "rows_sorted_images_in_table_order", "rows_block_reversed"},
+            "rows_sorted_images_in_table_order", "rows_block_reversed",
+            "rows_shifted_no_covariate"},
         7: {"spec_column_space", "spec_name_mismatch"},
         8: {"uncentred_interaction", "confounded_covariate"},
         # the reviewer's gallery: no intercept, extra rows located, wording, partial F tests, rounded codes

@@ -142,3 +142,31 @@ def test_rows_repeated_for_the_participants_without_na(tmp_path: Path) -> None:
     assert _codes(report) == ["repeated_measures"]
     assert "20 rows for 10 participants" in report.findings[0].message
     assert "the right df is 7 (10 participants - rank 3" in report.findings[0].message
+
+
+def test_right_df_is_the_between_stratum_df_of_the_spec_it_proposes(tmp_path: Path) -> None:
+    """The fix the finding proposes ("observations" and "within": true) gives the between-participant effect
+    the df the finding calls right: the spec's fit tests it in the between stratum on that df (the fit's F is
+    checked against scipy.stats.f_oneway on participant averages in tests/reference/test_within_reference.py)."""
+    import json
+
+    import pandas as pd
+
+    from groupmodel.analysis.table_fit import fit_table
+
+    rows = [r for r in _between_rows() for _ in range(2)]
+    design, con = _write(tmp_path, rows, [0, 1, 0])
+    report = audit(design, con, _table(tmp_path))
+    msg = report.findings[0].message
+    assert '"observations": "observations.tsv"' in msg and '"within": true' in msg
+    assert "in the between stratum on each participant's average over the within cells (9 df)" in msg
+    rng = np.random.default_rng(2)
+    obs = pd.DataFrame([{"participant_id": p, "session": s, "y": round(float(rng.normal()), 6)}
+                        for p in IDS for s in ("pre", "post")])
+    obs.to_csv(tmp_path / "observations.tsv", sep="\t", index=False)
+    spec = {"participants": "participants.tsv", "observations": "observations.tsv",
+            "factors": {"training": {}, "session": {"within": True}}, "covariates": {"age": {}},
+            "terms": ["training*session", "age"], "hypotheses": {"training": {"main": "training"}}}
+    (tmp_path / "model.json").write_text(json.dumps(spec))
+    row = fit_table(tmp_path / "model.json", "y").table.set_index("hypothesis").loc["training"]
+    assert row["stratum"] == "between" and row["df2"] == 9

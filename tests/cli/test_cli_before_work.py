@@ -122,3 +122,14 @@ def test_out_may_not_hold_the_working_directory_or_the_inputs(study: Path) -> No
         proc = _run(cwd, "fit", str(study / "model.json"), "--force", "--out", out, "--permutations", "50")
         assert proc.returncode == 2 and words in proc.stderr, proc.stderr
     assert (study / "model.json").exists()
+
+
+@pytest.mark.parametrize("extra", [("--permutations", "100"), ("--tfce",), ("--cluster-threshold", "3.1"),
+                                   ("--checkpoint", "ckpt")])
+def test_voxelwise_options_with_outcome_refused_before_any_work(study: Path, extra: tuple[str, ...]) -> None:
+    """A table fit (``--outcome``) has no permutation inference: asking for it on the command line is a usage
+    error naming the option, not a run that silently reports parametric p."""
+    proc = _run(study, "fit", "model.json", "--outcome", "hippocampus_signal", "--out", "roi", *extra)
+    assert proc.returncode == 2, proc.stdout + proc.stderr
+    assert proc.stderr.count("\n") == 1 and extra[0] in proc.stderr and "--outcome" in proc.stderr, proc.stderr
+    assert not (study / "roi").exists() and not list(study.glob(".roi*"))

@@ -167,3 +167,32 @@ def test_sigterm_during_tfce_workers_ends_like_ctrl_c(tmp_path: Path, to_group: 
     assert not out.exists() and not list(tmp_path.glob(".results*"))
     assert not list(tmp.glob("groupmodel-spill-*"))
     _assert_group_ends(proc.pid)
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads processes from /proc (Linux)")
+def test_workers_end_by_themselves_when_the_main_process_is_killed(tmp_path: Path) -> None:
+    """SIGKILL to the main process alone (no clean-up possible there, and nobody signals the workers): the TFCE
+    worker processes notice that their parent is gone and end, and so does the resource tracker; the lock and the
+    hidden folder left behind are removed by the next run into the same place."""
+    out = tmp_path / "results"
+    proc = _start_tfce_fit(tmp_path, out, _env())
+    workers = [pid for pid, _, cmd in _children(proc.pid) if b"multiprocessing" in cmd]
+    assert len(workers) >= 2, workers
+    try:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=30)
+        deadline = time.monotonic() + 30
+        while _group_alive(proc.pid) and time.monotonic() < deadline:
+            time.sleep(0.2)
+        assert _group_alive(proc.pid) == []  # nobody else ended them: their own watch on the parent did
+    finally:
+        if _group_alive(proc.pid):
+            os.killpg(proc.pid, signal.SIGKILL)
+    assert list(tmp_path.glob(".results.lock"))
+    again = subprocess.run([sys.executable, "-m", "groupmodel.cli", "build", str(EXAMPLE / "model.json"), "--out",
+                            str(out), "--no-pictures"], capture_output=True, text=True, env=_env(), cwd=tmp_path,
+                           timeout=300)
+    assert again.returncode == 0, again.stderr
+    assert "replaced .results.lock" in again.stdout
+    assert not list(tmp_path.glob(".results*"))

@@ -46,3 +46,27 @@ def test_quiet_run_has_no_stage_lines(tmp_path: Path) -> None:
                 "--no-pictures", OMP_NUM_THREADS="1")
     assert proc.returncode == 0 and proc.stderr == "", proc.stderr
     assert "groupmodel: " not in proc.stdout and "wrote " in proc.stdout
+
+
+def test_table_fit_findings_on_stderr_and_in_results_json(tmp_path: Path) -> None:
+    """A table fit (``--outcome``) logs the design's findings like a voxelwise fit: on stderr, and recorded in
+    results.json; with ``--quiet`` too (warnings are never dropped)."""
+    lines = (EXAMPLE / "participants.tsv").read_text().splitlines()
+    years = ["birth_year"] + [str(1990 + i % 7) for i in range(len(lines) - 1)]
+    (tmp_path / "participants.tsv").write_text("".join(f"{a}\t{y}\n" for a, y in zip(lines, years, strict=True)))
+    spec = json.loads((EXAMPLE / "model.json").read_text())
+    spec["covariates"] = {"birth_year": {"center": "none"}}  # uncentred around 1993: a large condition number
+    spec["terms"] = ["training*chronotype", "birth_year"]
+    spec["hypotheses"].pop("age")
+    spec.pop("images")
+    (tmp_path / "model.json").write_text(json.dumps(spec))
+    for quiet in ((), ("--quiet",)):
+        out = tmp_path / f"res{len(quiet)}"
+        proc = _run(tmp_path, "fit", "model.json", "--outcome", "hippocampus_signal", "--out", str(out),
+                    "--no-pictures", *quiet)
+        assert proc.returncode == 0, proc.stderr
+        assert "groupmodel: warning: condition number" in proc.stderr
+        assert "condition number" not in proc.stdout
+        recorded = json.loads((out / "results.json").read_text())
+        assert [f["code"] for f in recorded["findings"]] == ["ill_conditioned"]
+        assert recorded["findings"][0]["severity"] == "warning" and recorded["warnings"] == []

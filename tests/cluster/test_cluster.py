@@ -232,3 +232,30 @@ def test_cli_checkpoint_with_a_scheduler(client, study: Path, tmp_path: Path) ->
     for stat in ("p_perm", "p_fwe", "p_tfce_fwe"):
         here, there = (nib.load(tmp_path / d / "hypotheses" / "age" / f"{stat}.nii.gz") for d in ("here", "there"))
         np.testing.assert_array_equal(np.asanyarray(there.dataobj), np.asanyarray(here.dataobj), err_msg=stat)
+
+
+def test_within_participant_factors_with_a_scheduler_are_one_line_and_exit_2(client, tmp_path: Path,
+                                                                             capsys) -> None:
+    # Within-participant factors are fitted on this machine only: refused with a scheduler, before the images.
+    import nibabel as nib
+
+    (tmp_path / "maps").mkdir()
+    rng = np.random.default_rng(2)
+    ids = [f"sub-{i}" for i in range(6)]
+    pd.DataFrame({"participant_id": ids, "group": ["a", "b"] * 3}).to_csv(tmp_path / "participants.tsv", sep="\t",
+                                                                         index=False)
+    rows = [{"participant_id": p, "session": s} for p in ids for s in ("s0", "s1")]
+    pd.DataFrame(rows).to_csv(tmp_path / "observations.tsv", sep="\t", index=False)
+    for r in rows:
+        nib.save(nib.Nifti1Image(rng.normal(size=(2, 2, 2)).astype(np.float32), np.eye(4)),
+                 tmp_path / "maps" / f"{r['participant_id']}_{r['session']}.nii.gz")
+    spec = {"participants": "participants.tsv", "observations": "observations.tsv",
+            "images": "maps/{participant_id}_{session}.nii.gz",
+            "factors": {"group": {}, "session": {"within": True}}, "terms": ["group*session"],
+            "hypotheses": {"session": {"main": "session"}}}
+    (tmp_path / "model.json").write_text(json.dumps(spec))
+    code = main(["fit", str(tmp_path / "model.json"), "--out", str(tmp_path / "out"),
+                 "--scheduler", client.scheduler.address])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "within-participant" in err[0] and "--scheduler" in err[0], err
+    assert not (tmp_path / "out").exists()

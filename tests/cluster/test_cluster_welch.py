@@ -15,6 +15,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 distributed = pytest.importorskip("distributed", reason='Dask is an optional extra: pip install -e ".[cluster]"')
@@ -65,6 +66,9 @@ def _assert_same(a, b, label: str) -> None:
             else:
                 np.testing.assert_allclose(b.maps[name][stat], values, rtol=STAT_RTOL, atol=0, err_msg=where)
     assert a.warnings == b.warnings, label
+    # the mean image and the per-participant residual sums (added in chunk order), from the same chunks
+    np.testing.assert_array_equal(b.mean_input, a.mean_input, err_msg=label)
+    pd.testing.assert_frame_equal(b.participant_residuals, a.participant_residuals, check_exact=True)
 
 
 def test_welch_permutations_on_the_cluster_equal_the_local_run(client, study: Path, local_fit) -> None:

@@ -122,3 +122,22 @@ def test_v_and_g_do_not_depend_on_the_coding(tmp_path: Path) -> None:
         np.testing.assert_allclose(fits[0][col].to_numpy(float), fits[1][col].to_numpy(float), rtol=1e-9,
                                    equal_nan=True)
     assert np.all(fits[0]["df2"] % 1 != 0)  # approximate df: not whole numbers
+
+
+def test_welch_interval_matches_scipy_confidence_interval(tmp_path: Path) -> None:
+    """With variance groups a t hypothesis keeps its interval: L b -/+ t(1 - alpha/2; Welch df) x Welch se, the
+    interval of scipy's Welch test (``ttest_ind(equal_var=False).confidence_interval``); the standardized
+    effects (one residual SD, a pooled F) stay n/a."""
+    fit = fit_table(_study(tmp_path), "score", ci_level=0.9)
+    s = _samples(tmp_path)
+    ref = stats.ttest_ind(s["patient"], s["control"], equal_var=False).confidence_interval(0.9)
+    row = fit.table.set_index("hypothesis")
+    np.testing.assert_allclose(row.loc["patient_vs_control", ["ci_lower", "ci_upper"]].to_numpy(float),
+                               [ref.low, ref.high], rtol=1e-9)
+    one_sided = row.loc["patient_gt_control"]  # two-sided also for a one-sided test, as without variance groups
+    np.testing.assert_allclose([one_sided.ci_lower, one_sided.ci_upper], [ref.low, ref.high], rtol=1e-9)
+    assert np.isnan(row.loc["group", "ci_lower"]) and np.isnan(row.loc["patient_vs_control", "cohens_d"])
+    assert np.isnan(row.loc["patient_vs_control", "partial_eta_squared"])
+    write_table_fit(fit, tmp_path / "out", pictures=False)
+    written = pd.read_csv(tmp_path / "out" / "results.tsv", sep="\t").set_index("hypothesis")
+    np.testing.assert_allclose(written.loc["patient_vs_control", "ci_upper"], ref.high, rtol=1e-6)

@@ -80,6 +80,63 @@ def test_maps_match_scipy_at_every_voxel(tmp_path: Path) -> None:
     assert any(s.get("statistic") == "df2" for s in sides)
 
 
+def test_interval_maps_match_scipy_at_every_voxel(tmp_path: Path) -> None:
+    """The interval of the effect with variance groups: scipy's Welch interval
+    (``ttest_ind(equal_var=False).confidence_interval``) at every voxel, at the spec's ``ci_level``."""
+    spec, table, data = _study(tmp_path, HYPOTHESES)
+    doc = json.loads(spec.read_text())
+    doc["inference"] = {"ci_level": 0.9}
+    spec.write_text(json.dumps(doc))
+    fit = fit_images(spec, progress=False, chunk_voxels=7)
+    g = table.group.to_numpy()
+    ref = stats.ttest_ind(data[g == "patient"], data[g == "control"], equal_var=False).confidence_interval(0.9)
+    m = fit.maps["patient_vs_control"]
+    np.testing.assert_allclose(m["ci_lower"], ref.low, rtol=1e-8)
+    np.testing.assert_allclose(m["ci_upper"], ref.high, rtol=1e-8)
+    assert "ci_lower" not in fit.maps["group"] and "cohens_d" not in m
+    out = tmp_path / "out"
+    write_voxel_fit(fit, out, pictures=False)
+    side = json.loads((out / "hypotheses" / "patient_vs_control" / "ci_lower.json").read_text())
+    assert side["ci_level"] == 0.9 and "Welch" in side["effect_size"]
+    assert nib.load(out / "hypotheses" / "patient_vs_control" / "ci_upper.nii.gz").shape == SHAPE
+
+
+def test_mean_image_and_participant_check_with_variance_groups(tmp_path: Path) -> None:
+    """A fit with variance groups writes the report's background (the mean input image) and the per-participant
+    check like a pooled fit; each participant's robust z is taken within its own variance group, so a group that
+    is simply more variable is not called unusual, while one bad image is.  References: the mean absolute residual
+    from ``scipy.linalg.lstsq`` on the images read back with nibabel; the robust z from ``np.median`` and
+    ``scipy.stats.median_abs_deviation(scale="normal")`` (1.4826 x MAD) within each group."""
+    from scipy import linalg
+
+    spec, table, data = _study(tmp_path, HYPOTHESES)
+    bad = int(np.flatnonzero(table.group.to_numpy() == "patient")[3])
+    path = tmp_path / "maps" / f"{table.participant_id[bad]}.nii.gz"
+    data[bad] = 10 + 12 * (data[bad] - 10)  # one patient's image badly scaled
+    nib.save(nib.Nifti1Image(data[bad].reshape(SHAPE), np.eye(4)), path)
+    fit = fit_images(spec, progress=False, chunk_voxels=7)
+    out = tmp_path / "out"
+    write_voxel_fit(fit, out, pictures=False)
+    np.testing.assert_allclose(np.asarray(nib.load(out / "mean_input.nii.gz").dataobj, dtype=float).ravel(),
+                               data.mean(axis=0), rtol=1e-6)  # float32 map
+    design = pd.read_csv(out / "design.tsv", sep="\t")
+    x = design.drop(columns="participant_id").to_numpy(float)
+    b, *_ = linalg.lstsq(x, data)
+    mean_abs = np.abs(data - x @ b).mean(axis=1)
+    got = pd.read_csv(out / "participants_residuals.tsv", sep="\t")
+    np.testing.assert_allclose(got["mean_abs_residual"], mean_abs, rtol=1e-9)
+    z = np.empty_like(mean_abs)
+    for g in SIZES:
+        rows = table.group.to_numpy() == g
+        z[rows] = (mean_abs[rows] - np.median(mean_abs[rows])) / stats.median_abs_deviation(mean_abs[rows],
+                                                                                              scale="normal")
+    np.testing.assert_allclose(got["robust_z"], z, rtol=1e-5)  # groupmodel scales by 1.4826, scipy by 1/Phi^-1(3/4)
+    assert list(got.loc[got.unusual, "participant_id"]) == [table.participant_id[bad]]
+    assert json.loads((out / "summary.json").read_text())["variance_groups"]["factor"] == "group"
+    page = (out / "report.html").read_text()
+    assert "robust SDs above the median of its variance group (group)" in page and "mean of the input images" in page
+
+
 def _reference_p(data: np.ndarray, groups: np.ndarray, perm: np.ndarray | None, flips: np.ndarray | None
                  ) -> tuple[np.ndarray, np.ndarray]:
     """Uncorrected and FWE p of |v| (patient vs control) recomputed with scipy over the given rearrangements."""

@@ -14,13 +14,25 @@ from .data import FolderData
 from .page import esc, figure, num, paragraph, table
 from .picture import Picture
 from .sensitivity import ALPHA, POWER, sensitivity
+from .strata import (
+    observations_html,
+    strata_html,
+    strata_of,
+    stratum_cell,
+    stratum_sensitivity,
+    table_fit_words,
+)
 
 Section = tuple[str, str, str]
 
 
 def study_section(d: FolderData) -> Section:
     ids = d.design_frame["participant_id"].astype(str).tolist()
-    parts = [paragraph(f"{len(ids)} observations included (participants table: {d.design.get('participants')}; "
+    people = f"{len(ids)} observations"
+    if strata_of(d) is not None:  # several images per participant: each participant named once
+        ids = list(dict.fromkeys(ids))
+        people = f"{len(d.design_frame)} observations (images) of {len(ids)} participants"
+    parts = [paragraph(f"{people} included (participants table: {d.design.get('participants')}; "
                        f"spec: {d.design.get('spec')})."),
              f'<p class="note">Included: {esc(", ".join(ids))}</p>']
     excluded = d.design.get("excluded", [])
@@ -32,6 +44,8 @@ def study_section(d: FolderData) -> Section:
     else:
         parts.append(paragraph("No participant was left out."))
     parts.append(_cells_html(d))
+    if strata_of(d) is not None:  # several images per participant
+        parts.append(observations_html(d))
     return ("study", "The study", "".join(parts))
 
 
@@ -94,10 +108,14 @@ def design_section(d: FolderData, pictures: bool) -> Section:
             figure(pics[0], "The design: one row per observation, one column per regressor.", "design matrix"),
             figure(pics[1], "The contrasts over the same columns.", "contrast weights"), "</div>"]
     des = d.design
+    strata = strata_of(d) is not None
     body.append(table(["property", "value"], [
         ("observations x columns", f"{x.shape[0]} x {x.shape[1]}"), ("rank", des.get("rank")),
         ("condition number (columns scaled to unit length)", des.get("condition_number")),
-        ("residual degrees of freedom", x.shape[0] - int(des.get("rank") or 0))], ident="design-properties"))
+        ("residual degrees of freedom", "per hypothesis, in its error stratum (below)" if strata
+         else x.shape[0] - int(des.get("rank") or 0))], ident="design-properties"))
+    if strata:
+        body.append(strata_html(d))
     vif = des.get("variance_inflation")
     if vif:
         body.append("<h3>Variance inflation</h3>" + table(["column", "VIF"], list(vif.items()), ident="vif"))
@@ -174,7 +192,7 @@ def hypotheses_section(d: FolderData) -> Section:
         row = [esc(name), esc(h["test"]), esc(h.get("tail", "")), esc(h.get("statement", "")),
                _cell_weights_html(h), "yes" if h.get("estimable", True) else '<span class="finding-error">no</span>']
         if strata:
-            row.append(esc(h.get("stratum") or ""))
+            row.append(stratum_cell(h))
         rows.append(row)
     return ("hypotheses", "The hypotheses", table(headers, rows, ident="hypotheses-table", raw=True))
 
@@ -199,14 +217,23 @@ def sensitivity_section(d: FolderData, sigma: float | None, tests: int, sigma_wo
     """The standard error factor and the smallest effect detectable with 80% power, per hypothesis."""
     x = d.matrix
     bonf = ALPHA / max(tests, 1)
+    strata = strata_of(d) is not None
+    if strata:  # each hypothesis in its stratum, in units of that stratum's residual SD
+        sigma_words = "residual SDs of the data of the hypothesis's error stratum"
     rows = []
     for name, h in d.hypotheses.items():
         if not h.get("estimable", True):
             continue
         w = weight_matrix(h, d.contrasts["columns"])
         tail = h.get("tail", "two-sided")
-        a = sensitivity(x, w, h["test"], tail, ALPHA, sigma)
-        b = sensitivity(x, w, h["test"], tail, bonf, sigma)
+        if strata:
+            a, b = (stratum_sensitivity(d, name, h, level) for level in (ALPHA, bonf))
+            if a is None or b is None:
+                continue
+            h = {**h, "test": "t" if a.smallest_effect is not None else "F"}
+        else:
+            a = sensitivity(x, w, h["test"], tail, ALPHA, sigma)
+            b = sensitivity(x, w, h["test"], tail, bonf, sigma)
         factor = "; ".join(num(f) for f in a.se_factor)
         if h["test"] == "t":
             rows.append((name, "t", factor, a.smallest_effect, b.smallest_effect))
@@ -228,8 +255,10 @@ def table_fit_section(d: FolderData, pictures: bool) -> Section:
     side = d.results_sidecar or {}
     outcome = side.get("outcome", "outcome")
     sd = float(np.sqrt(side["residual_variance"])) if "residual_variance" in side else float("nan")
-    body = [paragraph(f"Outcome {outcome}: {side.get('n_observations')} observations, {side.get('df_resid')} "
-                      f"residual degrees of freedom, residual SD {num(sd)}."),
+    words = (table_fit_words(d, outcome) if strata_of(d) is not None else
+             f"Outcome {outcome}: {side.get('n_observations')} observations, {side.get('df_resid')} "
+             f"residual degrees of freedom, residual SD {num(sd)}.")
+    body = [paragraph(words),
             table(list(d.results.columns), d.results.itertuples(index=False, name=None), ident="results")]
     if d.cell_means is not None:
         body.append("<h3>Estimated cell means</h3>")

@@ -15,6 +15,7 @@ from ...errors import InputError
 from .data import FolderData, load_map
 from .page import esc, figure, num, paragraph, table
 from .picture import Picture
+from .strata import sphericity_html, strata_of, stratum_paragraph
 from .svg import p_histogram, residual_dots
 
 #: Uncorrected level used when no corrected map exists.
@@ -69,8 +70,11 @@ def voxel_sections(d: FolderData, pictures: bool, background: Path | None) -> li
 def _overview(d: FolderData, grid: Grid) -> str:
     s = d.summary or {}
     mask = s.get("mask", {})
-    parts = [paragraph(f"{s.get('n_observations')} observations, {s.get('df_resid')} residual degrees of "
-                       f"freedom, {mask.get('voxels_in_mask', int(grid.mask.sum()))} {grid.elements} in the mask.")]
+    dfs = (f"{s.get('df_resid')} residual degrees of freedom" if strata_of(d) is None else
+           f"{(strata_of(d) or {}).get('participants')} participants, each hypothesis in its error stratum "
+           "(its df in the table below)")
+    parts = [paragraph(f"{s.get('n_observations')} observations, {dfs}, "
+                       f"{mask.get('voxels_in_mask', int(grid.mask.sum()))} {grid.elements} in the mask.")]
     inf = s.get("inference")
     if inf and inf.get("permutations"):
         parts.append(paragraph(f"Permutation inference: {inf.get('permutations')} rearrangements, seed "
@@ -107,10 +111,11 @@ def _threshold(d: FolderData, name: str, grid: Grid) -> tuple[np.ndarray | None,
 def _hypothesis(d: FolderData, grid: Grid, name: str, pictures: bool) -> str:
     h = d.hypotheses[name]
     locs = d.locations
-    parts = [paragraph(f"{h['test']} test ({h.get('tail')}): {h.get('statement', '')}")]
+    parts = [paragraph(f"{h['test']} test ({h.get('tail')}): {h.get('statement', '')}"), stratum_paragraph(d, name),
+             sphericity_html(d, name, grid.mask)]
     z_path, p_path = locs.map(name, "z"), locs.map(name, "p")
     if z_path is None or p_path is None:
-        return parts[0] + paragraph("No z or p map in this folder.", "note")
+        return "".join(parts) + paragraph("No z or p map in this folder.", "note")
     z = _masked(load_map(z_path), grid)
     p = _masked(load_map(p_path), grid)
     shown, words = _threshold(d, name, grid)
@@ -199,7 +204,9 @@ def _residuals(d: FolderData, grid: Grid, pictures: bool) -> str:
     path = d.locations.map(None, "residual_variance")
     if path is not None:
         sd = np.sqrt(np.clip(_masked(load_map(path), grid), 0, None))
-        parts.append(paragraph(f"Residual SD over the mask: median {num(float(np.median(sd)))}, "
+        of = (" (of the participants' averages over the within cells: the between stratum)"
+              if strata_of(d) is not None else "")
+        parts.append(paragraph(f"Residual SD{of} over the mask: median {num(float(np.median(sd)))}, "
                                f"2nd to 98th percentile {num(float(np.percentile(sd, 2)))} to "
                                f"{num(float(np.percentile(sd, 98)))}."))
         if not grid.surface:
@@ -223,9 +230,11 @@ def _participants(d: FolderData, pictures: bool) -> str:
         return paragraph("No per-participant check in this folder (participants_residuals.tsv).", "note")
     unusual = r["unusual"].astype(str).str.lower().isin(["true", "1", "yes"]).to_numpy()
     named = r.loc[unusual, "participant_id"].astype(str).tolist()
+    groups = (d.summary or {}).get("variance_groups") or {}
+    median = f"the median of its variance group ({groups['factor']})" if groups.get("factor") else "the median"
     words = (f"Unusual: {', '.join(named)} (mean |residual| more than {num(UNUSUAL_Z)} robust SDs above "
-             "the median): look at these images before reading the results." if named
-             else f"No participant stands out (none more than {num(UNUSUAL_Z)} robust SDs above the median).")
+             f"{median}): look at these images before reading the results." if named
+             else f"No participant stands out (none more than {num(UNUSUAL_Z)} robust SDs above {median}).")
     ids = r["participant_id"].astype(str).tolist()
     pic = (residual_dots(ids, r["mean_abs_residual"].to_numpy(float), unusual, "per-participant residuals")
            if pictures else None)

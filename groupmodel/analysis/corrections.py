@@ -168,6 +168,7 @@ def permutation_inference(
     progress: Callable[[str, int, int], None] | None = None,
     maps_bytes: int | None = None,
     checkpoint: Any = None,
+    cluster: Any = None,
 ) -> dict[str, HypothesisInference]:
     """Run Freedman-Lane permutation inference for every hypothesis.
 
@@ -187,6 +188,8 @@ def permutation_inference(
         rearrangements (default: ``cache_bytes``); sets the batch size.  Results do not depend on it.
     checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
         Save (and resume from) the counts and maxima of each hypothesis's finished batches.
+    cluster : groupmodel.analysis.cluster_fit.ClusterSession, optional
+        Run the permutations on this Dask cluster; the same results.
     """
     from ..inference.driver import run_permutations
     from ..inference.settings import BATCH_SIZE, ContrastTest, Execution, MapSettings, Rearrangements, whole_map_batch
@@ -202,6 +205,8 @@ def permutation_inference(
     # One set of worker processes for every hypothesis: each costs about a second to start.
     whole_maps = options.tfce or options.cluster_threshold is not None
     jobs = options.jobs if options.jobs is not None else available_cores()
+    if cluster is not None:
+        jobs = 1  # the whole-map tasks run on the cluster, each in one worker
     n_elements = int(data.data.shape[1])
     batch = whole_map_batch(n_elements, maps_bytes or cache_bytes, jobs) if whole_maps else BATCH_SIZE
     rearrangements = Rearrangements(
@@ -225,10 +230,23 @@ def permutation_inference(
             chosen = replace(rearrangements, method=hypothesis_method(h, options.method))
             saved = None if checkpoint is None else checkpoint.contrast(
                 h.name, {"permutations": options.permutations, "seed": options.seed, "method": chosen.method})
-            res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report,
-                                   checkpoint=saved)
+            if cluster is not None:
+                res = _on_cluster(cluster, test, chosen, map_settings, execution, report, saved)
+            else:
+                res = run_permutations(test, data.columns(), chosen, map_settings, execution, progress=report,
+                                       checkpoint=saved)
             out[h.name] = _hypothesis_inference(res, h, options, tables_adjacency, ijk, data.grid)
     return out
+
+
+def _on_cluster(cluster: Any, test: Any, chosen: Any, map_settings: Any, execution: Any,
+                report: Callable[[int, int], None], checkpoint: Any = None) -> Any:
+    """One contrast's permutations on the cluster (:func:`groupmodel.inference.distributed.run_on_cluster`)."""
+    from ..inference.distributed import ClusterWork, run_on_cluster
+
+    work = ClusterWork(cache_bytes=cluster.cache_bytes)
+    return run_on_cluster(cluster.executor, cluster.reader, test, chosen, map_settings, execution, work, report,
+                          checkpoint)
 
 
 def _surface_tables_adjacency(grid: Any, mask: np.ndarray, options: InferenceOptions) -> Any:

@@ -8,7 +8,9 @@ a voxelwise fit warns when it holds in more than :data:`VOXEL_SHARE_WARN` of the
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import partial
 
 import numpy as np
 
@@ -37,6 +39,17 @@ class _Factor:
     groups: tuple[str, ...]
     labels: np.ndarray
     rho: np.ndarray
+
+
+def chunk_counts(u: np.ndarray, centred: bool, factors: tuple[_Factor, ...],
+                 y: np.ndarray) -> dict[str, tuple[int, int]]:
+    """Factor -> (voxels whose groups' variances differ, voxels tested) in one chunk ``y`` (n, v)."""
+    resid = residuals_of(u, y, centred)
+    out = {}
+    for f in factors:
+        variances, p = group_variances(resid, f.labels, f.rho)
+        out[f.name] = (int(np.count_nonzero(unequal(variances, p))), int(np.count_nonzero(np.isfinite(p))))
+    return out
 
 
 @dataclass
@@ -69,6 +82,16 @@ class UnequalVarianceTally:
             if np.all(rho >= GROUP_DF_MIN) and np.all(sizes >= 2):
                 out.append(_Factor(name, groups, labels, rho))
         return out
+
+    def counter(self) -> Callable[[np.ndarray], dict[str, tuple[int, int]]]:
+        """The counting of one chunk as a pure function (pickles, for a cluster worker): :func:`chunk_counts`."""
+        return partial(chunk_counts, self.u, self.centred, tuple(self._factors))
+
+    def add_counts(self, counts: dict[str, tuple[int, int]]) -> None:
+        """Add one chunk's :func:`chunk_counts` (integers: in any order)."""
+        for name, (hit, tested) in counts.items():
+            self.flagged[name] = self.flagged.get(name, 0) + hit
+            self.tested[name] = self.tested.get(name, 0) + tested
 
     def add(self, y: np.ndarray) -> None:
         """Count one chunk of data (n, v)."""

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..engine.ols import Prepared, fit_chunk, prepare
+from ..engine.ols import Prepared, prepare
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
@@ -22,6 +22,7 @@ from ..outputs.provenance import RunClock, RunInputs
 from ..runtime.log import StageLog
 from ..runtime.memory import DATA_SHARE, MemoryBudget
 from ..runtime.progress import progress_bar
+from .chunk_fit import ChunkFit, fitted_parts
 from .corrections import (
     HypothesisInference,
     InferenceOptions,
@@ -182,6 +183,7 @@ def fit_images(
     inference: InferenceOptions | None = None,
     log: StageLog | None = None,
     checkpoint: Any = None,
+    client: Any = None,
 ) -> VoxelFit:
     """Fit every hypothesis of ``spec`` at every voxel of its images.
 
@@ -212,6 +214,10 @@ def fit_images(
         Where to write a line per stage and progress lines for logs (default: nothing).
     checkpoint : groupmodel.inference.checkpoint.CheckpointFolder, optional
         Keep the counts and maxima of finished permutation batches there, and resume from them.
+    client : dask.distributed.Client, optional
+        Run the fit and the permutations on this Dask cluster (:mod:`groupmodel.analysis.cluster_fit`):
+        its workers read the images themselves; ``memory_bytes`` is then also each worker's budget.  The
+        results are those of the local run.
     """
     from ..images import chunk_size_for
 
@@ -227,6 +233,9 @@ def fit_images(
     require_fittable(model)
     if model.strata is not None:
         check_strata_inference(model, inference)
+        if client is not None:
+            raise InputError(f"{spec.name}: within-participant factors are fitted on this machine only, not on a "
+                             "Dask cluster; leave out --scheduler (client)")
     prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
     welch = welch_setup(model, prepared) if prepared is not None else None
     if welch is not None:
@@ -243,6 +252,11 @@ def fit_images(
             n_maps = sum(len(_map_names(h)) + extra for h in model.hypotheses.values()) + 1
             chunk_voxels = chunk_size_for(model.design.n_observations, len(model.hypotheses),
                                           budget.chunk_work_bytes(n_maps, n_vox))
+        session = None
+        if client is not None:
+            from .cluster_fit import cluster_session
+
+            session = cluster_session(client, source, data, budget.permutation_bytes)
         tally = UnequalVarianceTally(model, prepared.u, prepared.centred) if prepared is not None else None
         degrees: dict[str, tuple[int, int]] = {}
         with log.stage("fitting"):
@@ -252,10 +266,10 @@ def fit_images(
                 degrees, df_resid = strata_degrees(model), average_df(model)  # residual variance: averages'
             elif welch is None:
                 maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
-                                                           ci_level=inference.ci_level, on_chunk=tally.add)
+                                                           ci_level=inference.ci_level, tally=tally, session=session)
                 mean_input, df_resid = extras[0], prepared.df_resid
             else:  # Welch's v and G: intervals only (no effect sizes)
-                maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally.add,
+                maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally, session,
                                                      ci_level=inference.ci_level)
                 mean_input, df_resid = extras[0], prepared.df_resid
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
@@ -267,7 +281,7 @@ def fit_images(
         with log.stage("permutations") if inference.active else nullcontext():
             permuted = _permutation_pass(model, data, replace(inference, threads=plan.threads, jobs=plan.jobs),
                                          budget, chunk_voxels, progress, log, checkpoint,
-                                         welch)
+                                         welch, session)
         warnings += inference_notes(data.grid, inference) + ([plan.warning] if plan.warning else [])
         if data.spilled:
             warnings.append(spill_warning(model.design.n_observations * n_vox * 4, budget, -(-n_vox // chunk_voxels),
@@ -289,7 +303,7 @@ def fit_images(
                         clock=clock, mean_input=mean_input,
                         participant_residuals=None if extras is None else residual_table(
                             model.design.participant_ids, extras[1], None if welch is None else welch.groups.labels),
-                        runtime=plan.as_dict(),
+                        runtime={**plan.as_dict(), **({} if session is None else session.record())},
                         variance_groups=welch_record(welch) if welch is not None else None, degrees=degrees)
     finally:
         data.close()
@@ -320,23 +334,27 @@ def _map_names(h: Any) -> tuple[str, ...]:
 
 
 def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool, *,
-                     ci_level: float, on_chunk: Any = None
+                     ci_level: float, tally: UnequalVarianceTally, session: Any = None
                      ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """Effect, SE, t or F, z, p, -log10 p, effect-size and interval maps of every hypothesis, and the residual
-    variance, chunk by chunk (intervals at ``ci_level``; the corrected p maps are allocated here and filled
-    by the corrections); also the mean input image and the per-participant residual sums."""
+    variance, chunk by chunk, here or on the cluster of ``session`` (intervals at ``ci_level``; the corrected
+    p maps are allocated here and filled by the corrections); also the mean input image and the
+    per-participant residual sums (added in chunk order), and the chunks counted by ``tally``."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in _map_names(h)} for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
     mean_input = np.empty(n_vox)
     check = ParticipantCheck.empty(model.design.n_observations)
+    sums: dict[int, tuple[np.ndarray, int]] = {}
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
-        for cols, y in data.chunks(chunk_voxels):
-            res = fit_chunk(prepared, y, beta=True)
+        work = ChunkFit(prepared, model.design.matrix, tally.counter())
+        for cols, part in fitted_parts(work, data, chunk_voxels, session):
+            res = part.fit
             resid_var[cols] = res.residual_variance
-            mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
-            check.add(model.design.matrix, y, res.beta)
+            mean_input[cols] = part.mean
+            sums[cols.start] = (part.sums, cols.stop - cols.start)
+            tally.add_counts(part.counts)
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
@@ -350,11 +368,11 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
                 m["mlog10p"][cols] = r.mlog10p
                 for k, values in effect_sizes(h, r, res.residual_variance, ci_level).items():
                     m[k][cols] = values
-            if on_chunk is not None:
-                on_chunk(y)
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
+    for s in sorted(sums):  # in chunk order: the same sums, bit for bit, in whatever order the chunks came
+        check.add_sums(*sums[s])
     return maps, resid_var, (mean_input, check)
 
 
@@ -381,30 +399,38 @@ def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,
-                      chunk_voxels: int, progress: bool, log: StageLog,
-                      checkpoint: Any = None, welch: WelchSetup | None = None) -> dict[str, HypothesisInference]:
-    """Permutation inference of every hypothesis (nothing when no permutations are asked for)."""
+                      chunk_voxels: int, progress: bool, log: StageLog, checkpoint: Any = None,
+                      welch: WelchSetup | None = None, session: Any = None) -> dict[str, HypothesisInference]:
+    """Permutation inference of every hypothesis (nothing when no permutations are asked for), here or on
+    the cluster of ``session`` (progress in rearrangements here, in tasks there)."""
     if not options.active:
         return {}
-    bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
-                       enabled=progress)
+    if session is None:
+        bar = progress_bar(options.permutations * len(model.hypotheses), "permutations", unit="perm",
+                           enabled=progress)
+    else:
+        bar = progress_bar(0, "permutation tasks", unit="task", enabled=progress)
     done_before: dict[str, int] = {}
-    total = options.permutations * len(model.hypotheses)
+    totals = {h: options.permutations for h in model.hypotheses}
 
-    def report(name: str, done: int, _total: int) -> None:
+    def report(name: str, done: int, total: int) -> None:
+        if session is not None and name not in done_before:
+            bar.grow(total)  # a contrast's task count is known when it starts
+            totals[name] = total
         bar.update(done - done_before.get(name, 0))
         done_before[name] = done
-        log.progress("permutations", sum(done_before.values()), total, "rearrangements")
+        log.progress("permutations" if session is None else "permutation tasks", sum(done_before.values()),
+                     sum(totals.values()), "rearrangements" if session is None else "tasks")
 
     try:
         if model.strata is not None:  # within-participant factors: rearranged in each hypothesis's stratum
             return strata_permutation_inference(model, data, options, budget.permutation_bytes, chunk_voxels,
                                                 progress=report, checkpoint=checkpoint)
         if welch is not None:
-            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report)
+            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report, cluster=session)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
-                                     progress=report, checkpoint=checkpoint)
+                                     progress=report, checkpoint=checkpoint, cluster=session)
     finally:
         bar.close()
 

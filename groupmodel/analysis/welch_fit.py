@@ -19,6 +19,7 @@ from ..engine.welch import WelchChunk, WelchPrepared, fit_chunk_welch, prepare_w
 from ..model.assembly import Model
 from ..model.variance_groups import VarianceGroups, variance_groups_of
 from ..runtime.progress import progress_bar
+from .chunk_fit import ChunkFit, fitted_parts
 
 __all__ = ["STATISTICS", "WELCH_F_MAPS", "WELCH_T_MAPS", "WelchSetup", "welch_maps", "welch_record",
            "welch_results_table", "welch_setup"]
@@ -94,12 +95,13 @@ def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], vox
 
 
 def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, progress: bool,
-               on_chunk: Any = None, ci_level: float = DEFAULT_CI_LEVEL
+               tally: Any, session: Any = None, ci_level: float = DEFAULT_CI_LEVEL
                ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """The maps of every hypothesis (:data:`WELCH_T_MAPS`, :data:`WELCH_F_MAPS`; the corrected p maps allocated;
-    intervals at ``ci_level``) and the pooled residual variance, chunk by chunk; ``on_chunk(y)`` sees every
-    chunk's data too.  Also the mean input image and the per-participant residual sums (of the OLS fit, whose
-    estimates v and G share), as a pooled fit gives them."""
+    intervals at ``ci_level``) and the pooled residual variance, chunk by chunk, here or on the cluster of
+    ``session``; ``tally`` (:class:`~.unequal_variances.UnequalVarianceTally`) counts every chunk too.  Also the
+    mean input image and the per-participant residual sums (of the OLS fit, whose estimates v and G share; added
+    in chunk order), as a pooled fit gives them."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in (WELCH_T_MAPS if h.test == "t" else WELCH_F_MAPS)}
             for h in model.hypotheses.values()}
@@ -107,14 +109,16 @@ def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, pr
     mean_input = np.empty(n_vox)
     design = model.design.matrix
     check = ParticipantCheck.empty(model.design.n_observations)
+    sums: dict[int, tuple[np.ndarray, int]] = {}
     solve = np.linalg.pinv(design)  # the OLS (minimum-norm) estimates: the same fitted values for any solution
     bar = progress_bar(n_vox, "fitting", enabled=progress)
+    work = ChunkFit(None, design, tally.counter(), welch=setup.prepared, solve=solve)
     try:
-        for cols, y in data.chunks(chunk_voxels):
-            res = fit_chunk_welch(setup.prepared, y)
+        for cols, part in fitted_parts(work, data, chunk_voxels, session):
+            res = part.fit
             resid_var[cols] = res.residual_variance
-            mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
-            check.add(design, y, solve @ np.asarray(y, dtype=np.float64))
+            mean_input[cols] = part.mean
+            sums[cols.start] = (part.sums, cols.stop - cols.start)
             for h in model.hypotheses.values():
                 r, m = res[h.name], maps[h.name]
                 if h.test == "t":
@@ -125,11 +129,12 @@ def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, pr
                 m[r.statistic_name][cols] = r.statistic
                 for key in ("df2", "z", "p", "mlog10p"):
                     m[key][cols] = getattr(r, key)
-            if on_chunk is not None:
-                on_chunk(y)
+            tally.add_counts(part.counts)
             bar.update(cols.stop - cols.start)
     finally:
         bar.close()
+    for s in sorted(sums):  # in chunk order: the same sums, bit for bit, in whatever order the chunks came
+        check.add_sums(*sums[s])
     return maps, resid_var, (mean_input, check)
 
 

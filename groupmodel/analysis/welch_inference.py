@@ -30,6 +30,7 @@ from ..inference.freedman_lane import moves_with_mean, partition
 from ..inference.rearrangements import permutation_set
 from ..inference.results import PermutationResult, fwe_p
 from ..inference.settings import BATCH_SIZE
+from ..inference.welch_distributed import WelchTotals
 from ..inference.welch_nulls import WelchNullPlan, oriented_welch, welch_batch
 from ..model.options import InferenceOptions
 from .corrections import HypothesisInference, _hypothesis_inference, block_labels, hypothesis_method
@@ -88,9 +89,10 @@ def welch_method(h: Any, setting: str, interest_moves: bool, mean_moves: bool) -
 
 def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, options: InferenceOptions,
                                 chunk_voxels: int,
-                                progress: Callable[[str, int, int], None] | None = None
+                                progress: Callable[[str, int, int], None] | None = None, cluster: Any = None
                                 ) -> dict[str, HypothesisInference]:
-    """Max-statistic permutation inference with v / G for every hypothesis (see the module notes)."""
+    """Max-statistic permutation inference with v / G for every hypothesis (see the module notes); on the
+    Dask cluster of ``cluster`` (:class:`~.cluster_fit.ClusterSession`) when given, with the same results."""
     x = model.design.matrix
     user_blocks = block_labels(model, options.blocks) if options.blocks else None
     blocks = _combined_blocks(setup.groups.labels, user_blocks)
@@ -109,7 +111,11 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
             if progress is not None:
                 progress(_name, done, total)
 
-        res = _run(plan, pset, data, chunk_voxels, h, report)
+        if cluster is None:
+            totals = _run(plan, pset, data, chunk_voxels, report)
+        else:
+            totals = _on_cluster(cluster, plan, pset, chunk_voxels, report)
+        res = _result(plan, pset, h, totals)
         inference = _hypothesis_inference(res, h, options, None, ijk, data.grid)
         inference.record.update({
             "permutation_statistic": "v" if h.test == "t" else "G",
@@ -122,14 +128,13 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
     return out
 
 
-def _run(plan: WelchNullPlan, pset: Any, data: Any, chunk_voxels: int, h: Any,
-         progress: Callable[[int, int], None]) -> PermutationResult:
+def _run(plan: WelchNullPlan, pset: Any, data: Any, chunk_voxels: int,
+         progress: Callable[[int, int], None]) -> WelchTotals:
     """Counts and maxima over chunks (outer) and batches (inner); combined by sum and max."""
     n_vox = data.n_in_mask
     J = pset.size
-    stat = np.full(n_vox, np.nan)
-    counts = np.zeros(n_vox, dtype=np.int64)
-    maxima = np.full(J, -np.inf)
+    totals = WelchTotals(np.full(n_vox, np.nan), np.zeros(n_vox, dtype=np.int64), np.full(J, -np.inf))
+    stat, counts, maxima = totals.stat, totals.counts, totals.maxima
     chunks = list(range(0, n_vox, chunk_voxels)) or [0]
     for i, (cols, y) in enumerate(data.chunks(chunk_voxels)):
         observed = None
@@ -143,6 +148,23 @@ def _run(plan: WelchNullPlan, pset: Any, data: Any, chunk_voxels: int, h: Any,
             counts[cols] += got.counts
             np.maximum(maxima[start:stop], got.maxima, out=maxima[start:stop])
             progress(min(J, (i * J + stop) // len(chunks)), J)
+    return totals
+
+
+def _on_cluster(cluster: Any, plan: WelchNullPlan, pset: Any, chunk_voxels: int,
+                progress: Callable[[int, int], None]) -> WelchTotals:
+    """:func:`_run`'s work as tasks on the cluster (:mod:`groupmodel.inference.welch_distributed`)."""
+    from ..inference.distributed import ClusterWork
+    from ..inference.welch_distributed import welch_on_cluster
+
+    return welch_on_cluster(cluster.executor, cluster.reader, plan, pset, chunk_voxels,
+                            ClusterWork(cache_bytes=cluster.cache_bytes), progress)
+
+
+def _result(plan: WelchNullPlan, pset: Any, h: Any, totals: WelchTotals) -> PermutationResult:
+    """The permutation result of one hypothesis from its totals (wherever they were added up)."""
+    J = pset.size
+    stat, counts, maxima = totals.stat, totals.counts, totals.maxima.copy()
     oriented = oriented_welch(plan, stat)
     p_perm = np.where(np.isnan(oriented), np.nan, counts / J)
     maxima[np.isneginf(maxima)] = np.nan

@@ -90,7 +90,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
 _IMAGE_OPTIONS = (("permutations", "--permutations", None), ("tfce", "--tfce", False),
                   ("cluster_threshold", "--cluster-threshold", None), ("blocks", "--blocks", None),
                   ("whole_blocks", "--whole-blocks", False), ("method", "--method", "auto"),
-                  ("checkpoint", "--checkpoint", None), ("resume", "--resume", False), ("mask", "--mask", None))
+                  ("checkpoint", "--checkpoint", None), ("resume", "--resume", False), ("mask", "--mask", None),
+                  ("scheduler", "--scheduler", None))
 
 
 def refuse_image_options(args: argparse.Namespace) -> None:
@@ -159,8 +160,17 @@ def _fit_images(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec)
     options = spec.inference_options.with_overrides(**inference_overrides(args))
     checkpoint = open_checkpoint(args, spec, options)
-    fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
-                     inference=options, log=log, checkpoint=checkpoint)
+    executor = None
+    if args.scheduler is not None:
+        from ..runtime.cluster import open_scheduler
+
+        executor = open_scheduler(args.scheduler)
+    try:
+        fit = fit_images(spec, mask=args.mask, memory_bytes=args.memory, drop_missing=args.drop_missing_images,
+                         inference=options, log=log, checkpoint=checkpoint, client=executor)
+    finally:
+        if executor is not None:
+            executor.close()
     log_findings(log, fit.model.findings, fit.warnings)
     print_voxel_fit(fit, options)
     write_voxel_fit(fit, args.out, force=args.force, pictures=not args.no_pictures, command=getattr(args, "argv", None))

@@ -131,6 +131,10 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    "finite in all images and not zero in all)")
     f.add_argument("--memory", type=parse_memory, default=parse_memory("2GB"),
                    help="memory budget for image data, e.g. 2GB or 512MB (default 2GB)")
+    f.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the fit and permutations on a Dask cluster: a scheduler address (tcp://host:8786) "
+                   'or local:N for N worker processes here; needs pip install "groupmodel[cluster]"; the '
+                   "workers read the images themselves, and --memory is each worker's budget")
     f.add_argument("--drop-missing-images", action="store_true",
                    help="leave out participants whose image is missing (listed) instead of stopping")
     f.add_argument("--force", action="store_true", help="replace an existing non-empty --out folder")

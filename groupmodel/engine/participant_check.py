@@ -58,6 +58,11 @@ class ParticipantCheck:
         self.abs_resid_sum += chunk_sums(design, y, beta)
         self.n_voxels += y.shape[1]
 
+    def add_sums(self, sums: np.ndarray, n_voxels: int) -> None:
+        """Add one chunk's :func:`chunk_sums` over ``n_voxels`` (add the chunks in order for the same bits)."""
+        self.abs_resid_sum += sums
+        self.n_voxels += n_voxels
+
     def means(self) -> np.ndarray:
         """Each observation's mean absolute residual over the voxels added."""
         return self.abs_resid_sum / max(self.n_voxels, 1)

@@ -202,34 +202,38 @@ class _Run:
         return chunk_nulls(self.plan, batch.A, self.source.get(s, e), threshold, self.tile, maps, self.scratch)
 
     def result(self, test: ContrastTest, map_nulls: MapNulls | None) -> PermutationResult:
-        acc, plan, pset = self.acc, self.plan, self.pset
-        with np.errstate(invalid="ignore"):
-            p_perm = np.where(np.isnan(acc.stat), np.nan, acc.count / pset.size)
-        max_null = acc.max_null.copy()
-        max_null[np.isneginf(max_null)] = np.nan
-        p_fwe = fwe_p(acc.work, max_null)
-        return PermutationResult(
-            name=test.name,
-            kind=test.kind,
-            tail=test.tail,
-            df=plan.df,
-            q=plan.q,
-            stat=acc.stat,
-            p_perm=p_perm,
-            p_fwe=p_fwe,
-            max_null=oriented_stat(plan, max_null),
-            n_perm=pset.size,
-            exhaustive=pset.exhaustive,
-            method=pset.method,
-            seed=pset.seed,
-            n_possible=pset.n_possible,
-            whole_maps=map_nulls.results(acc.stat) if map_nulls is not None else (),
-        )
+        return permutation_result(test, self.plan, self.pset, self.acc, map_nulls)
 
 
-def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
-    """Put back the counts and maxima of a checkpoint (after the observed batch was recomputed)."""
-    acc = run.acc
+def permutation_result(test: ContrastTest, plan: ContrastPlan, pset: PermutationSet, acc: _Accumulated,
+                       map_nulls: MapNulls | None) -> PermutationResult:
+    """The result of one contrast from what its batches accumulated (wherever they ran)."""
+    with np.errstate(invalid="ignore"):
+        p_perm = np.where(np.isnan(acc.stat), np.nan, acc.count / pset.size)
+    max_null = acc.max_null.copy()
+    max_null[np.isneginf(max_null)] = np.nan
+    p_fwe = fwe_p(acc.work, max_null)
+    return PermutationResult(
+        name=test.name,
+        kind=test.kind,
+        tail=test.tail,
+        df=plan.df,
+        q=plan.q,
+        stat=acc.stat,
+        p_perm=p_perm,
+        p_fwe=p_fwe,
+        max_null=oriented_stat(plan, max_null),
+        n_perm=pset.size,
+        exhaustive=pset.exhaustive,
+        method=pset.method,
+        seed=pset.seed,
+        n_possible=pset.n_possible,
+        whole_maps=map_nulls.results(acc.stat) if map_nulls is not None else (),
+    )
+
+
+def _restore_arrays(acc: _Accumulated, saved: BatchState) -> None:
+    """Put back the counts and maxima per rearrangement of a checkpoint (here or on a cluster)."""
     if saved.count.shape != acc.count.shape or saved.max_null.shape != acc.max_null.shape:
         raise InputError(
             f"the checkpoint holds {saved.count.size} elements and {saved.max_null.size} rearrangements, this run "
@@ -237,6 +241,11 @@ def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
         )
     acc.count[:] = saved.count
     acc.max_null[:] = saved.max_null
+
+
+def _restore(run: _Run, map_nulls: MapNulls | None, saved: BatchState) -> None:
+    """Put back the counts and maxima of a checkpoint (after the observed batch was recomputed)."""
+    _restore_arrays(run.acc, saved)
     if map_nulls is not None:
         map_nulls.drain()
         if saved.tfce_max is not None:

@@ -20,6 +20,12 @@ class Progress:
         if self._bar is not None:
             self._bar.update(n)
 
+    def grow(self, n: int) -> None:
+        """``n`` more to do (for totals known only as the work goes on)."""
+        if self._bar is not None:
+            self._bar.total += n
+            self._bar.refresh()
+
     def update_to(self, done: int) -> None:
         """Move the bar to ``done`` (for callbacks that report totals so far)."""
         if self._bar is not None:

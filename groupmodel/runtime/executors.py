@@ -191,9 +191,27 @@ class ProcessExecutor(_Base):
             with _sigint_held(), _main_hidden():  # the pool starts one worker per task submitted while none is idle
                 for _ in range(self.workers):
                     self._pool.submit(_noop)
+                self._start_all()
         except BaseException:  # Ctrl-C while they start: stop the ones started
             self._pool.shutdown(wait=True, cancel_futures=True)
             raise
+
+    def _start_all(self) -> None:
+        """Start every worker now, while the main module is hidden.
+
+        A worker that finished its start-up task before the next one was submitted takes that task too, and the
+        pool would start the missing workers only later, with the main module visible again (a script without
+        a main guard would then be re-run in them).  The pool's own start-up step is used for the rest; on a
+        Python whose pool lacks it, the start-up tasks above are all there is.
+        """
+        spawn = getattr(self._pool, "_spawn_process", None)
+        processes = getattr(self._pool, "_processes", None)
+        lock = getattr(self._pool, "_shutdown_lock", None)
+        if spawn is None or processes is None or lock is None:
+            return
+        with lock:
+            while len(processes) < self.workers:
+                spawn()
 
     def submit(self, fn: Callable[..., T], /, *args: Any) -> Future[T]:
         return self._pool.submit(fn, *args)

@@ -105,3 +105,32 @@ def test_executors_return_results_in_order_and_hand_back_failures() -> None:
             failed = executor.submit(divmod, 1, 0)
             with pytest.raises(ZeroDivisionError):
                 failed.result()
+
+
+def test_process_executor_starts_every_worker_while_the_main_module_is_hidden(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """All workers exist when the constructor returns, none left to be started later with the main module
+    visible: here each start-up task is made to finish before the next is submitted (what a loaded machine
+    can do), so the pool alone would have started one worker and the rest on demand."""
+    import sys
+    from concurrent.futures import ProcessPoolExecutor
+
+    from groupmodel.runtime import executors
+
+    class Eager(ProcessPoolExecutor):
+        def submit(self, fn, /, *args, **kwargs):  # type: ignore[no-untyped-def]
+            future = super().submit(fn, *args, **kwargs)
+            if fn is executors._noop:
+                future.result()
+            return future
+
+    monkeypatch.setattr(executors, "ProcessPoolExecutor", Eager)
+    main = sys.modules["__main__"]
+    before = (getattr(main, "__spec__", None), getattr(main, "__file__", None))
+    pool = executors.ProcessExecutor(3)
+    try:
+        assert len(pool._pool._processes) == 3
+        assert (getattr(main, "__spec__", None), getattr(main, "__file__", None)) == before  # restored
+        assert [f.result() for f in [pool.submit(abs, -k) for k in range(6)]] == list(range(6))
+    finally:
+        pool.close()

@@ -183,7 +183,8 @@ def _fit_images(args: argparse.Namespace) -> int:
 
 def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
     """The --checkpoint folder with this command's parameters (None without --checkpoint)."""
-    from ..inference.checkpoint import CheckpointFolder, file_digest
+    from ..inference.checkpoint import CheckpointFolder
+    from ..runtime.digest import sha256_file as file_digest
 
     if args.checkpoint is None:
         if args.resume:

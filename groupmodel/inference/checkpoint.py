@@ -14,7 +14,6 @@ the contrast is done.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import time
@@ -86,15 +85,6 @@ class ContrastCheckpoint:
             os.fsync(fh.fileno())
         os.replace(tmp, self.path)
         self._last = time.monotonic()
-
-
-def file_digest(path: Path | str) -> str:
-    """SHA-256 of a file's bytes (to tell whether an input changed between the run and its resume)."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 class CheckpointFolder:

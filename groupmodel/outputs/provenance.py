@@ -29,6 +29,7 @@ from pathlib import Path
 from typing import Any
 
 from .. import __version__
+from ..runtime.digest import sha256_file
 from ..text import DISCLAIMER
 
 #: Every key of the header, in the order the files write them.
@@ -90,15 +91,6 @@ class RunInputs:
         return cls(spec=spec.path, participants=spec.participants, participants_sidecar=spec.participants_sidecar,
                    observations=Path(observations) if isinstance(observations, str | Path) else None,
                    mask=None if mask is None else Path(mask), images=tuple(images), participants_sha256=digest)
-
-
-def sha256_file(path: Path | str) -> str:
-    """The SHA-256 of a file's bytes, in hexadecimal."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _file_record(path: Path | None, digest: str | None = None) -> dict[str, str] | None:

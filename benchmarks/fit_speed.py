@@ -205,7 +205,7 @@ class _StageTimer:
 
 
 def child_groupmodel(spec: Path, out: Path, memory: str, pictures: bool = True) -> dict[str, Any]:
-    import groupmodel.analysis.voxel_fit
+    import groupmodel.analysis.chunk_fit
     import groupmodel.engine.tails
     import groupmodel.images
     import groupmodel.outputs.design_files
@@ -216,7 +216,7 @@ def child_groupmodel(spec: Path, out: Path, memory: str, pictures: bool = True) 
     stages = {
         "check images": (groupmodel.images, "check_images"),
         "read images (load_masked)": (groupmodel.images, "load_masked"),
-        "engine (fit_chunk, all chunks)": (groupmodel.analysis.voxel_fit, "fit_chunk"),
+        "engine (fit_chunk, all chunks)": (groupmodel.analysis.chunk_fit, "fit_chunk"),
         "  of which t p/z (tails.t_tests)": (groupmodel.engine.tails, "t_tests"),
         "  of which F p/z (tails.f_tests)": (groupmodel.engine.tails, "f_tests"),
         "write NIfTI maps (write_map)": (groupmodel.images, "write_map"),

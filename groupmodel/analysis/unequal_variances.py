@@ -14,7 +14,7 @@ from functools import partial
 
 import numpy as np
 
-from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, group_variances, unequal
+from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, screen, unequal
 from ..engine.welch import GROUP_DF_MIN, group_residual_df
 from ..model.assembly import Model
 from ..text import number_text
@@ -47,8 +47,8 @@ def chunk_counts(u: np.ndarray, centred: bool, factors: tuple[_Factor, ...],
     resid = residuals_of(u, y, centred)
     out = {}
     for f in factors:
-        variances, p = group_variances(resid, f.labels, f.rho)
-        out[f.name] = (int(np.count_nonzero(unequal(variances, p))), int(np.count_nonzero(np.isfinite(p))))
+        variances, p, checked = screen(resid, f.labels, f.rho)
+        out[f.name] = (int(np.count_nonzero(unequal(variances, p))), int(np.count_nonzero(checked)))
     return out
 
 
@@ -97,10 +97,10 @@ class UnequalVarianceTally:
         """Count one chunk of data (n, v)."""
         resid = residuals_of(self.u, y, self.centred)
         for f in self._factors:
-            variances, p = group_variances(resid, f.labels, f.rho)
+            variances, p, checked = screen(resid, f.labels, f.rho)
             hit = unequal(variances, p)
             self.flagged[f.name] = self.flagged.get(f.name, 0) + int(np.count_nonzero(hit))
-            self.tested[f.name] = self.tested.get(f.name, 0) + int(np.count_nonzero(np.isfinite(p)))
+            self.tested[f.name] = self.tested.get(f.name, 0) + int(np.count_nonzero(checked))
             self.last[f.name] = (variances, p)
 
     def table_findings(self) -> list[str]:

@@ -142,7 +142,9 @@ def noncentrality_bound(statistic: np.ndarray, df1: float | np.ndarray, df2: flo
     d2 = np.broadcast_to(np.asarray(df2, dtype=np.float64), f.shape)
     out = np.full(f.shape, np.nan)
     finite = np.isfinite(f) & np.isfinite(d1) & np.isfinite(d2)
-    f0 = np.asarray(stats.f.ppf(prob, d1, d2), dtype=np.float64)  # the F at which lambda leaves 0
+    # the F at which lambda leaves 0 (once for scalar df: the same value at every voxel)
+    f0 = np.asarray(stats.f.ppf(prob, df1, df2) if np.ndim(df1) == 0 and np.ndim(df2) == 0
+                    else stats.f.ppf(prob, d1, d2), dtype=np.float64)
     with np.errstate(invalid="ignore"):
         out[finite & (f <= f0)] = 0.0
         todo = finite & (f > f0)

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "group_variances", "unequal"]
+__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "group_variances", "screen", "unequal"]
 
 #: Largest over smallest residual variance of a factor's groups above which a fit warns (with Levene's p).
 VARIANCE_RATIO_WARN = 2.0
@@ -31,14 +31,37 @@ def group_variances(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> t
     rho : ndarray, shape (k,)
         Each group's residual df (the sum of its diagonal of the residual-forming matrix).
     """
-    k = rho.size
-    onehot = np.zeros((k, resid.shape[0]))
+    variances = _variances(resid, labels, rho)
+    return variances, np.where(np.all(variances > 0, axis=0), _levene_p(resid, labels, rho.size), np.nan)
+
+
+def screen(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`group_variances` and :func:`unequal` for many voxels at once, with Levene's test (the costly part:
+    a median per group and voxel) run only where the variance ratio already exceeds :data:`VARIANCE_RATIO_WARN`.
+
+    Returns the variances (k, v), Levene's p (v,; NaN where it was not needed) and the voxels checked: those
+    where every group has residual spread.  ``unequal(variances, p)`` is the same as with :func:`group_variances`.
+    """
+    variances = _variances(resid, labels, rho)
+    checked = np.all(variances > 0, axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        wanted = checked & (variances.max(axis=0) / variances.min(axis=0) > VARIANCE_RATIO_WARN)
+    p = np.full(resid.shape[1], np.nan)
+    if np.any(wanted):
+        p[wanted] = _levene_p(resid[:, wanted], labels, rho.size)
+    return variances, p, checked
+
+
+def _variances(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> np.ndarray:
+    onehot = np.zeros((rho.size, resid.shape[0]))
     onehot[labels, np.arange(resid.shape[0])] = 1.0
-    variances = (onehot @ (resid * resid)) / rho[:, None]
+    return (onehot @ (resid * resid)) / rho[:, None]
+
+
+def _levene_p(resid: np.ndarray, labels: np.ndarray, k: int) -> np.ndarray:
     with np.errstate(invalid="ignore", divide="ignore"):
         p = stats.levene(*[resid[labels == g] for g in range(k)], center="median", axis=0).pvalue
-    p = np.atleast_1d(np.asarray(p, dtype=float))
-    return variances, np.where(np.all(variances > 0, axis=0), p, np.nan)
+    return np.atleast_1d(np.asarray(p, dtype=float))
 
 
 def unequal(variances: np.ndarray, p: np.ndarray) -> np.ndarray:

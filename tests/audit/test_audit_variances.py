@@ -44,3 +44,28 @@ def test_check_is_quiet_for_equal_variances(tmp_path: Path) -> None:
     design, table, spec = _files(tmp_path, sd_patient=1.0)
     report = audit(design, participants=table, spec=spec)
     assert not [f for f in report.findings if f.code == "unequal_variances"]
+
+
+def test_screened_check_flags_the_same_voxels_as_levene_everywhere() -> None:
+    """The voxelwise screen (Levene only where the variance ratio is already past the limit) flags exactly the
+    voxels that scipy.stats.levene (median-centred) run at every voxel flags, with the same p where it ran."""
+    from groupmodel.engine.variance_check import VARIANCE_RATIO_WARN, group_variances, screen, unequal
+
+    rng = np.random.default_rng(11)
+    labels = np.repeat([0, 1, 2], [8, 12, 20])
+    sd = np.ones((3, 600))
+    sd[0, :200] = rng.uniform(1.0, 3.0, 200)  # a third of the voxels with a more variable first group
+    resid = rng.standard_normal((40, 600)) * sd[labels]
+    resid[:, 590:] = 0.0  # no spread at all
+    rho = np.bincount(labels).astype(float) - 1
+    variances, p_all = group_variances(resid, labels, rho)
+    v2, p, checked = screen(resid, labels, rho)
+    np.testing.assert_array_equal(v2, variances)
+    np.testing.assert_array_equal(unequal(v2, p), unequal(variances, p_all))
+    assert unequal(variances, p_all).sum() > 20  # the check has something to find
+    np.testing.assert_array_equal(checked, np.isfinite(p_all))
+    ran = np.isfinite(p)
+    assert ran.sum() < 600 and np.all(variances[:, ran].max(axis=0) / variances[:, ran].min(axis=0)
+                                      > VARIANCE_RATIO_WARN)
+    parts = [resid[labels == g][:, ran] for g in range(3)]
+    np.testing.assert_allclose(p[ran], stats.levene(*parts, center="median", axis=0).pvalue, rtol=1e-12)

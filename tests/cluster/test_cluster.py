@@ -50,15 +50,6 @@ PARAMETRIC_P = ("p", "mlog10p", "p_fdr", "p_bonferroni")
 
 
 @pytest.fixture(scope="module")
-def client():
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
-                                       silence_logs=40)
-    with distributed.Client(cluster) as c:
-        yield c
-    cluster.close()
-
-
-@pytest.fixture(scope="module")
 def study(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return make_study(tmp_path_factory.mktemp("cluster") / "study", n=20)
 

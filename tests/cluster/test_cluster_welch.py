@@ -33,15 +33,6 @@ OPTS = InferenceOptions(permutations=250, seed=4, threads=1, jobs=1)
 
 
 @pytest.fixture(scope="module")
-def client():
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
-                                       silence_logs=40)
-    with distributed.Client(cluster) as c:
-        yield c
-    cluster.close()
-
-
-@pytest.fixture(scope="module")
 def study(tmp_path_factory: pytest.TempPathFactory) -> Path:
     spec = make_study(tmp_path_factory.mktemp("welch") / "study", n=30)
     body = json.loads(spec.read_text())

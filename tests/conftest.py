@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from groupmodel.inference.fastpath import ENV_NO_COMPILED, compiled_kernels
+from groupmodel.inference.fastpath import ENV_NO_COMPILED, compiled_kernels, compiled_scan
 
 NO_NUMBA = 'numba is not installed (optional extra "fast": pip install -e ".[test,fast]"); compiled path not tested'
 
@@ -20,3 +20,19 @@ def tfce_path(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -
         if compiled_kernels() is None:
             pytest.skip(NO_NUMBA)
     return request.param
+
+
+@pytest.fixture
+def kernels():
+    """The compiled TFCE and cluster kernels (the test is skipped when numba is not installed)."""
+    if compiled_kernels() is None:
+        pytest.skip(NO_NUMBA)
+    return compiled_kernels()
+
+
+@pytest.fixture
+def fused():
+    """The compiled max-statistic scan (the test is skipped when numba is not installed)."""
+    if compiled_scan() is None:
+        pytest.skip(NO_NUMBA)
+    return compiled_scan()

@@ -23,16 +23,6 @@ from groupmodel.inference.results import ClusterResult, TfceResult
 from groupmodel.inference.settings import ContrastTest, Execution, MapSettings, Rearrangements
 from groupmodel.inference.tfce import TfceParams, tfce
 
-sys.path.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[1]))
-from conftest import NO_NUMBA  # noqa: E402
-
-
-@pytest.fixture
-def kernels():
-    if compiled_kernels() is None:
-        pytest.skip(NO_NUMBA)
-    return compiled_kernels()
-
 
 def _both(monkeypatch: pytest.MonkeyPatch, fn, *args, **kw):
     """fn on the numpy path, then on the compiled path."""

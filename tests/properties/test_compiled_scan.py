@@ -9,28 +9,16 @@ counts of the compiled path must reproduce (t to 1e-10 relative, counts away fro
 
 from __future__ import annotations
 
-import sys
-
 import numpy as np
 import pytest
 
 from groupmodel.inference import fastpath
 from groupmodel.inference.driver import run_permutations
-from groupmodel.inference.fastpath import ENV_NO_COMPILED, compiled_scan
+from groupmodel.inference.fastpath import ENV_NO_COMPILED
 from groupmodel.inference.freedman_lane import plan_contrast, stack_rows
 from groupmodel.inference.kernel import chunk_nulls, observed_chunk, tile_width, unit_columns
 from groupmodel.inference.rearrangements import permutation_set
 from groupmodel.inference.settings import ContrastTest, Execution, Rearrangements
-
-sys.path.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[1]))
-from conftest import NO_NUMBA  # noqa: E402
-
-
-@pytest.fixture
-def fused():
-    if compiled_scan() is None:
-        pytest.skip(NO_NUMBA)
-    return compiled_scan()
 
 
 def _design(n: int, rng: np.random.Generator, extra: int) -> np.ndarray:

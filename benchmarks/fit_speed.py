@@ -11,9 +11,13 @@ What it does (all data invented and seeded):
      every map, sidecar, design file and picture; the pictures are drawn in a thread while maps are written);
    * ``groupmodel-no-pictures``: the same without pictures (``groupmodel fit --no-pictures``), the same work
      as the reference;
-   * ``reference``: the minimal job by hand -- nibabel loads every image into one array, numpy QR OLS
-     gives effects, SEs, t, F, p, z and -log10 p, and nibabel writes the same number of float32 NIfTI
-     maps (no sidecars, no checks);
+   * ``reference``: the minimal job by hand, the same arithmetic -- nibabel loads every image into one array,
+     numpy QR OLS gives effects, SEs, t, F, p, z and -log10 p, the t intervals, Cohen's d, partial eta
+     squared (its interval from groupmodel's noncentral-F function, which numpy and scipy do not offer
+     vectorised), Benjamini-Hochberg and Bonferroni p, the mean image, the per-participant residual sums and
+     the unequal-variance check (group variances, ``scipy.stats.levene`` where they differ by more than 2),
+     and nibabel writes the same maps as float32 NIfTI (no sidecars, summary or report); the maps are
+     compared with groupmodel's afterwards;
 
    in rotating order, and prints the median times, each stage's share, their ratio (goal <= 0.6 without
    pictures), the peak RSS values and the load average of the machine.  ``--no-isal`` measures the zlib
@@ -239,16 +243,24 @@ def child_groupmodel(spec: Path, out: Path, memory: str, pictures: bool = True) 
 
 
 def child_reference(spec: Path, out: Path) -> dict[str, Any]:
-    """The minimal job by hand: load, QR OLS with t and F, write the same number of float32 maps."""
+    """The minimal job by hand, the same arithmetic as groupmodel: load, QR OLS with t and F, p, z, -log10 p,
+    the t intervals, Cohen's d, partial eta squared and its interval, Benjamini-Hochberg and Bonferroni p, the
+    mean image, the per-participant residual sums and the unequal-variance check; write the same maps as
+    float32 NIfTI (no sidecars, no summary, no report)."""
     import nibabel as nib
     from scipy import special, stats
 
+    from groupmodel.analysis.effect_maps import has_cohens_d
+    from groupmodel.engine.effect_sizes import partial_eta_squared_interval
     from groupmodel.model import build
 
     # The design and contrast rows come from groupmodel (not timed): the reference times the voxel work.
     model = build(spec)
     x = model.design.matrix
     hyps = list(model.hypotheses.values())
+    with_d = {h.name: has_cohens_d(h) for h in hyps}
+    design = model.design.observations
+    factors = {name: design[name].astype(str).to_numpy() for name in model.design.factors}
     paths = [spec.parent / "maps" / f"{pid}_effect.nii.gz" for pid in model.design.participant_ids]
     base = _maxrss_mb()
     out.mkdir(parents=True, exist_ok=True)
@@ -266,16 +278,18 @@ def child_reference(spec: Path, out: Path) -> dict[str, Any]:
     t_loaded = time.perf_counter()
     n, k = x.shape
     q, r = np.linalg.qr(x)
-    yc = y - y.mean(axis=0)  # the design has an intercept: centring changes no effect but the mean term
+    mean_input = y.mean(axis=0)
+    yc = y - mean_input  # the design has an intercept: centring changes no effect but the mean term
     qty = q.T @ yc
     resid = yc - q @ qty
     df = n - k
     sigma2 = np.einsum("ij,ij->j", resid, resid) / df
-    del resid, yc
+    del yc
     beta = np.linalg.solve(r, qty)
-    beta[0] += y.mean(axis=0)  # intercept column first: X^+ 1 = e_0
+    beta[0] += mean_input  # intercept column first: X^+ 1 = e_0
     rinv = np.linalg.inv(r)
     maps: dict[str, np.ndarray] = {}
+    t_crit = stats.t.ppf(0.975, df)
     for h in hyps:
         w = h.weights
         eff = w @ beta
@@ -289,16 +303,45 @@ def child_reference(spec: Path, out: Path) -> dict[str, Any]:
                 p = stats.t.sf(t, df)
             else:
                 p = stats.t.cdf(t, df)
+            f, q_rows = t * t, 1
             maps |= {f"{h.name}_effect": eff[0], f"{h.name}_se": se, f"{h.name}_t": t,
-                     f"{h.name}_z": special.ndtri(stats.t.cdf(t, df)), f"{h.name}_p": p,
-                     f"{h.name}_mlog10p": -np.log10(p)}
+                     f"{h.name}_z": special.ndtri(stats.t.cdf(t, df)),
+                     f"{h.name}_ci_lower": eff[0] - t_crit * se, f"{h.name}_ci_upper": eff[0] + t_crit * se}
+            if with_d[h.name]:
+                maps[f"{h.name}_cohens_d"] = eff[0] / np.sqrt(sigma2)
         else:
             ci = np.linalg.inv(cov)
-            f = np.einsum("iv,ij,jv->v", eff, ci, eff) / (w.shape[0] * sigma2)
-            p = stats.f.sf(f, w.shape[0], df)
-            maps |= {f"{h.name}_F": f, f"{h.name}_z": stats.norm.isf(p),
-                     f"{h.name}_p": p, f"{h.name}_mlog10p": -np.log10(p)}
+            q_rows = w.shape[0]
+            f = np.einsum("iv,ij,jv->v", eff, ci, eff) / (q_rows * sigma2)
+            p = stats.f.sf(f, q_rows, df)
+            maps |= {f"{h.name}_F": f, f"{h.name}_z": stats.norm.isf(p)}
+        maps |= {f"{h.name}_p": p, f"{h.name}_mlog10p": -np.log10(p)}
+        # partial eta squared; its interval by groupmodel's noncentral-F function (numpy and scipy have no
+        # vectorised inverse in the noncentrality: the same arithmetic, called, not written again)
+        maps[f"{h.name}_partial_eta_squared"] = f * q_rows / (f * q_rows + df)
+        eta = partial_eta_squared_interval(f, q_rows, df, 0.95)
+        maps[f"{h.name}_partial_eta_squared_ci_lower"] = eta.lower
+        maps[f"{h.name}_partial_eta_squared_ci_upper"] = eta.upper
+        # Benjamini-Hochberg and Bonferroni over the voxels
+        order = np.argsort(p)
+        ranked = p[order] * p.size / np.arange(1, p.size + 1)
+        fdr = np.empty_like(p)
+        fdr[order] = np.minimum(1.0, np.minimum.accumulate(ranked[::-1])[::-1])
+        maps |= {f"{h.name}_p_fdr": fdr, f"{h.name}_p_bonferroni": np.minimum(1.0, p * p.size)}
     maps["residual_variance"] = sigma2
+    maps["mean_input"] = mean_input
+    # The checks: each participant's mean |residual|; each factor's group variances (RSS_g / rho_g) and
+    # Levene's test where the largest is more than twice the smallest.
+    participant_mean_abs = np.abs(resid).mean(axis=1)
+    hat_diag = np.einsum("ij,ij->i", q, q)
+    flagged = {}
+    for name, values in factors.items():
+        groups = [values == g for g in np.unique(values)]
+        var = np.stack([(resid[g] ** 2).sum(axis=0) / (1.0 - hat_diag[g]).sum() for g in groups])
+        wanted = var.max(axis=0) > 2.0 * var.min(axis=0)
+        p_lev = stats.levene(*[resid[g][:, wanted] for g in groups], center="median", axis=0).pvalue
+        flagged[name] = int(np.count_nonzero(p_lev < 0.05))
+    del resid
     t_fitted = time.perf_counter()
     vol = np.zeros(shape, dtype=np.float32)
     mask = mask.reshape(shape)
@@ -307,10 +350,11 @@ def child_reference(spec: Path, out: Path) -> dict[str, Any]:
         nib.save(nib.Nifti1Image(vol, affine), out / f"{name}.nii.gz")
     nib.save(nib.Nifti1Image(mask.astype(np.uint8), affine), out / "mask.nii.gz")
     t1 = time.perf_counter()
-    stages = {"read images + mask": t_loaded - t0, "OLS, t, F, p, z": t_fitted - t_loaded,
-              "write NIfTI maps": t1 - t_fitted}
+    stages = {"read images + mask": t_loaded - t0, "OLS, t, F, p, z, effect sizes, corrections, checks":
+              t_fitted - t_loaded, "write NIfTI maps": t1 - t_fitted}
     return {"seconds": t1 - t0, "cpu_seconds": _cpu_seconds() - c0, "stages": stages, "n_maps": len(maps) + 1,
-            "n_voxels": int(mask.sum()), "n_obs": n, "maxrss_mb": _maxrss_mb(), "baseline_rss_mb": base}
+            "n_voxels": int(mask.sum()), "n_obs": n, "maxrss_mb": _maxrss_mb(), "baseline_rss_mb": base,
+            "checks": {"participant_mean_abs_max": float(participant_mean_abs.max()), "flagged": flagged}}
 
 
 def child_statsmodels(spec: Path, sample: int) -> dict[str, Any]:
@@ -373,6 +417,32 @@ def _median_run(runs: list[dict[str, Any]]) -> dict[str, Any]:
             out[key] = float(np.median([r[key] for r in runs]))
     out["stages"] = {k: float(np.median([r["stages"][k] for r in runs])) for k in mid["stages"]}
     return out
+
+
+def compare_maps(ref_dir: Path, gm_dir: Path) -> tuple[int, int, float]:
+    """Maps of groupmodel (found through its outputs.json) against the reference's maps of the same name:
+    (maps compared, maps missing from the reference, largest difference relative to the map's largest
+    |value|)."""
+    import nibabel as nib
+
+    index = json.loads((gm_dir / "outputs.json").read_text())
+    compared = missing = 0
+    worst = 0.0
+    for e in index["files"]:
+        if e.get("kind") != "map" or not e["path"].endswith(".nii.gz"):
+            continue
+        name = f"{e['hypothesis']}_{e['statistic']}" if e.get("hypothesis") else e["statistic"]
+        ref = ref_dir / f"{name}.nii.gz"
+        if not ref.exists():
+            missing += 1
+            continue
+        a = np.asarray(nib.load(gm_dir / e["path"]).dataobj, dtype=float)
+        b = np.asarray(nib.load(ref).dataobj, dtype=float)
+        both = np.isfinite(a) & np.isfinite(b)
+        scale = max(float(np.abs(b[both]).max(initial=0.0)), 1e-300)
+        worst = max(worst, float(np.abs(a[both] - b[both]).max(initial=0.0)) / scale)
+        compared += 1
+    return compared, missing, worst
 
 
 def run_child(*args: str, env: dict[str, str] | None = None) -> dict[str, Any]:
@@ -469,6 +539,9 @@ def main(argv: list[str] | None = None) -> int:
                   f"{r['cpu_seconds'] / ref['cpu_seconds']:.2f} CPU (medians; goal <= 0.6 for the same work, "
                   f"i.e. without pictures)")
         print(f"  fixed overhead (interpreter + imports): {overhead['maxrss_mb']:.0f} MB")
+        n_cmp, n_missing, worst = compare_maps(root / "out_reference", root / "out_groupmodel-no-pictures")
+        print(f"  same maps: {n_cmp} groupmodel maps compared with the reference's ({n_missing} without a "
+              f"counterpart); largest difference {worst:.2g} of the map's largest |value| (float32 files)")
 
         sm = run_child("statsmodels", str(spec), str(cfg["sm_sample"]))
         sm_total = sm["seconds_per_voxel"] * gm["n_voxels"]

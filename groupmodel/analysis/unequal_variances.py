@@ -41,10 +41,8 @@ class _Factor:
     rho: np.ndarray
 
 
-def chunk_counts(u: np.ndarray, centred: bool, factors: tuple[_Factor, ...],
-                 y: np.ndarray) -> dict[str, tuple[int, int]]:
-    """Factor -> (voxels whose groups' variances differ, voxels tested) in one chunk ``y`` (n, v)."""
-    resid = residuals_of(u, y, centred)
+def chunk_counts(factors: tuple[_Factor, ...], resid: np.ndarray) -> dict[str, tuple[int, int]]:
+    """Factor -> (voxels whose groups' variances differ, voxels tested) in one chunk's OLS residuals (n, v)."""
     out = {}
     for f in factors:
         variances, p, checked = screen(resid, f.labels, f.rho)
@@ -84,8 +82,9 @@ class UnequalVarianceTally:
         return out
 
     def counter(self) -> Callable[[np.ndarray], dict[str, tuple[int, int]]]:
-        """The counting of one chunk as a pure function (pickles, for a cluster worker): :func:`chunk_counts`."""
-        return partial(chunk_counts, self.u, self.centred, tuple(self._factors))
+        """The counting of a chunk's OLS residuals (n, v) as a pure function (pickles, for a cluster worker):
+        :func:`chunk_counts`."""
+        return partial(chunk_counts, tuple(self._factors))
 
     def add_counts(self, counts: dict[str, tuple[int, int]]) -> None:
         """Add one chunk's :func:`chunk_counts` (integers: in any order)."""

@@ -6,6 +6,7 @@ this module feeds it the chunks of the loaded images and collects the maps, then
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import nullcontext
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -266,11 +267,12 @@ def fit_images(
                 degrees, df_resid = strata_degrees(model), average_df(model)  # residual variance: averages'
             elif welch is None:
                 maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
-                                                           ci_level=inference.ci_level, tally=tally, session=session)
+                                                           ci_level=inference.ci_level, tally=tally, session=session,
+                                                           threads=plan.threads)
                 mean_input, df_resid = extras[0], prepared.df_resid
             else:  # Welch's v and G: intervals only (no effect sizes)
                 maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally, session,
-                                                     ci_level=inference.ci_level)
+                                                     ci_level=inference.ci_level, threads=plan.threads)
                 mean_input, df_resid = extras[0], prepared.df_resid
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
@@ -334,12 +336,13 @@ def _map_names(h: Any) -> tuple[str, ...]:
 
 
 def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: int, progress: bool, *,
-                     ci_level: float, tally: UnequalVarianceTally, session: Any = None
+                     ci_level: float, tally: UnequalVarianceTally, session: Any = None, threads: int = 1
                      ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """Effect, SE, t or F, z, p, -log10 p, effect-size and interval maps of every hypothesis, and the residual
     variance, chunk by chunk, here or on the cluster of ``session`` (intervals at ``ci_level``; the corrected
     p maps are allocated here and filled by the corrections); also the mean input image and the
-    per-participant residual sums (added in chunk order), and the chunks counted by ``tally``."""
+    per-participant residual sums (added in chunk order), and the chunks counted by ``tally``; each chunk in
+    ``threads`` threads here (:class:`~.chunk_fit.ChunkFit`), on one per task on a cluster."""
     n_vox = data.n_in_mask
     maps = {h.name: {k: np.empty(n_vox) for k in _map_names(h)} for h in model.hypotheses.values()}
     resid_var = np.empty(n_vox)
@@ -347,33 +350,42 @@ def _parametric_pass(model: Model, prepared: Prepared, data: Any, chunk_voxels: 
     check = ParticipantCheck.empty(model.design.n_observations)
     sums: dict[int, tuple[np.ndarray, int]] = {}
     bar = progress_bar(n_vox, "fitting", enabled=progress)
+    hyps = list(model.hypotheses.values())
     try:
-        work = ChunkFit(prepared, model.design.matrix, tally.counter())
-        for cols, part in fitted_parts(work, data, chunk_voxels, session):
-            res = part.fit
-            resid_var[cols] = res.residual_variance
-            mean_input[cols] = part.mean
-            sums[cols.start] = (part.sums, cols.stop - cols.start)
-            tally.add_counts(part.counts)
-            for h in model.hypotheses.values():
-                r, m = res[h.name], maps[h.name]
-                if h.test == "t":
-                    m["effect"][cols] = r.effect
-                    m["se"][cols] = r.se
-                    m["t"][cols] = r.statistic
-                else:
-                    m["F"][cols] = r.statistic
-                m["z"][cols] = r.z
-                m["p"][cols] = r.p
-                m["mlog10p"][cols] = r.mlog10p
-                for k, values in effect_sizes(h, r, res.residual_variance, ci_level).items():
-                    m[k][cols] = values
-            bar.update(cols.stop - cols.start)
+        work = ChunkFit(prepared, model.design.matrix, tally.counter(), threads=threads if session is None else 1)
+        with ThreadPoolExecutor(max(1, threads), thread_name_prefix="groupmodel-effects") as pool:
+            for cols, part in fitted_parts(work, data, chunk_voxels, session):
+                res = part.fit
+                resid_var[cols] = res.residual_variance
+                mean_input[cols] = part.mean
+                sums[cols.start] = (part.sums, cols.stop - cols.start)
+                tally.add_counts(part.counts)
+                # effect sizes and intervals, hypotheses in threads (numpy and scipy release the GIL)
+                sizes = pool.map(lambda h, res=res: effect_sizes(h, res[h.name], res.residual_variance, ci_level),
+                                 hyps)
+                for h, h_sizes in zip(hyps, sizes, strict=True):
+                    _store(maps[h.name], cols, h, res[h.name], h_sizes)
+                bar.update(cols.stop - cols.start)
     finally:
         bar.close()
     for s in sorted(sums):  # in chunk order: the same sums, bit for bit, in whatever order the chunks came
         check.add_sums(*sums[s])
     return maps, resid_var, (mean_input, check)
+
+
+def _store(m: dict[str, np.ndarray], cols: slice, h: Any, r: Any, sizes: dict[str, np.ndarray]) -> None:
+    """One chunk's results of hypothesis ``h`` (``r``, a TestResult) and its effect sizes into its maps."""
+    if h.test == "t":
+        m["effect"][cols] = r.effect
+        m["se"][cols] = r.se
+        m["t"][cols] = r.statistic
+    else:
+        m["F"][cols] = r.statistic
+    m["z"][cols] = r.z
+    m["p"][cols] = r.p
+    m["mlog10p"][cols] = r.mlog10p
+    for k, values in sizes.items():
+        m[k][cols] = values
 
 
 def elements_of(grid: Any) -> str:

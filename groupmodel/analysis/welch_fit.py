@@ -95,7 +95,7 @@ def welch_results_table(model: Model, chunk: WelchChunk, columns: list[str], vox
 
 
 def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, progress: bool,
-               tally: Any, session: Any = None, ci_level: float = DEFAULT_CI_LEVEL
+               tally: Any, session: Any = None, ci_level: float = DEFAULT_CI_LEVEL, threads: int = 1
                ) -> tuple[dict[str, dict[str, np.ndarray]], np.ndarray, tuple[np.ndarray, ParticipantCheck]]:
     """The maps of every hypothesis (:data:`WELCH_T_MAPS`, :data:`WELCH_F_MAPS`; the corrected p maps allocated;
     intervals at ``ci_level``) and the pooled residual variance, chunk by chunk, here or on the cluster of
@@ -112,7 +112,8 @@ def welch_maps(model: Model, setup: WelchSetup, data: Any, chunk_voxels: int, pr
     sums: dict[int, tuple[np.ndarray, int]] = {}
     solve = np.linalg.pinv(design)  # the OLS (minimum-norm) estimates: the same fitted values for any solution
     bar = progress_bar(n_vox, "fitting", enabled=progress)
-    work = ChunkFit(None, design, tally.counter(), welch=setup.prepared, solve=solve)
+    work = ChunkFit(None, design, tally.counter(), welch=setup.prepared, solve=solve,
+                    threads=threads if session is None else 1)
     try:
         for cols, part in fitted_parts(work, data, chunk_voxels, session):
             res = part.fit

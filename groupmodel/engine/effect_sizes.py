@@ -25,6 +25,7 @@ reliable) the bound is the large-noncentrality limit ``lambda = df1 F chi2.isf(p
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -51,6 +52,7 @@ DEFAULT_CI_LEVEL = 0.95
 TWO_MEANS_ATOL = 1e-9
 #: Grid of the spline: points per decade of ``F - F0`` and its range (relative below, absolute above).
 _GRID_PER_DECADE = 40
+_SPLINE_LOCK = threading.Lock()
 _GRID_REL_LO = 1e-6
 _GRID_ABS_HI = 1e6
 #: Above this df1 F the bound is taken from the large-noncentrality limit (see _root); its error there is
@@ -190,8 +192,14 @@ def _root(f: float, df1: float, df2: float, prob: float) -> float:
     return float(brentq(g, 0.0, hi, xtol=_ROOT_XTOL, rtol=_ROOT_RTOL, maxiter=500))
 
 
-@lru_cache(maxsize=64)
 def _spline(df1: float, df2: float, prob: float) -> tuple[CubicSpline, float, float, float]:
+    """:func:`_built_spline`, built once when threads ask for the same one at the same time."""
+    with _SPLINE_LOCK:
+        return _built_spline(df1, df2, prob)
+
+
+@lru_cache(maxsize=64)
+def _built_spline(df1: float, df2: float, prob: float) -> tuple[CubicSpline, float, float, float]:
     """The cubic spline of ``log lambda`` over ``log(F - F0)`` through brentq roots on a fixed grid, ``F0``
     and the grid's range of ``F - F0``.  Depends on (df1, df2, prob) only."""
     f0 = float(stats.f.ppf(prob, df1, df2))

@@ -10,6 +10,7 @@ standard deviations (1.4826 x the median absolute deviation) above the median of
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,24 +24,69 @@ UNUSUAL_Z = 5.0
 _BLOCK_ELEMENTS = 1 << 16
 
 
-def chunk_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
-    """Sum over the voxels of one chunk of each observation's |residual|: shape (n,).
+def sums_step(n: int) -> int:
+    """Voxels per block of :func:`block_sums` for ``n`` observations: a chunk cut at multiples of it gives the
+    same blocks, so the same sums bit for bit."""
+    return max(64, _BLOCK_ELEMENTS // max(n, 1))
 
-    ``design`` (n, p), ``y`` (n, v) and ``beta`` (p, v) from the fit of the chunk; voxels whose residuals
-    are not finite are left out.  Worked through in blocks of voxels (no (n, v) temporary).
-    """
+
+#: Blocks of :func:`sums_step` voxels handed out together by :func:`residual_blocks`.
+_STEPS_PER_BLOCK = 16
+
+
+def residual_blocks(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> Iterator[tuple[int, np.ndarray]]:
+    """``(i, R)``: the OLS residuals ``R = Y - X B`` (n, w) in float64 of the voxels from ``i`` blocks of
+    :func:`sums_step` onwards, a few such blocks at a time (no (n, v) temporary).  ``design`` (n, p), ``y`` (n, v),
+    ``beta`` (p, v)."""
     x = np.asarray(design, dtype=np.float64)
     n, v = np.shape(y)
-    total = np.zeros(n)
-    step = max(64, _BLOCK_ELEMENTS // max(n, 1))
-    for lo in range(0, v, step):
-        hi = min(lo + step, v)
+    step = sums_step(n)
+    width = step * _STEPS_PER_BLOCK
+    for lo in range(0, v, width):
+        hi = min(lo + width, v)
         resid = np.array(y[:, lo:hi], dtype=np.float64)
         resid -= x @ beta[:, lo:hi]
-        np.abs(resid, out=resid)
-        finite = np.isfinite(resid).all(axis=0)
-        total += resid[:, finite].sum(axis=1)
+        yield lo // step, resid
+
+
+def abs_sums(resid: np.ndarray) -> np.ndarray:
+    """Each observation's sum of |residual| over each block of :func:`sums_step` voxels of ``resid`` (n, w):
+    shape (blocks, n), leaving out voxels whose residuals are not finite; ``resid`` is overwritten with its
+    absolute values."""
+    n, w = resid.shape
+    step = sums_step(n)
+    np.abs(resid, out=resid)
+    finite = np.isfinite(resid).all(axis=0)
+    out = np.zeros((-(-w // step), n))
+    for i, lo in enumerate(range(0, w, step)):
+        keep = finite[lo:lo + step]
+        out[i] = resid[:, lo:lo + step][:, keep].sum(axis=1)
+    return out
+
+
+def block_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
+    """Each observation's sum of |residual| over each block of :func:`sums_step` voxels: shape (blocks, n)
+    (:func:`residual_blocks`, :func:`abs_sums`)."""
+    n, v = np.shape(y)
+    out = np.zeros((-(-v // sums_step(n)), n))
+    for i, resid in residual_blocks(design, y, beta):
+        sums = abs_sums(resid)
+        out[i:i + len(sums)] = sums
+    return out
+
+
+def add_blocks(blocks: np.ndarray, total: np.ndarray | None = None) -> np.ndarray:
+    """``total`` (zeros by default) plus the rows of :func:`block_sums`, added one after another in order."""
+    total = np.zeros(blocks.shape[1]) if total is None else total
+    for row in blocks:
+        total += row
     return total
+
+
+def chunk_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
+    """Sum over the voxels of one chunk of each observation's |residual|: shape (n,); the rows of
+    :func:`block_sums` added in order."""
+    return add_blocks(block_sums(design, y, beta))
 
 
 @dataclass
@@ -78,4 +124,5 @@ def robust_z(values: np.ndarray) -> np.ndarray:
     return (v - centre) / spread if spread > 0 else np.zeros_like(v)
 
 
-__all__ = ["UNUSUAL_Z", "ParticipantCheck", "chunk_sums", "robust_z"]
+__all__ = ["UNUSUAL_Z", "ParticipantCheck", "abs_sums", "add_blocks", "block_sums", "chunk_sums", "residual_blocks",
+           "robust_z", "sums_step"]

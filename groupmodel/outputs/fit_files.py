@@ -7,8 +7,11 @@ hypothesis go to its own folder (:mod:`.index` has the layout and writes the ind
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
+
+import numpy as np
 
 from ..text import number_text
 from .dataset import dataset_description, finish_folder
@@ -335,6 +338,37 @@ def _inference_record(fit: VoxelFit) -> dict[str, Any] | None:
     return out
 
 
+#: Threads writing maps at most (each compresses one map at a time).
+MAX_WRITE_THREADS = 4
+
+
+def write_threads() -> int:
+    """Threads for writing maps: the cores this process may use, at most :data:`MAX_WRITE_THREADS`."""
+    from ..runtime.cores import available_cores
+
+    return max(1, min(available_cores(), MAX_WRITE_THREADS))
+
+
+def _known_maps(fit: VoxelFit) -> dict[str, Callable[[], np.ndarray]]:
+    """The maps just written that the report reads, as they are in the files (float32 values, 0 outside the
+    mask, read back as float), made from the fit's arrays on demand: relative path -> maker."""
+    from ..images import unmask
+
+    n_in = int(np.count_nonzero(fit.mask))
+
+    def made(values: np.ndarray) -> Callable[[], np.ndarray]:
+        return lambda: unmask(values, fit.mask, 0.0, np.float32).astype(float)
+
+    kind = fit.grid.kind
+    known = {map_path(name, stat, kind): made(values) for name, maps in fit.maps.items()
+             for stat, values in maps.items() if np.shape(values) == (n_in,)}
+    known[map_path(None, "residual_variance", kind)] = made(fit.residual_variance)
+    if fit.mean_input is not None:
+        known[map_path(None, "mean_input", kind)] = made(fit.mean_input)
+    known[map_path(None, "mask", kind)] = lambda: np.asarray(fit.mask, dtype=float)
+    return known
+
+
 def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                     extra_writer: Callable[[OutputFolder], list[str]] | None = None,
                     pictures: bool = True, command: Sequence[str] | None = None) -> list[str]:
@@ -342,8 +376,9 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
     dataset_description.json and the index outputs.json (layout: :mod:`.index`).
 
     ``command``: the command-line arguments (recorded in dataset_description.json; default ``sys.argv``).
-    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written; the
-    report (report.html, without figures when ``pictures`` is off) is written last, from the files.
+    The design and contrast pictures (``pictures``) are drawn in a thread while the maps are written (in
+    :func:`write_threads` threads); the report (report.html, without figures when ``pictures`` is off) is
+    written last, from the files (the maps it shows from the fit's arrays: the same values).
     """
     from .report import write_report
 
@@ -354,9 +389,12 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
         written += write_model(fit.model, o, pictures=False, run=run)
         job = PictureJob(fit.model, o) if pictures else None
         try:
-            for h in fit.model.hypotheses.values():
-                written += _write_hypothesis(o, fit, h, run)
-            written += _write_residuals_and_mask(o, fit, run)
+            # the maps of the hypotheses (compression releases the GIL) in threads, listed in order
+            with ThreadPoolExecutor(write_threads(), thread_name_prefix="groupmodel-write") as pool:
+                jobs = [pool.submit(_write_hypothesis, o, fit, h, run) for h in fit.model.hypotheses.values()]
+                jobs.append(pool.submit(_write_residuals_and_mask, o, fit, run))
+                for job_done in jobs:
+                    written += job_done.result()
             written += _write_summary(o, fit, run)
             if extra_writer is not None:
                 written += extra_writer(o)
@@ -365,5 +403,6 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
             picture_names = job.join() if job is not None else []
         written[5:5] = picture_names  # listed beside the design files, as before
         written += finish_folder(o, dataset_description("voxelwise fit", fit.model.spec, command_line(command)))
-        written += write_report(o, pictures=pictures)  # last: it reads the folder through its index
+        # last: it reads the folder through its index (the maps still in memory from there)
+        written += write_report(o, pictures=pictures, known=_known_maps(fit))
     return written

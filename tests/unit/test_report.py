@@ -433,3 +433,29 @@ def test_participant_check_and_mean_image_do_not_depend_on_the_chunk_size() -> N
     many = fit_images(EXAMPLE / "model.json", chunk_voxels=97, progress=False)
     pd.testing.assert_frame_equal(one.participant_residuals, many.participant_residuals, rtol=1e-12)
     np.testing.assert_array_equal(one.mean_input, many.mean_input)  # per voxel: the same arithmetic
+
+
+@pytest.mark.parametrize("kind", ["plain", "perm", "surface", "nopics"])
+def test_report_of_a_fit_equals_the_report_built_from_its_files(runs: dict[str, Path], kind: str) -> None:
+    # A fit hands the report the maps it still holds instead of reading them back; the page must be the one
+    # built from the files alone (the reference: the report built again from the folder, as `groupmodel
+    # report DIR` does).
+    from groupmodel.outputs.report import report_html
+
+    written = (runs[kind] / "report.html").read_text(encoding="utf-8")
+    assert report_html(runs[kind], pictures=kind != "nopics") == written
+
+
+def test_maps_handed_to_the_report_equal_the_files(tmp_path: Path) -> None:
+    # Reference: nibabel reading the files just written (report.data.load_map), value for value.
+    from groupmodel.fit import fit_images, write_voxel_fit
+    from groupmodel.outputs.fit_files import _known_maps
+    from groupmodel.outputs.report.data import load_map
+
+    fit = fit_images(EXAMPLE / "model.json", progress=False)
+    write_voxel_fit(fit, tmp_path / "out", pictures=False)
+    known = _known_maps(fit)
+    assert "mask.nii.gz" in known and "mean_input.nii.gz" in known and len(known) > 20
+    for rel, made in known.items():
+        from_file = load_map(tmp_path / "out" / rel)
+        assert from_file.dtype == made().dtype and np.array_equal(made(), from_file, equal_nan=True), rel

@@ -8,7 +8,10 @@ Where the files are is known to :mod:`.locate` only.
 from __future__ import annotations
 
 import sys
+from collections.abc import Callable, Mapping
 from pathlib import Path
+
+import numpy as np
 
 from ..folder import OutputFolder
 from ..index import INDEX_NAME, write_index
@@ -27,13 +30,15 @@ from .sections import (
 REPORT_NAME = "report.html"
 
 
-def report_html(root: Path | str, pictures: bool = True, background: Path | None = None) -> str:
+def report_html(root: Path | str, pictures: bool = True, background: Path | None = None,
+                known: Mapping[str, Callable[[], np.ndarray]] | None = None) -> str:
     """The report of the output folder ``root`` as HTML text.
 
     ``pictures=False`` leaves the figures out (each says so); ``background`` is an image on the grid of the maps
-    to draw slices over (default: the mean of the input images, ``mean_input``).
+    to draw slices over (default: the mean of the input images, ``mean_input``); ``known``: maps of the folder
+    its writer still holds in memory, relative path -> the values the file holds (read instead of the file).
     """
-    d = read_folder(root)
+    d = read_folder(root, known)
     sections = [study_section(d), design_section(d, pictures), hypotheses_section(d)]
     kind = d.kind
     if kind == "voxel":
@@ -61,15 +66,17 @@ def report_html(root: Path | str, pictures: bool = True, background: Path | None
 
 
 
-def write_report(out: OutputFolder, pictures: bool = True) -> list[str]:
-    """Write report.html into an open output folder from the files already in it; returns its name.
+def write_report(out: OutputFolder, pictures: bool = True,
+                 known: Mapping[str, Callable[[], np.ndarray]] | None = None) -> list[str]:
+    """Write report.html into an open output folder from the files already in it (maps in ``known`` from
+    memory, the same values: see :func:`report_html`); returns its name.
 
     A report that cannot be built never costs the results: report.html then says what went wrong and how to
     build it again (``groupmodel report DIR --debug``), and one warning line goes to stderr.
     """
     assert out.path is not None, "use OutputFolder as a context manager"
     try:
-        text = report_html(out.path, pictures=pictures)
+        text = report_html(out.path, pictures=pictures, known=known)
     except Exception as exc:  # noqa: BLE001 - the maps and tables are worth more than the report
         problem = f"{type(exc).__name__}: {exc}"
         sys.stderr.write(f"groupmodel: warning: report.html could not be built ({problem}); the other files are "

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -29,6 +30,17 @@ class FolderData:
     summary: dict[str, Any] | None
     summary_table: pd.DataFrame | None
     residuals: pd.DataFrame | None
+    known: Mapping[str, Callable[[], np.ndarray]] = field(default_factory=dict)
+
+    def load_map(self, path: Path) -> np.ndarray:
+        """A map of the folder (:func:`load_map`), from memory when the writer of the folder handed it over
+        (``known``: relative path -> the same values as the file, as :func:`load_map` gives them)."""
+        try:
+            rel = path.relative_to(self.locations.root).as_posix()
+        except ValueError:  # e.g. a background image outside the folder
+            rel = None
+        made = self.known.get(rel) if rel is not None else None
+        return made() if made is not None else load_map(path)
 
     @property
     def kind(self) -> str:
@@ -65,8 +77,9 @@ def _tsv(path: Path | None) -> pd.DataFrame | None:
         raise InputError(f"{path}: cannot be read as a table ({exc}); rerun the build or fit") from None
 
 
-def read_folder(root: Path | str) -> FolderData:
-    """Read what the report needs (an InputError when ``root`` is not a groupmodel output folder)."""
+def read_folder(root: Path | str, known: Mapping[str, Callable[[], np.ndarray]] | None = None) -> FolderData:
+    """Read what the report needs (an InputError when ``root`` is not a groupmodel output folder); ``known``:
+    maps the writer of the folder still holds (:attr:`FolderData.known`)."""
     locs = locate(root)
     design = _json(locs.top("design.json"))
     contrasts = _json(locs.top("contrasts.json"))
@@ -80,7 +93,7 @@ def read_folder(root: Path | str) -> FolderData:
         results=_tsv(locs.top("results.tsv")), results_sidecar=_json(locs.top("results.json")),
         cell_means=_tsv(locs.top("cell_means.tsv")),
         summary=_json(locs.top("summary.json")), summary_table=_tsv(locs.top("summary.tsv")),
-        residuals=_tsv(locs.top("participants_residuals.tsv")),
+        residuals=_tsv(locs.top("participants_residuals.tsv")), known=dict(known or {}),
     )
 
 

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .data import FolderData, load_map
+from .data import FolderData
 from .page import esc, num, paragraph, table
 from .sensitivity import sensitivity
 
@@ -113,17 +113,17 @@ def sphericity_html(d: FolderData, name: str, mask: np.ndarray) -> str:
     gg_path, hf_path, pgg_path, phf_path = (locs.map(name, k) for k in ("epsilon_gg", "epsilon_hf", "p_gg", "p_hf"))
     if gg_path is None or hf_path is None:
         return ""
-    gg, hf = load_map(gg_path)[mask], load_map(hf_path)[mask]
+    gg, hf = d.load_map(gg_path)[mask], d.load_map(hf_path)[mask]
     words = (f"Sphericity (F with more than one within df): Greenhouse-Geisser epsilon median "
              f"{num(float(np.nanmedian(gg)))} (2nd to 98th percentile {num(float(np.nanpercentile(gg, 2)))} to "
              f"{num(float(np.nanpercentile(gg, 98)))}), Huynh-Feldt epsilon median {num(float(np.nanmedian(hf)))}; "
              "1 means sphericity holds, the lower bound is 1/(within df).")
     if pgg_path is not None:
-        pgg = load_map(pgg_path)[mask]
+        pgg = d.load_map(pgg_path)[mask]
         words += (f" {int(np.count_nonzero(pgg < 0.05))} of {pgg.size} with the Greenhouse-Geisser corrected "
                   "p < 0.05 (uncorrected for multiple comparisons; map p_gg)")
         if phf_path is not None:
-            words += f", {int(np.count_nonzero(load_map(phf_path)[mask] < 0.05))} with the Huynh-Feldt corrected p"
+            words += f", {int(np.count_nonzero(d.load_map(phf_path)[mask] < 0.05))} with the Huynh-Feldt corrected p"
         words += "."
     return paragraph(words)
 

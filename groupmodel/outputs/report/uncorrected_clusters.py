@@ -23,8 +23,11 @@ def _label(mask: np.ndarray, marks: np.ndarray) -> Clusters:
         volume[mask] = marks == sign
         lab, count = ndimage.label(volume, structure=np.ones((3, 3, 3), dtype=bool))
         in_mask = lab[mask]
-        for c in range(1, count + 1):
-            members = np.flatnonzero(in_mask == c)
+        # the members of every cluster at once: elements sorted by label (stable: in mask order within one)
+        order = np.argsort(in_mask, kind="stable")
+        edges = np.searchsorted(in_mask[order], np.arange(1, count + 2))
+        for c in range(count):
+            members = order[edges[c]:edges[c + 1]]
             found.append((-members.size, int(members[0]), sign, members))
     found.sort(key=lambda f: (f[0], f[1]))
     for number, (_, _, _, members) in enumerate(found, start=1):

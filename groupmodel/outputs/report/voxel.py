@@ -12,7 +12,7 @@ import pandas as pd
 
 from ...engine.participant_check import UNUSUAL_Z
 from ...errors import InputError
-from .data import FolderData, load_map
+from .data import FolderData
 from .page import esc, figure, num, paragraph, table
 from .picture import Picture
 from .strata import sphericity_html, strata_of, stratum_paragraph
@@ -44,10 +44,10 @@ def open_grid(d: FolderData, background: Path | None) -> Grid:
     mask_path = locs.map(None, "mask")
     if mask_path is None:
         raise FileNotFoundError("mask")
-    mask = load_map(mask_path) > 0
+    mask = d.load_map(mask_path) > 0
     surface = mask.ndim == 1
     bg_path = background if background is not None else locs.map(None, "mean_input")
-    bg = load_map(bg_path) if bg_path is not None and not surface else None
+    bg = d.load_map(bg_path) if bg_path is not None and not surface else None
     if bg is not None and bg.ndim > 3:
         bg = bg[..., 0]
     if bg is not None and bg.shape != mask.shape:
@@ -100,11 +100,11 @@ def _threshold(d: FolderData, name: str, grid: Grid) -> tuple[np.ndarray | None,
     for stat, words in CORRECTED:
         path = locs.map(name, stat)
         if path is not None:
-            return _masked(load_map(path), grid) < 0.05, f"{words} p < 0.05 (corrected)"
+            return _masked(d.load_map(path), grid) < 0.05, f"{words} p < 0.05 (corrected)"
     path = locs.map(name, "p")
     if path is None:
         return None, ""
-    return (_masked(load_map(path), grid) < UNCORRECTED_P,
+    return (_masked(d.load_map(path), grid) < UNCORRECTED_P,
             f"p < {num(UNCORRECTED_P)} UNCORRECTED (no permutation results in this folder)")
 
 
@@ -116,8 +116,8 @@ def _hypothesis(d: FolderData, grid: Grid, name: str, pictures: bool) -> str:
     z_path, p_path = locs.map(name, "z"), locs.map(name, "p")
     if z_path is None or p_path is None:
         return "".join(parts) + paragraph("No z or p map in this folder.", "note")
-    z = _masked(load_map(z_path), grid)
-    p = _masked(load_map(p_path), grid)
+    z = _masked(d.load_map(z_path), grid)
+    p = _masked(d.load_map(p_path), grid)
     shown, words = _threshold(d, name, grid)
     assert shown is not None
     parts.append(paragraph(f"Shown: {int(np.count_nonzero(shown))} of {z.size} {grid.elements} at {words}."))
@@ -203,7 +203,7 @@ def _residuals(d: FolderData, grid: Grid, pictures: bool) -> str:
     parts = []
     path = d.locations.map(None, "residual_variance")
     if path is not None:
-        sd = np.sqrt(np.clip(_masked(load_map(path), grid), 0, None))
+        sd = np.sqrt(np.clip(_masked(d.load_map(path), grid), 0, None))
         of = (" (of the participants' averages over the within cells: the between stratum)"
               if strata_of(d) is not None else "")
         parts.append(paragraph(f"Residual SD{of} over the mask: median {num(float(np.median(sd)))}, "
@@ -254,8 +254,8 @@ def median_residual_sd(d: FolderData) -> float | None:
     mpath = d.locations.map(None, "mask")
     if path is None or mpath is None:
         return None
-    mask = load_map(mpath) > 0
-    return float(np.median(np.sqrt(np.clip(load_map(path)[mask], 0, None))))
+    mask = d.load_map(mpath) > 0
+    return float(np.median(np.sqrt(np.clip(d.load_map(path)[mask], 0, None))))
 
 
 def n_in_mask(d: FolderData) -> int:

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from ..engine.ols import Prepared, prepare
+from ..engine.peaks import peak_element
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
@@ -115,7 +116,8 @@ class VoxelFit:
         return elements_of(self.grid)
 
     def summary(self) -> pd.DataFrame:
-        """Per hypothesis: test, df, peak |statistic|, peak z, voxels (vertices for surface data) with
+        """Per hypothesis: test, df, the peak statistic in the test's direction and its z
+        (:func:`groupmodel.engine.peaks.peak_element`), voxels (vertices for surface data) with
         p < 0.001 and p < 0.05 (uncorrected) and with corrected p < 0.05."""
         rows = []
         for h in self.model.hypotheses.values():
@@ -123,6 +125,7 @@ class VoxelFit:
             stat = statistic_map(m)
             # NaN statistics (zero-variance voxels) are not tested; no tested voxel at all gives NaN peaks
             tested = ~np.isnan(stat)
+            peak = peak_element(stat, h.tail)
             rows.append({
                 "hypothesis": h.name,
                 "test": h.test,
@@ -130,8 +133,8 @@ class VoxelFit:
                 "df1": self.df_of(h.name)[0],
                 # with variance groups df2 is approximate and per voxel: its median over the tested voxels
                 "df2": float(np.nanmedian(m["df2"])) if "df2" in m and tested.any() else self.df_of(h.name)[1],
-                "peak_statistic": float(stat[np.nanargmax(np.abs(stat))]) if tested.any() else np.nan,
-                "peak_z": float(np.max(m["z"][tested])) if tested.any() else np.nan,
+                "peak_statistic": float(stat[peak]) if peak is not None else np.nan,
+                "peak_z": float(m["z"][peak]) if peak is not None else np.nan,
                 f"{self.elements}_p_lt_0.001": int(np.count_nonzero(m["p"] < 1e-3)),
                 f"{self.elements}_p_lt_0.05": int(np.count_nonzero(m["p"] < 0.05)),
                 **{f"{self.elements}_{k}_lt_0.05": int(np.count_nonzero(m[k] < 0.05))

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from ..engine.peaks import peak_element
 from .index import table_path
 from .numbers import tidy
 
@@ -26,13 +27,10 @@ VERTEX_PEAK_COLUMNS = ("peak_vertex",)
 
 
 def _peak_element(fit: VoxelFit, name: str) -> int | None:
-    """Mask position of the peak |statistic| of a hypothesis (as in VoxelFit.summary); None if nothing tested."""
+    """:func:`peak_element` of hypothesis ``name`` (t or F, or with variance groups v or G)."""
     m = fit.maps[name]
-    # t or F, or with variance groups v or G (the order VoxelFit.summary reads them in)
     stat = next(m[k] for k in ("t", "F", "v", "G") if k in m)
-    if not np.any(~np.isnan(stat)):
-        return None
-    return int(np.nanargmax(np.abs(stat)))
+    return peak_element(stat, fit.model.hypotheses[name].tail)
 
 
 def peak_location(fit: VoxelFit, name: str) -> dict[str, Any]:
@@ -92,8 +90,10 @@ def summary_columns(fit: VoxelFit) -> dict[str, str]:
     el = fit.elements
     one = "vertex" if el == "vertices" else "voxel"
     out = {
-        "peak_statistic": f"the statistic (t or F) of largest absolute value over the {el} tested",
-        "peak_z": "largest z over the tested elements (z of equal p, signed like t)",
+        "peak_statistic": (f"the peak statistic over the {el} tested, in the direction of the test: the largest "
+                           "t for tail greater, the smallest for tail less, the largest |t| for two-sided t "
+                           "tests (signed), the largest F"),
+        "peak_z": "z at the peak (z of equal p, signed like t)",
         f"{el}_<p>_lt_<level>": f"{el} whose p map <p> (p uncorrected, p_fdr, p_fwe, ...) is below <level>",
         "clusters_<kind>": (f"clusters with FWE p < {CLUSTER_ALPHA} in the cluster table "
                             f"{table_path('<hypothesis>', 'clusters_<kind>')}"),

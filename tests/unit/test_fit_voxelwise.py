@@ -153,9 +153,34 @@ def test_summary_counts(base_fit: VoxelFit) -> None:
         stat = m["t"] if row["test"] == "t" else m["F"]
         assert row["voxels_p_lt_0.001"] == int(np.sum(m["p"] < 1e-3))
         assert row["voxels_p_lt_0.05"] == int(np.sum(m["p"] < 0.05))
-        assert abs(row["peak_statistic"]) == pytest.approx(float(np.max(np.abs(stat))), rel=1e-15)
-        assert row["peak_z"] == pytest.approx(float(np.max(m["z"])), rel=1e-15)
+        # the peak in the test's direction; z is monotone in t (and in F) at fixed df, so the peak z is the
+        # extreme z in that direction
+        if row["tail"] == "greater" or row["test"] == "F":
+            want, want_z = np.max(stat), np.max(m["z"])
+        elif row["tail"] == "less":
+            want, want_z = np.min(stat), np.min(m["z"])
+        else:
+            want, want_z = stat[np.argmax(np.abs(stat))], m["z"][np.argmax(np.abs(m["z"]))]
+        assert row["peak_statistic"] == pytest.approx(float(want), rel=1e-15)
+        assert row["peak_z"] == pytest.approx(float(want_z), rel=1e-12)
         assert row["df2"] == base_fit.df_resid
+    # each direction at least once here: a one-sided test whose largest |t| lies on the other side (the peak
+    # is then not the largest |t|), and two-sided tests
+    one_sided = [h for h, spec in HYPOTHESES.items() if spec.get("tail") in ("greater", "less")]
+    flipped = [h for h in one_sided if (np.max(base_fit.maps[h]["t"]) > -np.min(base_fit.maps[h]["t"]))
+               != (HYPOTHESES[h]["tail"] == "greater")]
+    assert flipped, "the study should have a one-sided test whose largest |t| is on the other side"
+
+
+def test_peak_element_follows_the_direction_of_the_test() -> None:
+    from groupmodel.engine.peaks import peak_element
+
+    stat = np.array([1.0, -5.0, 3.0, np.nan])
+    assert peak_element(stat, "greater") == 2
+    assert peak_element(stat, "less") == 1
+    assert peak_element(stat, "two-sided") == 1
+    assert peak_element(np.abs(stat), "upper") == 1  # F
+    assert peak_element(np.full(3, np.nan), "greater") is None
 
 
 # ----------------------------------------------------------------------------- invariance

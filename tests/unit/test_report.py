@@ -459,3 +459,11 @@ def test_maps_handed_to_the_report_equal_the_files(tmp_path: Path) -> None:
     for rel, made in known.items():
         from_file = load_map(tmp_path / "out" / rel)
         assert from_file.dtype == made().dtype and np.array_equal(made(), from_file, equal_nan=True), rel
+
+
+def test_surface_report_without_permutations_speaks_of_vertices(tmp_path: Path) -> None:
+    surface = make_surface_study(tmp_path / "surface_study")
+    assert main(["fit", str(surface), "--out", str(tmp_path / "out"), "--no-pictures"]) == 0
+    text, _ = read_page(tmp_path / "out")
+    assert "the vertex tables mark the vertices past an uncorrected level" in text
+    assert "slices" not in text.lower()

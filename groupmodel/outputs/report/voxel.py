@@ -80,8 +80,9 @@ def _overview(d: FolderData, grid: Grid) -> str:
         parts.append(paragraph(f"Permutation inference: {inf.get('permutations')} rearrangements, seed "
                                f"{inf.get('seed')}, TFCE {'on' if inf.get('tfce') else 'off'}."))
     else:
-        parts.append(paragraph("No permutation inference: slices are thresholded at an uncorrected level, "
-                               "labelled as such."))
+        shown = ("the vertex tables mark the vertices past an uncorrected level" if grid.surface
+                 else "slices are thresholded at an uncorrected level")
+        parts.append(paragraph(f"No permutation inference: {shown}, labelled as such."))
     for w in s.get("warnings", []):
         parts.append(paragraph("Warning: " + w, "finding-warning"))
     if d.summary_table is not None:

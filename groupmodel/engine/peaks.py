@@ -1,0 +1,21 @@
+"""The peak of a statistic map: where a test looks for its strongest evidence."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["peak_element"]
+
+
+def peak_element(stat: np.ndarray, tail: str) -> int | None:
+    """Position of the peak of a statistic map in the direction its test looks (None if nothing was tested):
+    the largest t (or Welch's v) for ``greater``, the smallest for ``less``, the largest |t| for two-sided tests,
+    the largest F (or G; its tail is ``upper``).  NaN (untested) elements are skipped."""
+    stat = np.asarray(stat, dtype=np.float64)
+    if not np.any(~np.isnan(stat)):
+        return None
+    if tail == "greater":
+        return int(np.nanargmax(stat))
+    if tail == "less":
+        return int(np.nanargmin(stat))
+    return int(np.nanargmax(np.abs(stat)))

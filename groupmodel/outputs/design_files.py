@@ -6,6 +6,7 @@
 from __future__ import annotations
 
 import dataclasses
+import io
 import threading
 from collections.abc import Sequence
 from pathlib import Path
@@ -136,39 +137,69 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True,
     return names
 
 
-def draw_pictures(model: Model, out: OutputFolder) -> list[str]:
-    """design.png and contrasts.png (imports matplotlib); returns the file names."""
+#: The pictures of a model, in the order they are listed.
+PICTURES = ("design.png", "contrasts.png")
+
+
+def picture_bytes(model: Model) -> dict[str, bytes]:
+    """design.png and contrasts.png as PNG bytes (imports matplotlib)."""
+    return pictures_of(_what_is_drawn(model))
+
+
+def pictures_of(drawn: tuple[Any, ...]) -> dict[str, bytes]:
+    """The pictures of :func:`_what_is_drawn`'s parts (plain arrays and strings: they pickle, for a worker
+    process)."""
     from .figures import plot_contrasts, plot_design
 
-    plot_design(out.file("design.png"), tidy(model.design.matrix, axis=0), model.design.column_names,
-                model.design.participant_ids)
+    matrix, columns, ids, rows, labels, tests = drawn
+    design, contrasts = io.BytesIO(), io.BytesIO()
+    plot_design(design, tidy(matrix, axis=0), list(columns), list(ids))
+    plot_contrasts(contrasts, tidy(rows, axis=1), list(labels), list(columns), list(tests))
+    return {"design.png": design.getvalue(), "contrasts.png": contrasts.getvalue()}
+
+
+def draw_pictures(model: Model, out: OutputFolder) -> list[str]:
+    """design.png and contrasts.png (imports matplotlib); returns the file names."""
+    return _write_pictures(picture_bytes(model), out)
+
+
+def _write_pictures(pictures: dict[str, bytes], out: OutputFolder) -> list[str]:
+    for name in PICTURES:
+        out.file(name).write_bytes(pictures[name])
+    return list(PICTURES)
+
+
+def _what_is_drawn(model: Model) -> tuple[Any, ...]:
+    """What the pictures of a model show: the design, its columns and rows, the contrast rows and labels."""
     rows, labels, tests = model.contrast_rows()
-    plot_contrasts(out.file("contrasts.png"), tidy(rows, axis=1), labels, model.design.column_names, tests)
-    return ["design.png", "contrasts.png"]
+    return (model.design.matrix, tuple(model.design.column_names), tuple(model.design.participant_ids),
+            np.asarray(rows), tuple(labels), tuple(tests))
 
 
 class PictureJob:
-    """The pictures of a model drawn in a background thread (matplotlib's import and drawing overlap other
-    writing); :meth:`join` waits and returns the file names, or raises what the drawing raised."""
+    """The pictures of a model drawn in memory in a background thread (matplotlib's import and drawing overlap
+    the writing of the maps); :meth:`write` waits and writes them into an output folder, or raises what the
+    drawing raised."""
 
-    def __init__(self, model: Model, out: OutputFolder) -> None:
-        self._names: list[str] = []
+    def __init__(self, model: Model) -> None:
+        self._drawn = _what_is_drawn(model)
+        self._pictures: dict[str, bytes] = {}
         self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._run, args=(model, out), name="groupmodel-pictures",
-                                        daemon=True)
+        self._thread = threading.Thread(target=self._run, name="groupmodel-pictures", daemon=True)
         self._thread.start()
 
-    def _run(self, model: Model, out: OutputFolder) -> None:
+    def _run(self) -> None:
         try:
-            self._names = draw_pictures(model, out)
-        except BaseException as exc:  # handed to join()
+            self._pictures = pictures_of(self._drawn)
+        except BaseException as exc:  # handed to write()
             self._error = exc
 
-    def join(self) -> list[str]:
+    def write(self, out: OutputFolder) -> list[str]:
+        """Wait for the drawing and write the pictures into ``out``; returns their names."""
         self._thread.join()
         if self._error is not None:
             raise self._error
-        return self._names
+        return _write_pictures(self._pictures, out)
 
 
 def write_build(model: Model, o: OutputFolder, pictures: bool = True, command: Sequence[str] | None = None,

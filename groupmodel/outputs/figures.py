@@ -15,6 +15,7 @@ from __future__ import annotations
 import textwrap
 from collections.abc import Sequence
 from pathlib import Path
+from typing import BinaryIO
 
 import matplotlib
 
@@ -65,8 +66,8 @@ def _caption(ax: plt.Axes, lines: list[str]) -> None:
     ax.set_xlabel("\n".join(lines), fontsize=_CAPTION_SIZE, labelpad=8)
 
 
-def _save(fig: plt.Figure, path: Path) -> None:
-    fig.savefig(path, dpi=DPI)
+def _save(fig: plt.Figure, path: Path | BinaryIO) -> None:
+    fig.savefig(path, dpi=DPI, format="png")
     plt.close(fig)
 
 
@@ -76,7 +77,7 @@ def _column_labels(ax: plt.Axes, column_names: Sequence[str]) -> None:
     ax.xaxis.tick_top()
 
 
-def plot_design(path: Path, matrix: np.ndarray, column_names: Sequence[str], row_names: Sequence[str],
+def plot_design(path: Path | BinaryIO, matrix: np.ndarray, column_names: Sequence[str], row_names: Sequence[str],
                 title: str = "design") -> None:
     """Write a PNG of the design: rows are observations, columns are regressors."""
     _save(design_figure(matrix, column_names, row_names, title), path)
@@ -129,7 +130,7 @@ def _number_colours(scaled: np.ndarray) -> np.ndarray:
     return np.where(on_white > on_black, "white", "black")
 
 
-def plot_contrasts(path: Path, rows: np.ndarray, row_labels: Sequence[str], column_names: Sequence[str],
+def plot_contrasts(path: Path | BinaryIO, rows: np.ndarray, row_labels: Sequence[str], column_names: Sequence[str],
                    tests: Sequence[str]) -> None:
     """Write a PNG of all contrast rows over the design columns, with their weights written in."""
     _save(contrasts_figure(rows, row_labels, column_names, tests), path)

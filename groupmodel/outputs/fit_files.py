@@ -387,7 +387,7 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
     run = run_record(fit.inputs or RunInputs.of_spec(fit.model.spec, sample=fit.model.sample), fit.clock)
     with folder as o:
         written += write_model(fit.model, o, pictures=False, run=run)
-        job = PictureJob(fit.model, o) if pictures else None
+        job = PictureJob(fit.model) if pictures else None
         try:
             # the maps of the hypotheses (compression releases the GIL) in threads, listed in order
             with ThreadPoolExecutor(write_threads(), thread_name_prefix="groupmodel-write") as pool:
@@ -400,9 +400,9 @@ def write_voxel_fit(fit: VoxelFit, out: Path | str, force: bool = False,
                 written += extra_writer(o)
         finally:
             # never leave the thread writing into a folder that is being removed
-            picture_names = job.join() if job is not None else []
+            picture_names = job.write(o) if job is not None else []
         written[5:5] = picture_names  # listed beside the design files, as before
         written += finish_folder(o, dataset_description("voxelwise fit", fit.model.spec, command_line(command)))
         # last: it reads the folder through its index (the maps still in memory from there)
-        written += write_report(o, pictures=pictures, known=_known_maps(fit))
+        written += write_report(o, pictures=job is not None, known=_known_maps(fit))
     return written

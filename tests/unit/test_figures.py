@@ -16,6 +16,8 @@ from groupmodel.outputs.figures import (
     _number_colours,
     contrasts_figure,
     design_figure,
+    plot_contrasts,
+    plot_design,
     relative_luminance,
 )
 
@@ -84,3 +86,42 @@ def test_numbers_in_cells_contrast_with_every_colour_of_the_palette() -> None:
     written = {t.get_text(): t.get_color() for t in fig.axes[0].texts}
     assert written == {"1": "white", "-1": "white", "0.1": "black"}
     plt.close(fig)
+
+
+def test_pictures_drawn_in_memory_equal_the_pictures_drawn_to_files(tmp_path) -> None:
+    # The fit draws its pictures into memory in a thread and writes the bytes later; reference: the same
+    # figures saved straight to files by matplotlib.
+    from pathlib import Path
+
+    from groupmodel.model.assembly import build
+    from groupmodel.model.spec import load_spec
+    from groupmodel.outputs.design_files import PictureJob
+    from groupmodel.outputs.folder import OutputFolder
+    from groupmodel.outputs.numbers import tidy
+
+    example = Path(__file__).resolve().parents[2] / "example_study"
+    model = build(load_spec(example / "model.json"))
+    with OutputFolder(tmp_path / "out") as o:
+        assert PictureJob(model).write(o) == ["design.png", "contrasts.png"]
+    d = model.design
+    plot_design(tmp_path / "design.png", tidy(d.matrix, axis=0), d.column_names, d.participant_ids)
+    rows, labels, tests = model.contrast_rows()
+    plot_contrasts(tmp_path / "contrasts.png", tidy(rows, axis=1), labels, d.column_names, tests)
+    for name in ("design.png", "contrasts.png"):
+        assert (tmp_path / "out" / name).read_bytes() == (tmp_path / name).read_bytes()
+
+
+def test_a_failed_drawing_is_raised_when_written(monkeypatch: pytest.MonkeyPatch) -> None:
+    from pathlib import Path
+
+    import groupmodel.outputs.design_files as design_files
+    from groupmodel.model.assembly import build
+    from groupmodel.model.spec import load_spec
+
+    def broken(drawn):
+        raise RuntimeError("no pictures")
+
+    monkeypatch.setattr(design_files, "pictures_of", broken)
+    model = build(load_spec(Path(__file__).resolve().parents[2] / "example_study" / "model.json"))
+    with pytest.raises(RuntimeError, match="no pictures"):
+        design_files.PictureJob(model).write(None)  # type: ignore[arg-type]

@@ -442,7 +442,8 @@ def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget
             return strata_permutation_inference(model, data, options, budget.permutation_bytes, chunk_voxels,
                                                 progress=report, checkpoint=checkpoint)
         if welch is not None:
-            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report, cluster=session)
+            return welch_permutation_inference(model, welch, data, options, chunk_voxels, report, cluster=session,
+                                               checkpoint=checkpoint)
         return permutation_inference(model, data, options, cache_bytes=budget.permutation_bytes,
                                      maps_bytes=budget.permutation_bytes, chunk_voxels=chunk_voxels,
                                      progress=report, checkpoint=checkpoint, cluster=session)

@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
+from ..inference.checkpoint import BatchState
 from ..inference.freedman_lane import moves_with_mean, partition
 from ..inference.rearrangements import permutation_set
 from ..inference.results import PermutationResult, fwe_p
@@ -89,10 +90,12 @@ def welch_method(h: Any, setting: str, interest_moves: bool, mean_moves: bool) -
 
 def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, options: InferenceOptions,
                                 chunk_voxels: int,
-                                progress: Callable[[str, int, int], None] | None = None, cluster: Any = None
-                                ) -> dict[str, HypothesisInference]:
+                                progress: Callable[[str, int, int], None] | None = None, cluster: Any = None,
+                                checkpoint: Any = None) -> dict[str, HypothesisInference]:
     """Max-statistic permutation inference with v / G for every hypothesis (see the module notes); on the
-    Dask cluster of ``cluster`` (:class:`~.cluster_fit.ClusterSession`) when given, with the same results."""
+    Dask cluster of ``cluster`` (:class:`~.cluster_fit.ClusterSession`) when given, with the same results.
+    ``checkpoint`` (:class:`~groupmodel.inference.checkpoint.CheckpointFolder`): here, each hypothesis's
+    state is saved after chunks of elements and a run resumes after the last chunk saved."""
     x = model.design.matrix
     user_blocks = block_labels(model, options.blocks) if options.blocks else None
     blocks = _combined_blocks(setup.groups.labels, user_blocks)
@@ -112,7 +115,10 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
                 progress(_name, done, total)
 
         if cluster is None:
-            totals = _run(plan, pset, data, chunk_voxels, report)
+            saved = None if checkpoint is None else checkpoint.contrast(h.name, {
+                "permutations": options.permutations, "seed": options.seed, "method": method,
+                "statistic": "v" if h.test == "t" else "G"})
+            totals = _run(plan, pset, data, chunk_voxels, report, saved)
         else:
             totals = _on_cluster(cluster, plan, pset, chunk_voxels, report)
         res = _result(plan, pset, h, totals)
@@ -129,26 +135,53 @@ def welch_permutation_inference(model: Any, setup: WelchSetup, data: Any, option
 
 
 def _run(plan: WelchNullPlan, pset: Any, data: Any, chunk_voxels: int,
-         progress: Callable[[int, int], None]) -> WelchTotals:
-    """Counts and maxima over chunks (outer) and batches (inner); combined by sum and max."""
+         progress: Callable[[int, int], None], saved: Any = None) -> WelchTotals:
+    """Counts and maxima over chunks (outer) and batches (inner); combined by sum and max.  With ``saved`` (a
+    :class:`~groupmodel.inference.checkpoint.ContrastCheckpoint`), the elements it holds are not run again and
+    the state is saved after chunks; every element's values depend on that element only and maxima combine
+    exactly, so a resumed run gives the same bits whatever the chunks."""
     n_vox = data.n_in_mask
     J = pset.size
     totals = WelchTotals(np.full(n_vox, np.nan), np.zeros(n_vox, dtype=np.int64), np.full(J, -np.inf))
     stat, counts, maxima = totals.stat, totals.counts, totals.maxima
+    start = _restore(totals, saved.load() if saved is not None else None, J)
     chunks = list(range(0, n_vox, chunk_voxels)) or [0]
     for i, (cols, y) in enumerate(data.chunks(chunk_voxels)):
+        if cols.stop <= start:
+            continue
+        if cols.start < start:  # saved with other chunks: go on from the first element not done
+            y, cols = y[:, start - cols.start:], slice(start, cols.stop)
         observed = None
-        for start in range(0, J, BATCH_SIZE):
-            stop = min(J, start + BATCH_SIZE)
-            perm, flips = pset.batch(start, stop)
+        for first in range(0, J, BATCH_SIZE):
+            stop = min(J, first + BATCH_SIZE)
+            perm, flips = pset.batch(first, stop)
             got = welch_batch(plan, perm, flips, y, observed)
             if got.stat is not None:
                 stat[cols] = got.stat
                 observed = oriented_welch(plan, got.stat)
             counts[cols] += got.counts
-            np.maximum(maxima[start:stop], got.maxima, out=maxima[start:stop])
+            np.maximum(maxima[first:stop], got.maxima, out=maxima[first:stop])
             progress(min(J, (i * J + stop) // len(chunks)), J)
+        if saved is not None and saved.due(final=cols.stop >= n_vox):
+            saved.save(BatchState(J if cols.stop >= n_vox else 0, counts, maxima, None, None, stat=stat,
+                                  elements_done=cols.stop))
     return totals
+
+
+def _restore(totals: WelchTotals, state: BatchState | None, J: int) -> int:
+    """Put back a saved state (elements done in order, with their statistics); returns where to go on from."""
+    if state is None:
+        return 0
+    n_vox = totals.stat.size
+    if state.stat is None or state.elements_done is None or state.count.size != n_vox or state.max_null.size != J:
+        raise InputError(
+            f"the checkpoint holds {state.count.size} elements and {state.max_null.size} rearrangements of another "
+            f"kind of run, this run {n_vox} and {J} with variance groups; resume with the same command, or remove "
+            "the checkpoint")
+    totals.stat[:] = state.stat
+    totals.counts[:] = state.count
+    totals.maxima[:] = state.max_null
+    return int(state.elements_done)
 
 
 def _on_cluster(cluster: Any, plan: WelchNullPlan, pset: Any, chunk_voxels: int,

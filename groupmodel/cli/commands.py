@@ -206,7 +206,7 @@ def open_checkpoint(args: argparse.Namespace, spec: Any, options: Any) -> Any:
     saved = folder.progress()
     if args.resume:
         done = ", ".join(f"{name} {k}" for name, k in saved.items()) or "nothing saved yet"
-        print(f"resuming from {args.checkpoint}: rearrangements done per hypothesis: {done}")
+        print(f"resuming from {args.checkpoint}: done per hypothesis: {done}")
     return folder
 
 

@@ -34,13 +34,21 @@ PARAMETERS = "parameters.json"
 
 @dataclass(frozen=True)
 class BatchState:
-    """The state after the rearrangements ``0 .. done - 1``: counts per element, maxima per rearrangement."""
+    """The state after the rearrangements ``0 .. done - 1``: counts per element, maxima per rearrangement.
+
+    Runs that take the elements in the outer loop (variance groups: every rearrangement of one chunk of
+    elements, then the next chunk) save instead the state after the elements ``0 .. elements_done - 1``, with
+    their observed statistics ``stat``; ``done`` is then the number of rearrangements counted for every
+    element (0 until the last chunk).
+    """
 
     done: int
     count: np.ndarray
     max_null: np.ndarray
     tfce_max: np.ndarray | None
     cluster_max: np.ndarray | None
+    stat: np.ndarray | None = None
+    elements_done: int | None = None
 
 
 class ContrastCheckpoint:
@@ -64,7 +72,9 @@ class ContrastCheckpoint:
                     )
                 return BatchState(int(z["done"]), z["count"], z["max_null"],
                                   z["tfce_max"] if "tfce_max" in z else None,
-                                  z["cluster_max"] if "cluster_max" in z else None)
+                                  z["cluster_max"] if "cluster_max" in z else None,
+                                  z["stat"] if "stat" in z else None,
+                                  int(z["elements_done"]) if "elements_done" in z else None)
         except (OSError, ValueError, KeyError) as exc:
             raise InputError(f"checkpoint {self.path}: unreadable ({exc}); remove it to start again") from exc
 
@@ -78,6 +88,10 @@ class ContrastCheckpoint:
             arrays["tfce_max"] = state.tfce_max
         if state.cluster_max is not None:
             arrays["cluster_max"] = state.cluster_max
+        if state.stat is not None:
+            arrays["stat"] = state.stat
+        if state.elements_done is not None:
+            arrays["elements_done"] = np.array(state.elements_done)
         tmp = self.path.with_name(f".{self.path.name}.{os.getpid()}.tmp")
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
@@ -123,13 +137,17 @@ class CheckpointFolder:
             self.folder.mkdir(parents=True, exist_ok=True)
             record.write_text(json.dumps(self.parameters, indent=2, sort_keys=True) + "\n", encoding="utf-8")
 
-    def progress(self) -> dict[str, int]:
-        """Contrast file name -> rearrangements saved (what a resume starts from)."""
+    def progress(self) -> dict[str, str]:
+        """Contrast file name -> what a resume starts from, in words (``300 rearrangements``, or with variance
+        groups ``1200 of 5000 elements``)."""
         out = {}
         for p in sorted(self.folder.glob("*.npz")):
             try:
                 with np.load(p, allow_pickle=False) as z:
-                    out[p.stem] = int(z["done"])
+                    if "elements_done" in z:
+                        out[p.stem] = f"{int(z['elements_done'])} of {int(z['count'].size)} elements"
+                    else:
+                        out[p.stem] = f"{int(z['done'])} rearrangements"
             except (OSError, ValueError, KeyError, EOFError):
                 continue
         return out

@@ -217,3 +217,55 @@ def test_pooled_voxel_fit_warns_with_levene(tmp_path: Path) -> None:
     assert len(found) == 1 and found[0].startswith(f"in {hits} of {data.shape[1]} voxels"), (found, hits)
     assert '"variance_groups": "group"' in found[0]
     assert "t" in fit.maps["patient_vs_control"] and fit.variance_groups is None
+
+
+class _Stop(Exception):
+    pass
+
+
+def test_checkpoint_resume_with_variance_groups_gives_identical_maps(tmp_path: Path) -> None:
+    # Stopped after some chunks of voxels (every rearrangement of a chunk is run before the next chunk), resumed
+    # with other chunks: the maps equal those of a run never stopped, bit for bit (counts and maxima are exact).
+    from groupmodel.inference.checkpoint import CheckpointFolder
+    from groupmodel.runtime.log import StageLog
+
+    spec, _, _ = _study(tmp_path, HYPOTHESES)
+    options = InferenceOptions(permutations=150, seed=4)
+    whole = fit_images(spec, progress=False, chunk_voxels=7, inference=options)
+
+    class StopLog(StageLog):
+        def progress(self, name: str, done: int, total: int, unit: str = "") -> None:
+            if name == "permutations" and done >= 150 + 80:  # the first hypothesis done, the second mid-way
+                raise _Stop
+
+    params = {"spec": "model.json"}
+    with pytest.raises(_Stop):
+        fit_images(spec, progress=False, chunk_voxels=7, inference=options, log=StopLog(quiet=True),
+                   checkpoint=CheckpointFolder(tmp_path / "ck", params, resume=False, every=0))
+    saved = CheckpointFolder(tmp_path / "ck", params, resume=True, every=0)
+    progress = saved.progress()
+    n_vox = whole.maps["group"]["p"].size
+    assert progress["patient_vs_control"] == f"{n_vox} of {n_vox} elements", progress
+    done = int(progress["group"].split()[0])
+    assert 0 < done < n_vox, progress
+    resumed = fit_images(spec, progress=False, chunk_voxels=5, inference=options, checkpoint=saved)
+    for name in whole.maps:
+        for stat in ("p_perm", "p_fwe"):
+            assert np.array_equal(whole.maps[name][stat], resumed.maps[name][stat], equal_nan=True), (name, stat)
+    # a pooled run's checkpoint is not taken for a run with variance groups
+    with pytest.raises(InputError, match="not for this contrast"):
+        _pooled_then_welch(tmp_path, spec, options)
+
+
+def _pooled_then_welch(tmp_path: Path, spec: Path, options: InferenceOptions) -> None:
+    """A pooled fit's checkpoint folder, then the variance-groups fit resumed from it."""
+    from groupmodel.inference.checkpoint import CheckpointFolder
+
+    pooled = json.loads(spec.read_text())
+    pooled.pop("variance_groups")
+    (spec.parent / "pooled.json").write_text(json.dumps(pooled))
+    folder = tmp_path / "ck_pooled"
+    fit_images(spec.parent / "pooled.json", progress=False, inference=options,
+               checkpoint=CheckpointFolder(folder, {"spec": "x"}, resume=False, every=0))
+    fit_images(spec, progress=False, inference=options,
+               checkpoint=CheckpointFolder(folder, {"spec": "x"}, resume=True, every=0))

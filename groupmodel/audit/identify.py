@@ -98,25 +98,44 @@ def identify_columns(req: Request, files: Files, alignment: Alignment) -> Identi
     means = {c: float(view.covariates[c][view.known].mean()) for c in used_c}
     sds = {c: float(view.covariates[c][view.known].std(ddof=1)) for c in used_c}
     describe_roles(roles, view, means, sds)
-    hd, cells = _hand_design(files, table, align, (view, roles), (used_f, used_c, means, sds))
+    names = _unexplained_names(req, files, view, align, roles)
+    hd, cells = _hand_design(files, table, align, (view, roles, names), (used_f, used_c, means, sds))
     return Identification(table, align, view, tuple(roles), tuple(used_f), tuple(used_c), means, sds,
                           has_intercept, tuple(summary.values()),
                           fixed.findings if fixed is not None else (), hd, tuple(cells),
                           fixed is not None and fixed.follows_images)
 
 
-def _hand_design(files: Files, table: PreparedTable, align: np.ndarray, found: tuple[TableView, list[ColumnRole]],
+def _unexplained_names(req: Request, files: Files, view: TableView, align: np.ndarray,
+                       roles: list[ColumnRole]) -> dict[int, str]:
+    """Names for the statements of unexplained columns that hold another table column than the covariates
+    named (``years_singing (column 4)``; the covariate_mismatch warning says so): column index -> name."""
+    from .pasted import mismatch_candidates, table_column_of
+
+    candidates = mismatch_candidates(req, files, view)
+    out = {}
+    for r in roles:
+        if r.kind == "unexplained" and candidates:
+            other = table_column_of(files, view, align, r, candidates)
+            if other is not None:
+                out[r.index] = f"{other} ({r.label})"
+    return out
+
+
+def _hand_design(files: Files, table: PreparedTable, align: np.ndarray,
+                 found: tuple[TableView, list[ColumnRole], dict[int, str]],
                  used: tuple[list[str], list[str], dict[str, float], dict[str, float]]
                  ) -> tuple[HandDesign, list[tuple[str, ...]]]:
     """Cell rows and slopes -> a HandDesign over the valid rows.
 
-    ``found`` is the view and the roles; ``used`` the factors and covariates the design uses, with the
+    ``found`` is the view, the roles and the names of unexplained columns that hold another table column;
+    ``used`` the factors and covariates the design uses, with the
     covariates' means and SDs.
     """
-    view, roles = found
+    view, roles, names = found
     factors, covariates, means, sds = used
     x = files.x
-    pseudo = {r.index: r.label for r in roles if r.kind == "unexplained"}
+    pseudo = {r.index: names.get(r.index, r.label) for r in roles if r.kind == "unexplained"}
     cells, rows, slopes = fill_cells(roles, x.values, view, factors, covariates, pseudo)
     v = view.valid
     ids = table.ids

@@ -16,11 +16,12 @@ import numpy as np
 
 from ..model.table import MISSING
 from .columns import ColumnRole, _covariate_fit
-from .context import AuditContext
+from .context import AuditContext, Files, Request
 from .read import AuditFinding
 from .table_view import TableView, _is_float
 
-__all__ = ["named_mismatch_candidates", "other_table_column", "pasted_covariate_findings"]
+__all__ = ["mismatch_candidates", "named_mismatch_candidates", "other_table_column", "pasted_covariate_findings",
+           "table_column_of"]
 
 
 def _warn(message: str) -> AuditFinding:
@@ -85,25 +86,34 @@ def _named_mismatch(ctx: AuditContext) -> list[AuditFinding]:
 
 def named_mismatch_candidates(ctx: AuditContext) -> list[str]:
     """The table columns an unexplained column may hold instead of a named covariate (none when none named)."""
-    req, ident = ctx.request, ctx.columns
+    ident = ctx.columns
     assert ident is not None
+    return mismatch_candidates(ctx.request, ctx.files, ident.view)
+
+
+def mismatch_candidates(req: Request, files: Files, view: TableView) -> list[str]:
+    """:func:`named_mismatch_candidates` from the request, the files and the table as the design reads it."""
     named = list(req.covariates or (req.spec.model_covariates() if req.spec else []))
     if not named:
         return []
-    return [str(c) for c in ctx.files.frame.columns
-            if c != "participant_id" and c not in named and c not in ident.view.factors]
+    return [str(c) for c in files.frame.columns if c != "participant_id" and c not in named and c not in view.factors]
 
 
 def other_table_column(ctx: AuditContext, role: ColumnRole, candidates: list[str]) -> str | None:
     """The first numeric table column (not a named covariate) the column is an exact covariate function of."""
     ident = ctx.columns
     assert ident is not None
-    view, align = ident.view, ident.align
-    frame = ctx.files.frame
+    return table_column_of(ctx.files, ident.view, ident.align, role, candidates)
+
+
+def table_column_of(files: Files, view: TableView, align: np.ndarray, role: ColumnRole,
+                    candidates: list[str]) -> str | None:
+    """:func:`other_table_column` from the files and the table as the design reads it (rows ``align``)."""
+    frame = files.frame
     known = align >= 0
     safe = np.where(known, align, 0)
-    x = ctx.files.x.values[:, role.index]
-    tol = ctx.files.x.tolerance(role.index)
+    x = files.x.values[:, role.index]
+    tol = files.x.tolerance(role.index)
     for c in candidates:
         texts = frame[c].tolist()
         if not all(v in MISSING or _is_float(v) for v in texts):

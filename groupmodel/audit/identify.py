@@ -4,7 +4,7 @@ order, and the :class:`~groupmodel.audit.cells.HandDesign` over the cells it fin
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -49,6 +49,9 @@ class Identification:
         The cells of ``factors`` (first slowest).
     follows_images : bool
         The rows are read in the order of the image list (design and images agree, the table differs).
+    held : dict
+        Unexplained column index -> the other numeric table column it holds, when covariates were named and
+        it holds none of them (the covariate_mismatch warning and the contrast statements name it).
     """
 
     table: PreparedTable
@@ -65,6 +68,7 @@ class Identification:
     hd: HandDesign
     cells: tuple[tuple[str, ...], ...]
     follows_images: bool = False
+    held: dict[int, str] = field(default_factory=dict)
 
 
 def _roles(files: Files, view: TableView) -> list[ColumnRole]:
@@ -98,18 +102,19 @@ def identify_columns(req: Request, files: Files, alignment: Alignment) -> Identi
     means = {c: float(view.covariates[c][view.known].mean()) for c in used_c}
     sds = {c: float(view.covariates[c][view.known].std(ddof=1)) for c in used_c}
     describe_roles(roles, view, means, sds)
-    names = _unexplained_names(req, files, view, align, roles)
+    held = _held_columns(req, files, view, align, roles)
+    names = {r.index: f"{held[r.index]} ({r.label})" for r in roles if r.index in held}
     hd, cells = _hand_design(files, table, align, (view, roles, names), (used_f, used_c, means, sds))
     return Identification(table, align, view, tuple(roles), tuple(used_f), tuple(used_c), means, sds,
                           has_intercept, tuple(summary.values()),
                           fixed.findings if fixed is not None else (), hd, tuple(cells),
-                          fixed is not None and fixed.follows_images)
+                          fixed is not None and fixed.follows_images, held)
 
 
-def _unexplained_names(req: Request, files: Files, view: TableView, align: np.ndarray,
-                       roles: list[ColumnRole]) -> dict[int, str]:
-    """Names for the statements of unexplained columns that hold another table column than the covariates
-    named (``years_singing (column 4)``; the covariate_mismatch warning says so): column index -> name."""
+def _held_columns(req: Request, files: Files, view: TableView, align: np.ndarray,
+                  roles: list[ColumnRole]) -> dict[int, str]:
+    """:attr:`Identification.held`: unexplained columns that hold another table column than the covariates
+    named (:func:`~.pasted.table_column_of`), column index -> that table column."""
     from .pasted import mismatch_candidates, table_column_of
 
     candidates = mismatch_candidates(req, files, view)
@@ -118,7 +123,7 @@ def _unexplained_names(req: Request, files: Files, view: TableView, align: np.nd
         if r.kind == "unexplained" and candidates:
             other = table_column_of(files, view, align, r, candidates)
             if other is not None:
-                out[r.index] = f"{other} ({r.label})"
+                out[r.index] = other
     return out
 
 
@@ -129,8 +134,7 @@ def _hand_design(files: Files, table: PreparedTable, align: np.ndarray,
     """Cell rows and slopes -> a HandDesign over the valid rows.
 
     ``found`` is the view, the roles and the names of unexplained columns that hold another table column;
-    ``used`` the factors and covariates the design uses, with the
-    covariates' means and SDs.
+    ``used`` the factors and covariates the design uses, with the covariates' means and SDs.
     """
     view, roles, names = found
     factors, covariates, means, sds = used

@@ -20,8 +20,7 @@ from .context import AuditContext, Files, Request
 from .read import AuditFinding
 from .table_view import TableView, _is_float
 
-__all__ = ["mismatch_candidates", "named_mismatch_candidates", "other_table_column", "pasted_covariate_findings",
-           "table_column_of"]
+__all__ = ["mismatch_candidates", "pasted_covariate_findings", "table_column_of"]
 
 
 def _warn(message: str) -> AuditFinding:
@@ -68,12 +67,9 @@ def _named_mismatch(ctx: AuditContext) -> list[AuditFinding]:
         return []
     where = "--covariates" if req.covariates else (req.spec_path.name if req.spec_path else "the spec")
     unused = [c for c in named if c not in ident.covariates]
-    candidates = named_mismatch_candidates(ctx)
     out = []
     for r in ident.roles:
-        if r.kind != "unexplained":
-            continue
-        found = other_table_column(ctx, r, candidates)
+        found = ident.held.get(r.index)
         if found is None:
             continue
         meant = " or ".join(unused) if unused else ", ".join(named)
@@ -84,31 +80,19 @@ def _named_mismatch(ctx: AuditContext) -> list[AuditFinding]:
     return out
 
 
-def named_mismatch_candidates(ctx: AuditContext) -> list[str]:
-    """The table columns an unexplained column may hold instead of a named covariate (none when none named)."""
-    ident = ctx.columns
-    assert ident is not None
-    return mismatch_candidates(ctx.request, ctx.files, ident.view)
-
-
 def mismatch_candidates(req: Request, files: Files, view: TableView) -> list[str]:
-    """:func:`named_mismatch_candidates` from the request, the files and the table as the design reads it."""
+    """The table columns an unexplained column may hold instead of a named covariate (none when none named): not
+    a named covariate, not a factor of the table as the design reads it (``view``)."""
     named = list(req.covariates or (req.spec.model_covariates() if req.spec else []))
     if not named:
         return []
     return [str(c) for c in files.frame.columns if c != "participant_id" and c not in named and c not in view.factors]
 
 
-def other_table_column(ctx: AuditContext, role: ColumnRole, candidates: list[str]) -> str | None:
-    """The first numeric table column (not a named covariate) the column is an exact covariate function of."""
-    ident = ctx.columns
-    assert ident is not None
-    return table_column_of(ctx.files, ident.view, ident.align, role, candidates)
-
-
 def table_column_of(files: Files, view: TableView, align: np.ndarray, role: ColumnRole,
                     candidates: list[str]) -> str | None:
-    """:func:`other_table_column` from the files and the table as the design reads it (rows ``align``)."""
+    """The first numeric table column among ``candidates`` that the column of ``role`` is an exact covariate
+    function of, with the table's rows as the design reads them (``align``); None if none."""
     frame = files.frame
     known = align >= 0
     safe = np.where(known, align, 0)

@@ -13,7 +13,6 @@ from ..engine.linalg import condition_number, has_constant_column, matrix_rank, 
 from ..model.checks import CONDITION_WARN, VIF_WARN
 from .context import AuditContext, file_findings
 from .contrasts import UNCENTRED_MEAN_SD, ContrastReport, dependents_in_words
-from .pasted import named_mismatch_candidates, other_table_column
 from .read import AuditFinding, listing, num_text
 from .rows import row_and_image_findings
 
@@ -147,9 +146,8 @@ def _column_notes(ctx: AuditContext) -> list[AuditFinding]:
     tried_f = list(req.factors or (req.spec.model_factors() if req.spec else []) or tried.factors or view.factors)
     tried_c = list(req.covariates or (req.spec.model_covariates() if req.spec else []) or tried.covariates
                    or view.covariates)
-    candidates = named_mismatch_candidates(ctx)
     for r in ident.roles:
-        if r.kind == "unexplained" and candidates and other_table_column(ctx, r, candidates) is not None:
+        if r.kind == "unexplained" and r.index in ident.held:
             continue  # another table column than the one named: covariate_mismatch says so
         if r.kind == "unexplained":
             out.append(_at("columns", "warning", "column_unexplained",

@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 
 from ..engine.ols import ChunkResult, Prepared, fit_chunk
-from ..engine.participant_check import abs_sums, add_blocks, residual_blocks, sums_step
+from ..engine.participant_check import add_blocks, block_sums, sums_step
 from ..engine.welch import WelchChunk, WelchPrepared, fit_chunk_welch
 from ..runtime.cores import single_threaded_blas
 
@@ -95,13 +95,9 @@ class ChunkFit:
             fit = fit_chunk(self.prepared, y, beta=True)
             beta = fit.beta
         # One pass over the OLS residuals, block by block: the counts of the unequal-variance check, then
-        # the participant sums (which overwrite each block with its absolute values).
-        blocks = np.zeros((-(-y.shape[1] // sums_step(y.shape[0])), y.shape[0]))
+        # the participant sums.
         counts: dict[str, tuple[int, int]] = {}
-        for i, resid in residual_blocks(self.design, y, beta):
-            _add_counts(counts, self.counter(resid))
-            sums = abs_sums(resid)
-            blocks[i:i + len(sums)] = sums
+        blocks = block_sums(self.design, y, beta, each=lambda resid: _add_counts(counts, self.counter(resid)))
         return fit, mean, blocks, counts
 
 

@@ -1,8 +1,8 @@
 """Per-participant check of a voxelwise fit: each observation's mean absolute residual across the mask.
 
 A bad image (wrong contrast, a scaling error, a failed registration) shows as one observation whose residuals
-are large everywhere.  The sums are a pure per-chunk accumulation (:func:`chunk_sums`): chunks add up, so the
-result does not depend on the chunk size.
+are large everywhere.  The sums are a pure per-chunk accumulation (:func:`block_sums`, added in order by
+:func:`add_blocks`): chunks add up, so the result does not depend on the chunk size.
 
 An observation is called unusual when its mean absolute residual lies more than ``UNUSUAL_Z`` robust
 standard deviations (1.4826 x the median absolute deviation) above the median of all observations.
@@ -10,7 +10,7 @@ standard deviations (1.4826 x the median absolute deviation) above the median of
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -64,12 +64,16 @@ def abs_sums(resid: np.ndarray) -> np.ndarray:
     return out
 
 
-def block_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
+def block_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray,
+               each: Callable[[np.ndarray], None] | None = None) -> np.ndarray:
     """Each observation's sum of |residual| over each block of :func:`sums_step` voxels: shape (blocks, n)
-    (:func:`residual_blocks`, :func:`abs_sums`)."""
+    (:func:`residual_blocks`, :func:`abs_sums`); ``each`` is first shown every block of residuals, so that other
+    work on the residuals needs no pass of its own."""
     n, v = np.shape(y)
     out = np.zeros((-(-v // sums_step(n)), n))
     for i, resid in residual_blocks(design, y, beta):
+        if each is not None:
+            each(resid)
         sums = abs_sums(resid)
         out[i:i + len(sums)] = sums
     return out
@@ -81,12 +85,6 @@ def add_blocks(blocks: np.ndarray, total: np.ndarray | None = None) -> np.ndarra
     for row in blocks:
         total += row
     return total
-
-
-def chunk_sums(design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> np.ndarray:
-    """Sum over the voxels of one chunk of each observation's |residual|: shape (n,); the rows of
-    :func:`block_sums` added in order."""
-    return add_blocks(block_sums(design, y, beta))
 
 
 @dataclass
@@ -101,11 +99,12 @@ class ParticipantCheck:
         return cls(np.zeros(n), 0)
 
     def add(self, design: np.ndarray, y: np.ndarray, beta: np.ndarray) -> None:
-        self.abs_resid_sum += chunk_sums(design, y, beta)
-        self.n_voxels += y.shape[1]
+        """Add one chunk (n, v) from its design (n, p) and coefficients (p, v)."""
+        self.add_sums(add_blocks(block_sums(design, y, beta)), y.shape[1])
 
     def add_sums(self, sums: np.ndarray, n_voxels: int) -> None:
-        """Add one chunk's :func:`chunk_sums` over ``n_voxels`` (add the chunks in order for the same bits)."""
+        """Add one chunk's sums (:func:`add_blocks` of its :func:`block_sums`) over ``n_voxels`` (add the chunks in
+        order for the same bits)."""
         self.abs_resid_sum += sums
         self.n_voxels += n_voxels
 
@@ -124,5 +123,5 @@ def robust_z(values: np.ndarray) -> np.ndarray:
     return (v - centre) / spread if spread > 0 else np.zeros_like(v)
 
 
-__all__ = ["UNUSUAL_Z", "ParticipantCheck", "abs_sums", "add_blocks", "block_sums", "chunk_sums", "residual_blocks",
-           "robust_z", "sums_step"]
+__all__ = ["UNUSUAL_Z", "ParticipantCheck", "abs_sums", "add_blocks", "block_sums", "residual_blocks", "robust_z",
+           "sums_step"]

@@ -224,7 +224,7 @@ def child_groupmodel(spec: Path, out: Path, memory: str, pictures: bool = True) 
         "  of which t p/z (tails.t_tests)": (groupmodel.engine.tails, "t_tests"),
         "  of which F p/z (tails.f_tests)": (groupmodel.engine.tails, "f_tests"),
         "write NIfTI maps (write_map)": (groupmodel.images, "write_map"),
-        "pictures (thread, with matplotlib import)": (groupmodel.outputs.design_files, "pictures_of"),
+        "pictures (thread, with matplotlib import)": (groupmodel.outputs.design_files, "picture_bytes"),
     }
     base = _maxrss_mb()
     with _AnonSampler() as anon, _StageTimer(stages) as timer:

@@ -137,24 +137,15 @@ def write_model(model: Model, out: OutputFolder, pictures: bool = True,
     return names
 
 
-#: The pictures of a model, in the order they are listed.
-PICTURES = ("design.png", "contrasts.png")
-
-
 def picture_bytes(model: Model) -> dict[str, bytes]:
     """design.png and contrasts.png as PNG bytes (imports matplotlib)."""
-    return pictures_of(_what_is_drawn(model))
-
-
-def pictures_of(drawn: tuple[Any, ...]) -> dict[str, bytes]:
-    """The pictures of :func:`_what_is_drawn`'s parts (plain arrays and strings: they pickle, for a worker
-    process)."""
     from .figures import plot_contrasts, plot_design
 
-    matrix, columns, ids, rows, labels, tests = drawn
+    d = model.design
     design, contrasts = io.BytesIO(), io.BytesIO()
-    plot_design(design, tidy(matrix, axis=0), list(columns), list(ids))
-    plot_contrasts(contrasts, tidy(rows, axis=1), list(labels), list(columns), list(tests))
+    plot_design(design, tidy(d.matrix, axis=0), d.column_names, d.participant_ids)
+    rows, labels, tests = model.contrast_rows()
+    plot_contrasts(contrasts, tidy(rows, axis=1), labels, d.column_names, tests)
     return {"design.png": design.getvalue(), "contrasts.png": contrasts.getvalue()}
 
 
@@ -164,16 +155,9 @@ def draw_pictures(model: Model, out: OutputFolder) -> list[str]:
 
 
 def _write_pictures(pictures: dict[str, bytes], out: OutputFolder) -> list[str]:
-    for name in PICTURES:
-        out.file(name).write_bytes(pictures[name])
-    return list(PICTURES)
-
-
-def _what_is_drawn(model: Model) -> tuple[Any, ...]:
-    """What the pictures of a model show: the design, its columns and rows, the contrast rows and labels."""
-    rows, labels, tests = model.contrast_rows()
-    return (model.design.matrix, tuple(model.design.column_names), tuple(model.design.participant_ids),
-            np.asarray(rows), tuple(labels), tuple(tests))
+    for name, data in pictures.items():
+        out.file(name).write_bytes(data)
+    return list(pictures)
 
 
 class PictureJob:
@@ -182,15 +166,14 @@ class PictureJob:
     drawing raised."""
 
     def __init__(self, model: Model) -> None:
-        self._drawn = _what_is_drawn(model)
         self._pictures: dict[str, bytes] = {}
         self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._run, name="groupmodel-pictures", daemon=True)
+        self._thread = threading.Thread(target=self._run, args=(model,), name="groupmodel-pictures", daemon=True)
         self._thread.start()
 
-    def _run(self) -> None:
+    def _run(self, model: Model) -> None:
         try:
-            self._pictures = pictures_of(self._drawn)
+            self._pictures = picture_bytes(model)
         except BaseException as exc:  # handed to write()
             self._error = exc
 

@@ -118,10 +118,10 @@ def test_a_failed_drawing_is_raised_when_written(monkeypatch: pytest.MonkeyPatch
     from groupmodel.model.assembly import build
     from groupmodel.model.spec import load_spec
 
-    def broken(drawn):
+    def broken(model):
         raise RuntimeError("no pictures")
 
-    monkeypatch.setattr(design_files, "pictures_of", broken)
+    monkeypatch.setattr(design_files, "picture_bytes", broken)
     model = build(load_spec(Path(__file__).resolve().parents[2] / "example_study" / "model.json"))
     with pytest.raises(RuntimeError, match="no pictures"):
         design_files.PictureJob(model).write(None)  # type: ignore[arg-type]

@@ -16,21 +16,7 @@ LEVEL = 0.95
 
 def cell_means(design: Design, y: np.ndarray) -> pd.DataFrame:
     """One row per cell: its factor levels, count, estimate, se, ci_low, ci_high (NaN when not estimable)."""
-    x = design.matrix
-    y = np.asarray(y, dtype=float).ravel()
-    pinv = np.linalg.pinv(x)
-    b = pinv @ y
-    space = RowSpace.of(x)
-    df = x.shape[0] - space.rank
-    resid = y - x @ b
-    sigma2 = float(resid @ resid) / df if df > 0 else np.nan
-    rows = design.cell_rows()
-    xtx_inv = pinv @ pinv.T  # (X'X)^+
-    est = rows @ b
-    se = np.sqrt(np.einsum("ij,jk,ik->i", rows, xtx_inv, rows) * sigma2)
-    ok = space.contains(rows)
-    est, se = np.where(ok, est, np.nan), np.where(ok, se, np.nan)
-    half = stats.t.isf((1 - LEVEL) / 2, df) * se if df > 0 else np.full_like(se, np.nan)
+    est, se, half = cell_estimates(design.matrix, np.asarray(y, dtype=float).ravel(), design.cell_rows())
     frame = pd.DataFrame([dict(zip(design.factors, c, strict=True)) for c in design.cells],
                          columns=list(design.factors))
     frame["count"] = design.cell_counts.astype(int)
@@ -39,4 +25,23 @@ def cell_means(design: Design, y: np.ndarray) -> pd.DataFrame:
     return frame
 
 
-__all__ = ["LEVEL", "cell_means"]
+def cell_estimates(x: np.ndarray, y: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The OLS fit of ``y`` on ``x`` at the design ``rows``: estimates, SEs and the half-widths of their
+    :data:`LEVEL` intervals (error df = rows of ``x`` - its rank); NaN where a row is not estimable or no df is
+    left."""
+    pinv = np.linalg.pinv(x)
+    b = pinv @ y
+    space = RowSpace.of(x)
+    df = x.shape[0] - space.rank
+    resid = y - x @ b
+    sigma2 = float(resid @ resid) / df if df > 0 else np.nan
+    xtx_inv = pinv @ pinv.T  # (X'X)^+
+    est = rows @ b
+    se = np.sqrt(np.einsum("ij,jk,ik->i", rows, xtx_inv, rows) * sigma2)
+    ok = space.contains(rows)
+    est, se = np.where(ok, est, np.nan), np.where(ok, se, np.nan)
+    half = stats.t.isf((1 - LEVEL) / 2, df) * se if df > 0 else np.full_like(se, np.nan)
+    return est, se, half
+
+
+__all__ = ["LEVEL", "cell_estimates", "cell_means"]

@@ -12,11 +12,9 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
-from ..engine.linalg import RowSpace
 from ..model.assembly import Model
-from .cell_means import LEVEL
+from .cell_means import cell_estimates
 
 __all__ = ["strata_cell_means"]
 
@@ -51,15 +49,4 @@ def _within_cell(index: np.ndarray, x_all: np.ndarray, rows: np.ndarray,
     nan = np.full(rows.shape[0], np.nan)
     if not have.any():
         return nan, nan, nan
-    pinv = np.linalg.pinv(x)
-    b = pinv @ values
-    space = RowSpace.of(x)
-    df = x.shape[0] - space.rank
-    resid = values - x @ b
-    sigma2 = float(resid @ resid) / df if df > 0 else np.nan
-    est = rows @ b
-    se = np.sqrt(np.einsum("ij,jk,ik->i", rows, pinv @ pinv.T, rows) * sigma2)
-    ok = space.contains(rows)
-    est, se = np.where(ok, est, np.nan), np.where(ok, se, np.nan)
-    half = stats.t.isf((1 - LEVEL) / 2, df) * se if df > 0 else nan
-    return est, se, half
+    return cell_estimates(x, values, rows)

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from ..engine.ols import Prepared, prepare
-from ..engine.peaks import peak_element
+from ..engine.peaks import peak_element, statistic_map
 from ..errors import InputError
 from ..model.assembly import Model, build
 from ..model.spec import ModelSpec, load_spec
@@ -406,11 +406,6 @@ def _flat_warnings(maps: dict[str, dict[str, np.ndarray]], n_vox: int, elements:
         return []
     return [f"{n_flat} of {n_vox} {elements} have (numerically) zero residual variance, e.g. the same "
             "value in every image: their t, F, z and p are NaN (not tested)"]
-
-
-def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
-    """A hypothesis's statistic map: t or F, or with variance groups v or G."""
-    return next(maps[k] for k in ("t", "F", "v", "G") if k in maps)
 
 
 def _permutation_pass(model: Model, data: Any, options: InferenceOptions, budget: MemoryBudget,

@@ -1,10 +1,10 @@
-"""The peak of a statistic map: where a test looks for its strongest evidence."""
+"""A hypothesis's statistic map among its maps, and its peak: where the test looks for its strongest evidence."""
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["peak_element"]
+__all__ = ["peak_element", "statistic_map"]
 
 
 def peak_element(stat: np.ndarray, tail: str) -> int | None:
@@ -19,3 +19,8 @@ def peak_element(stat: np.ndarray, tail: str) -> int | None:
     if tail == "less":
         return int(np.nanargmin(stat))
     return int(np.nanargmax(np.abs(stat)))
+
+
+def statistic_map(maps: dict[str, np.ndarray]) -> np.ndarray:
+    """A hypothesis's statistic map among its maps: t or F, or with variance groups v or G."""
+    return next(maps[k] for k in ("t", "F", "v", "G") if k in maps)

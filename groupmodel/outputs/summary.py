@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from ..engine.peaks import peak_element
+from ..engine.peaks import peak_element, statistic_map
 from .index import table_path
 from .numbers import tidy
 
@@ -28,9 +28,7 @@ VERTEX_PEAK_COLUMNS = ("peak_vertex",)
 
 def _peak_element(fit: VoxelFit, name: str) -> int | None:
     """:func:`peak_element` of hypothesis ``name`` (t or F, or with variance groups v or G)."""
-    m = fit.maps[name]
-    stat = next(m[k] for k in ("t", "F", "v", "G") if k in m)
-    return peak_element(stat, fit.model.hypotheses[name].tail)
+    return peak_element(statistic_map(fit.maps[name]), fit.model.hypotheses[name].tail)
 
 
 def peak_location(fit: VoxelFit, name: str) -> dict[str, Any]:

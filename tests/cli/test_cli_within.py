@@ -7,26 +7,13 @@ table-level fit, checked against scipy and statsmodels in tests/reference/test_w
 
 from __future__ import annotations
 
-import contextlib
-import io
 import json
 from pathlib import Path
 
 import pandas as pd
-
-from groupmodel import cli
+from test_cli_build import run
 
 SESSIONS = Path(__file__).resolve().parents[2] / "example_study" / "sessions"
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            code = cli.main(list(argv))
-        except SystemExit as exc:
-            code = int(exc.code or 0)
-    return code, out.getvalue(), err.getvalue()
 
 
 def test_build_names_the_strata(tmp_path: Path) -> None:

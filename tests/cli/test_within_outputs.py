@@ -9,9 +9,7 @@ test_within_effect_sizes.py); the claim of resume is bit identity, so maps are c
 
 from __future__ import annotations
 
-import contextlib
 import html
-import io
 import json
 import re
 from pathlib import Path
@@ -20,8 +18,8 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
+from test_cli_build import run
 
-from groupmodel import cli
 from groupmodel.analysis.corrections import InferenceOptions
 from groupmodel.analysis.table_fit import fit_table
 from groupmodel.analysis.voxel_fit import fit_images
@@ -32,16 +30,6 @@ from groupmodel.runtime.log import StageLog
 
 SHAPE = (4, 4, 3)
 SESSIONS = ("s0", "s1", "s2")
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            code = cli.main(list(argv))
-        except SystemExit as exc:
-            code = int(exc.code or 0)
-    return code, out.getvalue(), err.getvalue()
 
 
 @pytest.fixture(scope="module")

@@ -23,7 +23,7 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["ORIENT_ABS", "ORIENT_LESS", "ORIENT_SIGNED", "scan_tile"]
+__all__ = ["ORIENT_ABS", "ORIENT_LESS", "ORIENT_SIGNED", "observe_tile", "scan_tile"]
 
 # error_model="numpy": a division by zero gives inf or NaN, as numpy does, instead of raising.
 _JIT = {"cache": True, "nogil": True, "error_model": "numpy"}
@@ -64,8 +64,8 @@ def _stats_one(G: np.ndarray, b: int, is_t: bool, df: float, out: np.ndarray) ->
 
 
 @numba.njit(**_JIT)
-def _sums(G: np.ndarray, b: int, B: int, m: int, q: int, a: np.ndarray, rest: np.ndarray) -> None:
-    """m > 1: a = ||g_interest||^2 (row 0 first) and rest = 1 - ||g_nuisance||^2 (rows q..m-1 in order)."""
+def _interest(G: np.ndarray, b: int, B: int, q: int, a: np.ndarray) -> None:
+    """a = ||g_interest||^2: the squares of rows 0 .. q-1 of rearrangement b added from row 0 up."""
     w = a.size
     g0 = G[b]
     for j in range(w):
@@ -74,6 +74,13 @@ def _sums(G: np.ndarray, b: int, B: int, m: int, q: int, a: np.ndarray, rest: np
         gk = G[k * B + b]
         for j in range(w):
             a[j] = a[j] + gk[j] * gk[j]
+
+
+@numba.njit(**_JIT)
+def _sums(G: np.ndarray, b: int, B: int, m: int, q: int, a: np.ndarray, rest: np.ndarray) -> None:
+    """m > 1: a = ||g_interest||^2 (row 0 first) and rest = 1 - ||g_nuisance||^2 (rows q..m-1 in order)."""
+    w = a.size
+    _interest(G, b, B, q, a)
     if m > q:
         gq = G[q * B + b]
         for j in range(w):
@@ -119,72 +126,136 @@ def _row_many(g0: np.ndarray, a: np.ndarray, rest: np.ndarray, orient: int, o: n
 
 
 @numba.njit(**_JIT)
-def _count_and_max(o: np.ndarray, threshold: np.ndarray, counts: np.ndarray) -> float:
-    """counts += (o >= threshold) (NaN thresholds never count); the row maximum ignoring NaN (NaN if all are).
-    Written without branches, so that the loop vectorises."""
-    top = -np.inf
-    seen = 0
-    for j in range(o.size):
+def _top(o: np.ndarray) -> float:
+    """The largest value ignoring NaN (NaN if all are).  Eight running maxima over neighbouring elements, so
+    that each comparison need not wait for the one before (a maximum of floats does not vectorise without
+    fast-math); the largest value is the same whatever the order."""
+    t0 = t1 = t2 = t3 = t4 = t5 = t6 = t7 = -np.inf
+    w = o.size
+    full = w - w % 8
+    for j in range(0, full, 8):
         x = o[j]
-        counts[j] += x >= threshold[j]
+        t0 = x if x > t0 else t0
+        x = o[j + 1]
+        t1 = x if x > t1 else t1
+        x = o[j + 2]
+        t2 = x if x > t2 else t2
+        x = o[j + 3]
+        t3 = x if x > t3 else t3
+        x = o[j + 4]
+        t4 = x if x > t4 else t4
+        x = o[j + 5]
+        t5 = x if x > t5 else t5
+        x = o[j + 6]
+        t6 = x if x > t6 else t6
+        x = o[j + 7]
+        t7 = x if x > t7 else t7
+    top = -np.inf
+    for j in range(full, w):
+        x = o[j]
         top = x if x > top else top
-        seen += x == x
-    return top if seen else np.nan
+    for t in (t0, t1, t2, t3, t4, t5, t6, t7):
+        top = t if t > top else top
+    if top == -np.inf:  # every value -inf or NaN: NaN only if all are
+        for j in range(w):
+            if o[j] == o[j]:
+                return top
+        return np.nan
+    return top
 
 
 @numba.njit(**_JIT)
-def _count_max_one(g: np.ndarray, orient: int, threshold: np.ndarray, counts: np.ndarray) -> float:
-    """m = 1 without maps or missing data: :func:`_row_one` and :func:`_count_and_max` in one loop."""
-    top = -np.inf
-    seen = 0
-    for j in range(g.size):
-        x = g[j]
-        if orient == ORIENT_ABS:
-            x = abs(x)
-        elif orient == ORIENT_LESS:
-            x = -x
-        counts[j] += x >= threshold[j]
-        top = x if x > top else top
-        seen += x == x
-    return top if seen else np.nan
+def _count(o: np.ndarray, threshold: np.ndarray, counts: np.ndarray) -> None:
+    """counts += (o >= threshold); NaN thresholds never count."""
+    for j in range(o.size):
+        counts[j] += o[j] >= threshold[j]
 
 
 @numba.njit(**_JIT)
-def _count_max_many(
-    g0: np.ndarray, last: np.ndarray, a: np.ndarray, rest: np.ndarray, fresh: bool, orient: int,
-    threshold: np.ndarray, counts: np.ndarray,
-) -> float:
-    """m > q without maps or missing data: the last nuisance row's subtraction (from 1 when it is the only
-    one, ``fresh``), :func:`_row_many` and :func:`_count_and_max` in one loop, the same operations in the
-    same order."""
-    top = -np.inf
-    seen = 0
-    for j in range(g0.size):
-        r = (1.0 if fresh else rest[j]) - last[j] * last[j]
-        if orient == ORIENT_ABS:
-            x = a[j] / r
-        elif orient == ORIENT_SIGNED:
-            x = np.copysign(a[j], g0[j]) / r
+def _count_and_max(o: np.ndarray, threshold: np.ndarray, counts: np.ndarray) -> float:
+    """counts += (o >= threshold); the row maximum ignoring NaN (NaN if all are)."""
+    _count(o, threshold, counts)
+    return _top(o)
+
+
+@numba.njit(**_JIT)
+def _oriented_count(g: np.ndarray, absolute: bool, flip: float, threshold: np.ndarray, counts: np.ndarray,
+                    o: np.ndarray) -> None:
+    """m = 1: o = |g| or g * flip (flip = -1 negates exactly), as :func:`_row_one`; counts += (o >= threshold)."""
+    for j in range(o.size):
+        x = abs(g[j]) if absolute else g[j] * flip
+        o[j] = x
+        counts[j] += x >= threshold[j]
+
+
+@numba.njit(**_JIT)
+def _nuisance(G: np.ndarray, b: int, B: int, first: int, stop: int, rest: np.ndarray) -> None:
+    """rest = 1 - g_first^2 - ... - g_(stop-1)^2 (stop > first), subtracted in row order as in :func:`_sums`,
+    two rows per pass over the elements."""
+    w = rest.size
+    g = G[first * B + b]
+    k = first + 1
+    if k < stop:
+        h = G[k * B + b]
+        for j in range(w):
+            rest[j] = (1.0 - g[j] * g[j]) - h[j] * h[j]
+        k += 1
+    else:
+        for j in range(w):
+            rest[j] = 1.0 - g[j] * g[j]
+    while k < stop:
+        g = G[k * B + b]
+        if k + 1 < stop:
+            h = G[(k + 1) * B + b]
+            for j in range(w):
+                rest[j] = (rest[j] - g[j] * g[j]) - h[j] * h[j]
+            k += 2
         else:
-            x = (-np.copysign(a[j], g0[j])) / r
+            for j in range(w):
+                rest[j] = rest[j] - g[j] * g[j]
+            k += 1
+
+
+@numba.njit(**_JIT)
+def _ratio_count(
+    g0: np.ndarray, a: np.ndarray, square: bool, rest: np.ndarray, before: np.ndarray, last: np.ndarray,
+    absolute: bool, flip: float, threshold: np.ndarray, counts: np.ndarray, o: np.ndarray,
+) -> None:
+    """m > 1: o = (a^2 if square else a) / ((rest - before^2) - last^2), given the sign of g0 * flip for
+    one-sided t (as :func:`_row_many`: ``copysign(a, -g0)`` is ``-copysign(a, g0)`` bit for bit);
+    counts += (o >= threshold).  A row of zeros for ``before`` (or ``last``) changes no bit: x - 0 * 0 is x."""
+    for j in range(o.size):
+        num = a[j] * a[j] if square else a[j]
+        if not absolute:
+            num = np.copysign(num, g0[j] * flip)
+        x = num / ((rest[j] - before[j] * before[j]) - last[j] * last[j])
+        o[j] = x
         counts[j] += x >= threshold[j]
-        top = x if x > top else top
-        seen += x == x
-    return top if seen else np.nan
 
 
 @numba.njit(**_JIT)
 def _fused_row(
-    G: np.ndarray, b: int, B: int, m: int, q: int, orient: int, a: np.ndarray, rest: np.ndarray,
-    threshold: np.ndarray, counts: np.ndarray,
+    G: np.ndarray, b: int, B: int, m: int, q: int, orient: int, a: np.ndarray, rest: np.ndarray, zeros: np.ndarray,
+    threshold: np.ndarray, counts: np.ndarray, o: np.ndarray,
 ) -> float:
-    """One rearrangement's counts and maximum when no map is written and every element has data (the
-    common case), in fewer passes: the last product row is read in the counting loop."""
+    """One rearrangement's counts and maximum when no map is written and every element has data (the common
+    case), in fewer passes than :func:`_sums`, :func:`_row_many` and :func:`_count_and_max` with the same
+    operations in the same order: the interest row squared where it is read when q = 1, the nuisance rows
+    two per pass, the last two of them (or zeros in their place) in the counting loop.  ``rest`` holds ones on
+    entry when fewer than three nuisance rows move (it then stays so)."""
+    absolute = orient == ORIENT_ABS
+    flip = -1.0 if orient == ORIENT_LESS else 1.0
     if m == 1:
-        return _count_max_one(G[b], orient, threshold, counts)
-    # Rows 0 .. m - 2 as in _sums, the last (nuisance) row in the counting loop.
-    _sums(G, b, B, m - 1, q, a, rest)
-    return _count_max_many(G[b], G[(m - 1) * B + b], a, rest, m - 1 == q, orient, threshold, counts)
+        _oriented_count(G[b], absolute, flip, threshold, counts, o)
+        return _top(o)
+    if q > 1:
+        _interest(G, b, B, q, a)
+    last = G[(m - 1) * B + b] if m > q else zeros
+    before = G[(m - 2) * B + b] if m - 1 > q else zeros
+    if m - 2 > q:
+        _nuisance(G, b, B, q, m - 2, rest)
+    _ratio_count(G[b], G[b] if q == 1 else a, q == 1, rest, before, last, absolute, flip, threshold, counts, o)
+    return _top(o)
 
 
 @numba.njit(**_JIT)
@@ -226,15 +297,15 @@ def scan_tile(
     B = G.shape[0] // m
     o = np.empty(w)
     a = np.empty(w)
-    rest = np.empty(w)
-    fused = bad.size == 0 and (m == 1 or m > q)
-    for b in range(B):
-        if fused and b >= stats.shape[0]:
-            top = _fused_row(G, b, B, m, q, orient, a, rest, threshold, counts)
-            old = maxima[b]
-            if old != old or top > old:
-                maxima[b] = top
-            continue
+    rest = np.ones(w)  # stays all ones for the fused rows when fewer than three nuisance rows move
+    zeros = np.zeros(w)
+    fused = bad.size == 0
+    for b in range(stats.shape[0] if fused else 0, B if fused else 0):
+        top = _fused_row(G, b, B, m, q, orient, a, rest, zeros, threshold, counts, o)
+        old = maxima[b]
+        if old != old or top > old:
+            maxima[b] = top
+    for b in range(min(stats.shape[0], B) if fused else B):
         if m == 1:
             if b < stats.shape[0]:
                 _stats_one(G, b, is_t, df, stats[b])
@@ -252,3 +323,27 @@ def scan_tile(
         old = maxima[b]
         if old != old or top > old:  # fmax: NaN only while every value so far is NaN
             maxima[b] = top
+
+
+@numba.njit(**_JIT)
+def observe_tile(
+    G: np.ndarray, m: int, q: int, is_t: bool, orient: int, df: float, bad: np.ndarray, work: np.ndarray,
+    stat: np.ndarray,
+) -> None:
+    """The observed statistics of a tile from its products, rearrangement 0 (the identity) of the first batch:
+    the working statistic (NaN without data) and t or F, as the reference (:func:`groupmodel.inference.kernel._tile`
+    and ``_scan``), before the tile is counted against the thresholds made from them."""
+    w = G.shape[1]
+    B = G.shape[0] // m
+    if m == 1:
+        _stats_one(G, 0, is_t, df, stat)
+        _row_one(G, 0, orient, work)
+    else:
+        a = np.empty(w)
+        rest = np.empty(w)
+        _sums(G, 0, B, m, q, a, rest)
+        _stats_many(G[0], a, rest, is_t, df, q, stat)
+        _row_many(G[0], a, rest, orient, work)
+    for i in range(bad.size):
+        work[bad[i]] = np.nan
+        stat[bad[i]] = np.nan

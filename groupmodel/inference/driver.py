@@ -22,7 +22,9 @@ product may change with its shape (counts and p values are unaffected thanks to 
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Callable, Sequence
+from concurrent.futures import Future
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -153,6 +155,10 @@ class _Batch:
     maps: np.ndarray | None
 
 
+#: A task handed out for the elements s .. e - 1 of a batch.
+_Pending = tuple[int, int, "Future[ChunkNulls]"]
+
+
 class _Run:
     """One contrast's run: the fixed layout (tile width, the parts of each chunk), the tasks of each batch
     on the thread executor, and what they accumulate."""
@@ -185,12 +191,14 @@ class _Run:
                 self.acc.observe(s, e, observed)
                 self.acc.add(batch.b0, s, e, nulls)
 
-    def null_batch(self, pool: InlineExecutor | ThreadExecutor, batch: _Batch) -> None:
-        """A later batch: counts against the observed thresholds, and maxima."""
-        for chunk_parts in self.parts:
-            futures = [pool.submit(self._null_task, batch, s, e) for s, e in chunk_parts]
-            for (s, e), future in zip(chunk_parts, futures, strict=True):
-                self.acc.add(batch.b0, s, e, future.result())
+    def submit_nulls(self, pool: InlineExecutor | ThreadExecutor, batch: _Batch) -> list[_Pending]:
+        """Hand out the tasks of a later batch (counts against the observed thresholds, and maxima)."""
+        return [(s, e, pool.submit(self._null_task, batch, s, e)) for chunk_parts in self.parts for s, e in chunk_parts]
+
+    def collect_nulls(self, batch: _Batch, pending: list[_Pending]) -> None:
+        """Wait for a later batch's tasks and add what they found (only here, in the calling thread)."""
+        for s, e, future in pending:
+            self.acc.add(batch.b0, s, e, future.result())
 
     def _observed_task(self, batch: _Batch, s: int, e: int) -> tuple[ObservedChunk, ChunkNulls]:
         maps = None if batch.maps is None else batch.maps[:, s:e]
@@ -263,6 +271,38 @@ def _state(run: _Run, map_nulls: MapNulls | None, done: int) -> BatchState:
                       None if map_nulls is None else map_nulls.cluster_max.copy())
 
 
+@dataclass
+class _Loop:
+    """What the batch loop needs besides the run: where tasks go, what to report and save, the whole-map nulls."""
+
+    pool: InlineExecutor | ThreadExecutor
+    maps: MapSettings
+    execution: Execution
+    progress: Callable[[int, int], None] | None
+    checkpoint: ContrastCheckpoint | None
+    saved: BatchState | None
+    map_nulls: MapNulls | None = None
+
+    def finished(self, run: _Run, batch: _Batch, b1: int) -> None:
+        """After a batch's results are in: its maps to the whole-map nulls, the saved state put back (after the
+        observed batch of a resumed run), progress and checkpoint."""
+        plan, J = run.plan, run.pset.size
+        if batch.maps is not None:
+            if self.map_nulls is None:
+                assert self.maps.adjacency is not None
+                observed = observe_maps(batch.maps[0], plan, self.maps)
+                self.map_nulls = MapNulls.start(observed, J, self.maps.adjacency, self.execution.n_jobs,
+                                                self.execution.workers)
+            self.map_nulls.submit(batch.b0, batch.maps)
+        if batch.b0 == 0 and self.saved is not None:
+            _restore(run, self.map_nulls, self.saved)
+            b1 = self.saved.done  # the state now counts the rearrangements 0 .. saved.done - 1
+        if self.progress is not None:
+            self.progress(b1, J)
+        if self.checkpoint is not None and self.checkpoint.due(final=b1 == J):
+            self.checkpoint.save(_state(run, self.map_nulls, b1))
+
+
 def _batches(
     run: _Run,
     maps: MapSettings,
@@ -273,14 +313,28 @@ def _batches(
 ) -> MapNulls | None:
     """Every batch of rearrangements, the observed one first; the whole-map nulls (if asked for) collected.
     With a checkpoint holding a saved state, the observed batch is recomputed and the run goes on after the
-    rearrangements the state counts."""
+    rearrangements the state counts.
+
+    The tasks of the next null batch are handed out before those of the last one are waited for (when no map
+    buffer is shared between batches), so that a thread that finishes its part early starts on the next batch
+    instead of waiting for the others: the results are added in batch order, in this thread, and counts and
+    maxima do not depend on the order anyway."""
     plan, pset = run.plan, run.pset
     J, size = pset.size, execution.batch_size
     # Reused by every batch: a fresh (B, V) array per batch costs page faults.
     maps_buffer = np.empty((min(size, J), run.V)) if maps.wanted else None
-    map_nulls: MapNulls | None = None
+    depth = 2 if maps_buffer is None else 1  # null batches in flight
     saved = checkpoint.load() if checkpoint is not None else None
+    loop = _Loop(pool, maps, execution, progress, checkpoint, saved)
     starts = [0, *range(saved.done, J, size)] if saved is not None and saved.done > 0 else range(0, J, size)
+    in_flight: deque[tuple[_Batch, int, list[_Pending]]] = deque()
+
+    def collect(keep: int) -> None:  # the oldest null batches, until ``keep`` are left in flight
+        while len(in_flight) > keep:
+            done, done_b1, pending = in_flight.popleft()
+            run.collect_nulls(done, pending)
+            loop.finished(run, done, done_b1)
+
     try:
         for b0 in starts:
             b1 = min(J, b0 + size)
@@ -288,28 +342,18 @@ def _batches(
             batch = _Batch(b0, stack_rows(plan, *pset.batch(b0, b1)), batch_maps)
             if b0 == 0:
                 run.observed_batch(pool, batch)
+                loop.finished(run, batch, b1)
             else:
-                run.null_batch(pool, batch)
-            if batch.maps is not None:
-                if map_nulls is None:
-                    assert maps.adjacency is not None
-                    observed = observe_maps(batch.maps[0], plan, maps)
-                    map_nulls = MapNulls.start(observed, J, maps.adjacency, execution.n_jobs, execution.workers)
-                map_nulls.submit(b0, batch.maps)
-            if b0 == 0 and saved is not None:
-                _restore(run, map_nulls, saved)
-                b1 = saved.done  # the state now counts the rearrangements 0 .. saved.done - 1
-            if progress is not None:
-                progress(b1, J)
-            if checkpoint is not None and checkpoint.due(final=b1 == J):
-                checkpoint.save(_state(run, map_nulls, b1))
-        if map_nulls is not None:
-            map_nulls.finish()
+                in_flight.append((batch, b1, run.submit_nulls(pool, batch)))
+                collect(depth - 1)
+        collect(0)
+        if loop.map_nulls is not None:
+            loop.map_nulls.finish()
     except BaseException:
-        if map_nulls is not None:
-            map_nulls.abort()
+        if loop.map_nulls is not None:
+            loop.map_nulls.abort()
         raise
-    return map_nulls
+    return loop.map_nulls
 
 
 def run_permutations(

@@ -345,12 +345,17 @@ def residualise(plan: ContrastPlan, chunk: np.ndarray) -> tuple[np.ndarray, np.n
         0 for voxels whose residuals are at rounding level (constant data), which then get a NaN
         statistic.
     """
-    W = np.array(chunk, dtype=np.float64, order="C", copy=True)
-    n = W.shape[0]
-    with np.errstate(invalid="ignore"):
-        scale = np.abs(W).max(axis=0) if W.size else np.zeros(W.shape[1])
+    if type(chunk) is not np.ndarray or chunk.dtype != np.float64:
+        chunk = np.array(chunk, dtype=np.float64, order="C", copy=True)  # read once (a file-backed map, say)
+    n, v = chunk.shape
+    # The largest |value| per voxel without an |chunk| temporary: max(max, -min) is the same number.
+    scale = np.fmax(np.max(chunk, axis=0), -np.min(chunk, axis=0)) if chunk.size else np.zeros(v)
     if plan.nuisance.shape[1]:
-        W -= plan.nuisance @ (plan.nuisance.T @ W)
+        # chunk - fit, written into the fit's array: the same numbers as a copy of the chunk minus the fit
+        W = plan.nuisance @ (plan.nuisance.T @ chunk)
+        np.subtract(chunk, W, out=W)
+    else:
+        W = np.array(chunk, dtype=np.float64, order="C", copy=True)
     ss = np.einsum("ij,ij->j", W, W)
     # Residuals at rounding level (e.g. a constant voxel against an intercept) are no data: their
     # statistic would be noise, so they are marked (ss = 0 -> NaN statistic), as in groupmodel.ols.

@@ -13,9 +13,9 @@ maximises a cheap increasing function of the statistic (see ``_tile``), converti
 keeps.  Each chunk is split into one contiguous part per thread; every thread does its own products
 (with BLAS held to one thread) and the element-wise work after them, so that work, which BLAS's own
 threads would leave to a single core, runs on all of them.  With the optional extra ``fast`` the element-wise
-work after each product of a null batch runs as one compiled pass over the tile
-(:mod:`groupmodel.inference.compiled_scan`), which forms the same values with the same operations as
-:func:`_tile` and the counting in :func:`_scan`, its numpy reference: the same bits either way.
+work after each product runs as compiled passes over the tile (:mod:`groupmodel.inference.compiled_scan`; in
+the first batch the observed statistics and thresholds first), which form the same values with the same
+operations as :func:`_tile` and the counting in :func:`_scan`, their numpy reference: the same bits either way.
 Voxels whose residuals are at rounding level (constant data) get NaN statistics and p values.
 
 Statistics used for inference ("oriented" statistics): ``|t|`` for two-sided t tests (so the
@@ -66,9 +66,11 @@ __all__ = [
 _EPS = float(np.finfo(np.float64).eps)
 #: Relative tolerance of "at least as large as the observed statistic" (scipy.stats.permutation_test).
 TIE_RTOL = 100 * _EPS
-#: The permutation loop multiplies tiles of voxels whose (B m, tile) product holds about this
-#: many float64 values (1 MiB, a core's L2 cache here), so that the passes over it stay in cache.
-_TILE_VALUES = 2**17
+#: The permutation loop multiplies tiles of voxels whose (B m, tile) product holds about this many float64
+#: values (4 MiB).  Measured here (benchmarks/permutation_speed.py, 2 cores with 2 MiB of L2 each): wider tiles
+#: than a core's L2 were faster, product and element-wise pass together, as BLAS packs the design side once
+#: per product, and each rearrangement's rows of the product (m w values: 41 KiB for m = 5) stay near the core.
+_TILE_VALUES = 2**19
 
 
 def tile_width(rows: int) -> int:
@@ -400,10 +402,9 @@ def _scan(
     buffers = (Scratch() if scratch is None else scratch).buffers(A.shape[0], B, tile)
     W, bad = chunk.W, chunk.bad
     v = W.shape[1]
+    if compiled_scan() is not None:
+        return _scan_compiled(plan, A, chunk, threshold, tile, maps, buffers, observed)
     counts = np.zeros(v, dtype=count_type(B))
-    fused = compiled_scan() if observed is None else None
-    if fused is not None:
-        return _scan_compiled(fused, plan, A, chunk, threshold, tile, maps, buffers, counts)
     tile_maxima = []
     for ts in range(0, v, tile):
         te = min(v, ts + tile)
@@ -432,7 +433,6 @@ def _scan(
 
 
 def _scan_compiled(
-    fused: Any,
     plan: ContrastPlan,
     A: np.ndarray,
     chunk: UnitChunk,
@@ -440,16 +440,20 @@ def _scan_compiled(
     tile: int,
     maps: np.ndarray | None,
     buffers: _Buffers,
-    counts: np.ndarray,
+    observed: ObservedChunk | None,
 ) -> ChunkNulls:
-    """The tile loop of :func:`chunk_nulls` with the element-wise work of each tile in one compiled pass
-    (:func:`groupmodel.inference.compiled_scan.scan_tile`): the same bits as :func:`_tile` and the
-    counting of :func:`_scan`, which are its reference."""
+    """The tile loop of :func:`_scan` with the element-wise work of each tile in compiled passes
+    (:mod:`groupmodel.inference.compiled_scan`): the observed statistics and thresholds of the first batch
+    (``observe_tile``), then the counts, maxima and maps (``scan_tile``); the same bits as :func:`_tile` and
+    the counting of :func:`_scan`, which are their reference."""
+    fused = compiled_scan()
     B = A.shape[0] // plan.m
     W, bad = chunk.W, chunk.bad
     v = W.shape[1]
+    counts = np.zeros(v, dtype=count_type(B))
     orient = fused.ORIENT_ABS if plan.kind == "F" or plan.tail == "two-sided" else (
         fused.ORIENT_SIGNED if plan.tail == "greater" else fused.ORIENT_LESS)
+    is_t, df = plan.kind == "t", float(plan.df)
     maxima = np.full(B, np.nan)
     no_stats = np.empty((0, 0))
     for ts in range(0, v, tile):
@@ -457,9 +461,12 @@ def _scan_compiled(
         tile_bad = bad[(bad >= ts) & (bad < te)] - ts if bad.size else bad
         G = buffers.views(te - ts)[0]
         np.matmul(A, W[:, ts:te], out=G)
+        if observed is not None:
+            fused.observe_tile(G, plan.m, plan.q, is_t, orient, df, tile_bad, observed.work[ts:te],
+                               observed.stat[ts:te])
+            threshold[ts:te] = at_least(observed.work[ts:te])
         stats = maps[:, ts:te] if maps is not None else no_stats
-        fused.scan_tile(G, plan.m, plan.q, plan.kind == "t", orient, float(plan.df), tile_bad,
-                        threshold[ts:te], counts[ts:te], maxima, stats)
+        fused.scan_tile(G, plan.m, plan.q, is_t, orient, df, tile_bad, threshold[ts:te], counts[ts:te], maxima, stats)
     if v == 0:
         maxima.fill(-np.inf)
     return ChunkNulls(counts, maxima)

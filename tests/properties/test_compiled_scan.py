@@ -28,7 +28,8 @@ def _design(n: int, rng: np.random.Generator, extra: int) -> np.ndarray:
 
 
 #: (weights over columns [1, group, cov1, cov2, cov3], kind, tail): m = 1 (two groups, intercept only
-#: moving nothing), m > 1 with moving nuisance, one-sided both ways, and F tests with q = 2.
+#: moving nothing), m > 1 with moving nuisance, one-sided both ways, F tests with q = 2 and 3, and with
+#: no moving nuisance (m = q).
 _CASES = [
     ([[0, 1, 0, 0, 0]], "t", "two-sided"),
     ([[0, 1, 0, 0, 0]], "t", "greater"),
@@ -36,6 +37,12 @@ _CASES = [
     ([[0, 0, 1, 0, 0]], "t", "less"),
     ([[0, 1, 0, 0, 0], [0, 0, 1, 0, 0]], "F", "two-sided"),
     ([[0, 1, 0, 0, 0], [0, 0, 1, 0, 0], [0, 0, 0, 0, 1]], "F", "two-sided"),
+    # every moving column is of interest (m = q = 4): no nuisance row in the stacked product
+    ([[0, 1, 0, 0, 0], [0, 0, 1, 0, 0], [0, 0, 0, 1, 0], [0, 0, 0, 0, 1]], "F", "two-sided"),
+    # two moving nuisance rows before the last (q = 1, m = 4): the nuisance pairs of the fused pass
+    ([[0, 0, 0, 1, 0]], "t", "greater"),
+    # three (q = 1, m = 5): a pair and a single row
+    ([[0, 1, 0, 0, 0, 0]], "t", "less"),
 ]
 
 
@@ -55,8 +62,8 @@ def _data(rng: np.random.Generator, n: int, v: int, missing: bool = True) -> np.
 def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two_groups_only, missing):
     rng = np.random.default_rng(len(weights) * 7 + len(tail) + two_groups_only)
     n, v = 24, 700
-    X = _design(n, rng, 3)
     L = np.asarray(weights, float)
+    X = _design(n, rng, L.shape[1] - 2)
     if two_groups_only:  # m = 1: the intercept does not move under permutation
         X, L = X[:, :2], L[:, :2]
     plan = plan_contrast(X, L, kind=kind, tail=tail)
@@ -65,8 +72,23 @@ def test_chunk_nulls_identical_bits(fused, monkeypatch, weights, kind, tail, two
     first = stack_rows(plan, *pset.batch(0, 30))
     later = stack_rows(plan, *pset.batch(30, 61))
     tile = tile_width(first.shape[0])
-    observed, _ = observed_chunk(plan, first, chunk, tile)
-    results = {}
+    results, seen = {}, {}
+    for path in ("1", "0"):
+        monkeypatch.setenv(ENV_NO_COMPILED, path)
+        first_maps = np.full((30, v), 7.0)
+        seen[path] = observed_chunk(plan, first, chunk, tile), observed_chunk(plan, first, chunk, tile, first_maps)
+        seen[path] += (first_maps,)
+    for got_seen, ref_seen in zip(seen["0"], seen["1"], strict=True):  # the first batch, identity first
+        if isinstance(got_seen, np.ndarray):
+            np.testing.assert_array_equal(got_seen.view(np.int64), ref_seen.view(np.int64))
+            continue
+        for got_part, ref_part in zip(got_seen, ref_seen, strict=True):
+            for field in ("stat", "work", "threshold", "counts", "maxima"):
+                if hasattr(ref_part, field):
+                    got_value, ref_value = getattr(got_part, field), getattr(ref_part, field)
+                    assert got_value.dtype == ref_value.dtype
+                    np.testing.assert_array_equal(got_value, ref_value)
+    observed = seen["1"][0][0]
     for path in ("1", "0"):
         monkeypatch.setenv(ENV_NO_COMPILED, path)
         maps = np.full((31, v), 7.0)

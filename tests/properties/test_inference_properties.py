@@ -180,7 +180,7 @@ def test_tfce_step_does_not_depend_on_the_last_bits_of_the_maximum():
 def test_results_do_not_depend_on_thread_count():
     # Enough voxels that every thread gets several tiles of its own: tiles of tile_width(m B) voxels.
     rng = np.random.default_rng(11)
-    n, V = 24, 6000
+    n, V = 24, 20_000
     X = np.column_stack([np.ones(n), np.r_[np.zeros(12), np.ones(12)], rng.standard_normal((n, 2))])
     Y = rng.standard_normal((n, V))
     Y[:, :300] += 0.8 * X[:, [1]]

@@ -5,8 +5,9 @@ fit chunk by chunk (:class:`~groupmodel.analysis.chunk_fit.ChunkFit`) and the pe
 (:func:`groupmodel.inference.distributed.run_on_cluster`, and with variance groups
 :func:`groupmodel.inference.welch_distributed.welch_on_cluster`).  The client sends each task the chunk's fit
 (the prepared design), the paths of the images (once per worker) and the columns of its chunk; the workers
-read the images from the shared file system themselves.  The client still reads every image once, to find
-the analysis mask (as a local run does).
+read the images from the shared file system themselves.  The analysis mask is found by the workers too
+(:func:`cluster_mask`): each scans groups of the images for finite and nonzero values and the client combines the
+groups (:mod:`groupmodel.images.mask_scan`), so the client never holds or spills the data matrix.
 """
 
 from __future__ import annotations
@@ -19,11 +20,12 @@ import numpy as np
 
 from ..errors import ImageError, InputError
 from ..images.columns import ColumnReader, first_unreadable
+from ..images.mask_scan import ScanPart, masked_columns, scan_part
 from ..inference.distributed import cached_columns, home_worker
 from ..runtime.cluster import CONNECT_TIMEOUT, DaskExecutor, dask_executor
 from .chunk_fit import ChunkFit, ChunkParts
 
-__all__ = ["ClusterSession", "cluster_session", "fitted_chunks"]
+__all__ = ["ClusterSession", "cluster_mask", "cluster_session", "fitted_chunks"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,6 +41,62 @@ class ClusterSession:
         return {"scheduler": self.executor.record()}
 
 
+#: Groups of images per worker thread when the workers find the mask (a few each, so that a slow worker
+#: does not hold up the others).
+SCAN_GROUPS_PER_THREAD = 4
+
+
+def _ready(client: Any, source: Any) -> DaskExecutor:
+    """The executor on ``client`` once a worker has joined and every worker can read every image."""
+    executor = dask_executor(client)
+    try:
+        executor.client.wait_for_workers(1, timeout=CONNECT_TIMEOUT)
+    except (TimeoutError, OSError):
+        raise InputError(f"the Dask scheduler has no workers after {CONNECT_TIMEOUT:g} s; start workers "
+                         "(dask worker <scheduler address>, or a batch job of them) and run again") from None
+    paths = list(dict.fromkeys(str(r.path) for r in source.refs if r.path is not None))
+    missing = executor.on_every_worker(first_unreadable, paths)
+    for worker, path in sorted(missing.items()):
+        if path is not None:
+            raise ImageError(f"Dask worker {worker}: cannot read image {path} (from {source.origin}); the workers "
+                             "must see the images at the same paths as this machine: put them on a file system "
+                             "shared with the workers")
+    return executor
+
+
+def cluster_mask(client: Any, source: Any, mask: Any, mask_label: str = "mask",
+                 progress: Callable[[int, int], None] | None = None) -> Any:
+    """The analysis mask found by the workers, each scanning groups of the images (one image at a time), and a
+    :class:`~groupmodel.images.MaskedData` whose columns are read from the files when asked for
+    (:func:`groupmodel.images.mask_scan.masked_columns`): the same mask, exclusions and warnings as reading the
+    images here.  ``progress(done, total)`` counts images.
+
+    Raises
+    ------
+    InputError
+        No worker joined the scheduler within :data:`CONNECT_TIMEOUT` seconds.
+    ImageError
+        A worker cannot read an image, or an image has no finite value.
+    """
+    executor = _ready(client, source)
+
+    def run(groups: list[tuple[int, ...]], cand: Any) -> Iterator[ScanPart]:
+        source_f, cand_f = executor.put(source), executor.put(cand)
+        futures = [executor.submit(scan_part, source_f, i, g, cand_f, 1) for i, g in enumerate(groups)]
+        done = 0
+        try:
+            for fut in executor.completed(futures):
+                part = fut.result()
+                done += len(part.positions)
+                if progress is not None:
+                    progress(done, len(source))
+                yield part
+        finally:
+            executor.cancel(futures)
+
+    return masked_columns(source, mask, mask_label, run, groups=SCAN_GROUPS_PER_THREAD * executor.workers)
+
+
 def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> ClusterSession:
     """The session of one fit: waits for a worker, checks that every worker can read every image.
     ``cache_bytes``: what each worker may keep of the data it read, for later tasks.
@@ -50,20 +108,7 @@ def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> Cl
     ImageError
         A worker cannot read an image (the first such path is named).
     """
-    executor = dask_executor(client)
-    try:
-        executor.client.wait_for_workers(1, timeout=CONNECT_TIMEOUT)
-    except (TimeoutError, OSError):
-        raise InputError(f"the Dask scheduler has no workers after {CONNECT_TIMEOUT:g} s; start workers "
-                         "(dask worker <scheduler address>, or a batch job of them) and run again") from None
-    reader = ColumnReader.of(source, data)
-    missing = executor.on_every_worker(first_unreadable, reader.paths)
-    for worker, path in sorted(missing.items()):
-        if path is not None:
-            raise ImageError(f"Dask worker {worker}: cannot read image {path} (from {source.origin}); the workers "
-                             "must see the images at the same paths as this machine: put them on a file system "
-                             "shared with the workers")
-    return ClusterSession(executor, reader, int(cache_bytes))
+    return ClusterSession(_ready(client, source), ColumnReader.of(source, data), int(cache_bytes))
 
 
 def _fit_task(reader: ColumnReader, work: ChunkFit, s: int, e: int, cache_bytes: int) -> tuple[int, int, ChunkParts]:

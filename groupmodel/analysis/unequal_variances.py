@@ -14,15 +14,12 @@ from functools import partial
 
 import numpy as np
 
-from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, screen, unequal
+from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, VOXEL_SHARE_WARN, screen, unequal
 from ..engine.welch import GROUP_DF_MIN, group_residual_df
 from ..model.assembly import Model
 from ..text import number_text
 
 __all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "VOXEL_SHARE_WARN", "UnequalVarianceTally", "residuals_of"]
-
-#: A voxelwise fit warns when more than this share of the voxels in the mask meet both conditions.
-VOXEL_SHARE_WARN = 0.10
 
 
 def residuals_of(u: np.ndarray, y: np.ndarray, centred: bool) -> np.ndarray:

@@ -247,8 +247,8 @@ def fit_images(
     log = log if log is not None else StageLog(quiet=True)
     plan = parallel_plan(inference, budget)
     log.info(plan.cores.describe())
-    with log.stage("reading images"):
-        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log)
+    with log.stage("reading images" if client is None else "finding the mask on the cluster"):
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log, client)
     try:
         n_vox = data.n_in_mask
         if chunk_voxels is None:
@@ -315,19 +315,25 @@ def fit_images(
 
 
 def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,
-          log: StageLog | None = None) -> Any:
+          log: StageLog | None = None, client: Any = None) -> Any:
     """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar (and
-    progress lines for logs)."""
+    progress lines for logs).  With a Dask ``client`` the workers find the mask and the columns stay in the
+    files (:func:`~.cluster_fit.cluster_mask`)."""
     from ..images import load_masked
 
-    bar = progress_bar(len(source), "reading images", unit="image", enabled=progress)
+    what = "reading images" if client is None else "scanning images on the cluster"
+    bar = progress_bar(len(source), what, unit="image", enabled=progress)
 
     def report(done: int, total: int) -> None:
         bar.update_to(done)
         if log is not None:
-            log.progress("reading images", done, total, "images")
+            log.progress(what, done, total, "images")
 
     try:
+        if client is not None:
+            from .cluster_fit import cluster_mask
+
+            return cluster_mask(client, source, mask, progress=report if bar.shown or log else None)
         return load_masked(source, mask, budget.data_bytes, progress=report if bar.shown or log else None)
     finally:
         bar.close()

@@ -39,6 +39,7 @@ from .cells import HandDesign
 from .context import AuditContext, check_shape, make_request, read_inputs
 from .contrasts import ContrastReport, assess_contrasts
 from .identify import identify_columns
+from .image_variances import image_variance_findings
 from .pasted import pasted_covariate_findings
 from .read import AuditFinding
 from .report import SECTIONS, AuditReport
@@ -69,6 +70,7 @@ PIPELINE: tuple[Callable[[AuditContext], list[AuditFinding]], ...] = (
     covariate_findings,
     spec_findings,
     variance_findings,
+    image_variance_findings,
 )
 
 

@@ -21,7 +21,7 @@ SECTIONS = {
     "contrasts": "What each contrast tests",
     "covariates": "Covariates",
     "spec": "Compared with the spec",
-    "variances": "Residual variances of the outcome",
+    "variances": "Residual variances by group",
 }
 
 

@@ -11,12 +11,14 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "group_variances", "screen", "unequal"]
+__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "VOXEL_SHARE_WARN", "group_variances", "screen", "unequal"]
 
 #: Largest over smallest residual variance of a factor's groups above which a fit warns (with Levene's p).
 VARIANCE_RATIO_WARN = 2.0
 #: Levene's test (scipy.stats.levene, median-centred) must give p below this too.
 LEVENE_ALPHA = 0.05
+#: Over images, a warning when more than this share of the voxels (vertices) in the mask meet both conditions.
+VOXEL_SHARE_WARN = 0.10
 
 
 def group_variances(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -64,6 +64,15 @@ class ColumnReader:
         """Every image file, once each, in observation order."""
         return list(dict.fromkeys(str(r.path) for r in self.source.refs if r.path is not None))
 
+    def __getitem__(self, key: tuple[slice, slice]) -> np.ndarray:
+        """``reader[:, a:b]``: columns ``a:b`` of every row, read as :meth:`read` does (so that the reader may stand
+        where the matrix would; only whole rows and contiguous columns)."""
+        rows, cols = key
+        if rows != slice(None) or not isinstance(cols, slice) or cols.step not in (None, 1):
+            raise TypeError(f"a ColumnReader reads blocks of columns [:, a:b]; got {key!r}")
+        s, e, _ = cols.indices(self.n_columns)
+        return self.read(s, max(s, e))
+
     def read(self, s: int, e: int) -> np.ndarray:
         """Columns ``s:e``, shape (n_obs, e - s), in the storage dtype; every image read once (one at a time)."""
         where = self.index[s:e]

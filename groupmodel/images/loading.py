@@ -337,9 +337,13 @@ def _layout(tally: _Tally, cand: _Candidates) -> tuple[np.ndarray, np.ndarray]:
     The kept candidates are taken out of ``tally`` here, and freed as soon as they are used: this is the
     peak of the work after the reading (index arrays of the whole grid).
     """
+    return layout_of(tally.take_keep(), cand)
+
+
+def layout_of(keep: np.ndarray, cand: _Candidates) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_layout` for the kept candidates ``keep`` (finite in every image and nonzero in some)."""
     shape = cand.grid.shape
     n_grid = cand.grid.n_voxels
-    keep = tally.take_keep()
     if cand.cand_f is None:
         # keep is in Fortran order; the columns go in C order of the mask
         full_mask = np.ascontiguousarray(keep.reshape(shape[::-1]).T)

@@ -9,7 +9,7 @@ The work of one contrast is split by chunks of voxels and by groups of batches o
   maps of every chunk of that batch (worker to worker) and returns the TFCE and cluster maxima.
 
 Every task calls the same pure functions as the local engine (:func:`~.kernel.observed_chunk`,
-:func:`~.kernel.chunk_nulls`, :func:`~.kernel.map_nulls`) on the same chunks, tiles and batches, and reads
+:func:`~.kernel.chunk_nulls`, :func:`~.map_tasks.map_nulls`) on the same chunks, tiles and batches, and reads
 its chunk itself through a reader (an object with ``read(s, e)``, e.g. :class:`groupmodel.images.ColumnReader`),
 so the client never sends the data.  The client combines counts by sum and maxima by maximum, by position,
 in whatever order the tasks finish, so results equal the local run's.  A lost worker's tasks are rerun by
@@ -29,7 +29,8 @@ import numpy as np
 from ..runtime.cores import single_threaded_blas
 from .driver import _Accumulated, _check, _chunks, permutation_result
 from .freedman_lane import ContrastPlan, plan_contrast, stack_rows
-from .kernel import ChunkNulls, ObservedChunk, Scratch, UnitChunk, chunk_nulls, map_nulls, observed_chunk, tile_width
+from .kernel import ChunkNulls, ObservedChunk, Scratch, UnitChunk, chunk_nulls, observed_chunk, tile_width
+from .map_tasks import map_nulls
 from .rearrangements import permutation_set
 from .results import PermutationResult
 from .settings import ContrastTest, Execution, MapSettings, Rearrangements

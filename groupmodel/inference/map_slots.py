@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from .kernel import MapSpec, worker_nulls
+from .map_tasks import MapSpec, worker_nulls
 
 __all__ = ["MapSlots", "SlotRef", "slot_nulls"]
 
@@ -116,5 +116,5 @@ def _read(ref: SlotRef) -> np.ndarray:
 
 
 def slot_nulls(ref: SlotRef, spec: MapSpec) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`~groupmodel.inference.kernel.worker_nulls` on maps carried in a slot."""
+    """:func:`~groupmodel.inference.map_tasks.worker_nulls` on maps carried in a slot."""
     return worker_nulls(_read(ref), spec)

@@ -27,8 +27,8 @@ from ..runtime.executors import InlineExecutor, ProcessExecutor
 from .clusters import Clusters, label_clusters, stat_threshold
 from .freedman_lane import ContrastPlan
 from .graph import Adjacency
-from .kernel import MapSpec, enhance_input, map_nulls, warm_kernels, worker_init, worker_nulls
 from .map_slots import MapSlots, slot_nulls
+from .map_tasks import MapSpec, enhance_input, map_nulls, warm_kernels, worker_init, worker_nulls
 from .results import ClusterResult, TfceResult, WholeMapResult, fwe_p
 from .settings import MapSettings
 from .tfce import default_step, tfce

@@ -37,7 +37,7 @@ def test_check_warns_when_group_variances_differ(tmp_path: Path) -> None:
     p = stats.levene(*parts, center="median").pvalue  # residuals are the data minus each group's mean
     assert len(found) == 1 and found[0].section == "variances" and found[0].severity == "warning"
     assert f"p = {p:.4g}" in found[0].message and '"variance_groups": "group"' in found[0].message
-    assert "Residual variances of the outcome" in report.format()
+    assert "Residual variances by group" in report.format()
 
 
 def test_check_is_quiet_for_equal_variances(tmp_path: Path) -> None:

@@ -92,6 +92,21 @@ def test_cluster_fit_equals_the_local_fit_for_any_chunking(client, study: Path, 
     assert {"p_fwe", "p_tfce_fwe", "p_cluster_fwe"} <= set(local_fit.maps["age"])
 
 
+def test_the_workers_find_the_mask_and_the_client_reads_no_matrix(client, study: Path, local_fit,
+                                                                   monkeypatch) -> None:
+    # The client no longer reads the images into the data matrix (nor spills it): the workers scan them for the
+    # mask (groupmodel.images.mask_scan), with the same mask, exclusion counts and warnings as the local read.
+    import groupmodel.images as images_module
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("load_masked called on the client")
+
+    monkeypatch.setattr(images_module, "load_masked", refuse)
+    on_cluster = fit_images(study, progress=False, inference=OPTS, client=client)
+    _assert_same(local_fit, on_cluster, "workers' mask", same_chunks=True)
+    assert on_cluster.mask_report == local_fit.mask_report and on_cluster.mask_report["voxels_in_mask"] > 0
+
+
 def test_cluster_t_matches_statsmodels(client, study: Path) -> None:
     # Reference: statsmodels OLS and its t_test of the hypothesis's weights, voxel by voxel.
     sm = pytest.importorskip("statsmodels.api")

@@ -16,7 +16,7 @@ import pytest
 from scipy import ndimage
 
 from groupmodel.inference.graph import grid_adjacency, mesh_adjacency
-from groupmodel.inference.kernel import MapSpec, map_nulls
+from groupmodel.inference.map_tasks import MapSpec, map_nulls
 from groupmodel.inference.tfce import TfceParams, tfce, tfce_max
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))

@@ -125,6 +125,12 @@ def _row_many(g0: np.ndarray, a: np.ndarray, rest: np.ndarray, orient: int, o: n
             o[j] = (-np.copysign(a[j], g0[j])) / rest[j]
 
 
+@numba.njit(inline="always", **_JIT)
+def _larger(x: float, top: float) -> float:
+    """x if it is larger than top, else top (a NaN x never is)."""
+    return x if x > top else top
+
+
 @numba.njit(**_JIT)
 def _top(o: np.ndarray) -> float:
     """The largest value ignoring NaN (NaN if all are).  Eight running maxima over neighbouring elements, so
@@ -134,28 +140,13 @@ def _top(o: np.ndarray) -> float:
     w = o.size
     full = w - w % 8
     for j in range(0, full, 8):
-        x = o[j]
-        t0 = x if x > t0 else t0
-        x = o[j + 1]
-        t1 = x if x > t1 else t1
-        x = o[j + 2]
-        t2 = x if x > t2 else t2
-        x = o[j + 3]
-        t3 = x if x > t3 else t3
-        x = o[j + 4]
-        t4 = x if x > t4 else t4
-        x = o[j + 5]
-        t5 = x if x > t5 else t5
-        x = o[j + 6]
-        t6 = x if x > t6 else t6
-        x = o[j + 7]
-        t7 = x if x > t7 else t7
+        t0, t1, t2, t3 = _larger(o[j], t0), _larger(o[j + 1], t1), _larger(o[j + 2], t2), _larger(o[j + 3], t3)
+        t4, t5, t6, t7 = _larger(o[j + 4], t4), _larger(o[j + 5], t5), _larger(o[j + 6], t6), _larger(o[j + 7], t7)
     top = -np.inf
     for j in range(full, w):
-        x = o[j]
-        top = x if x > top else top
+        top = _larger(o[j], top)
     for t in (t0, t1, t2, t3, t4, t5, t6, t7):
-        top = t if t > top else top
+        top = _larger(t, top)
     if top == -np.inf:  # every value -inf or NaN: NaN only if all are
         for j in range(w):
             if o[j] == o[j]:

@@ -64,10 +64,10 @@ def _stacked(model: Model, name: str, data: Any, chunk_voxels: int) -> np.ndarra
     """The transformed data of one hypothesis, (n_entered * c, n_vox), participant-major, chunk by chunk."""
     strata = model.strata
     assert strata is not None
-    t = strata.transform_matrix(name)
-    out = np.empty((t.shape[0], data.n_in_mask))
+    t = strata.tests[name]
+    out = np.empty((len(t.entered) * t.within_df, data.n_in_mask))
     for cols, y in data.chunks(chunk_voxels):
-        out[:, cols] = t @ y
+        out[:, cols] = strata.transformed(name, y).reshape(out.shape[0], -1)
     return out
 
 

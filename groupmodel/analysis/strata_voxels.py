@@ -1,8 +1,9 @@
 """The voxelwise fit of a model with within-participant factors: every hypothesis in its error stratum.
 
 Chunk by chunk of the images as loaded, each hypothesis's transformed data (participant averages, within
-contrasts or weighted sums) are one matrix product with :meth:`groupmodel.model.strata.Strata.transform_matrix`
-and are fitted by :func:`groupmodel.analysis.strata_fit.fit_stratum`, the same function as the table-level fit;
+contrasts or weighted sums) are formed by :meth:`groupmodel.model.strata.Strata.transformed` (the observations
+gathered by within cell, the within weights applied in one small product) and are fitted by
+:func:`groupmodel.analysis.strata_fit.fit_stratum`, the same function as the table-level fit;
 nothing transformed is kept beyond the chunk, and nothing is written to disk.
 """
 
@@ -52,15 +53,12 @@ def strata_degrees(model: Model) -> dict[str, tuple[int, int]]:
 
 
 def _average_map(model: Model) -> tuple[np.ndarray, np.ndarray]:
-    """The transform to each complete participant's average over the within cells, and their between design."""
+    """The observations of each complete participant by within cell, (n_complete, k), and their between design
+    (each participant's average over the within cells is the mean of its row's observations)."""
     strata = model.strata
     assert strata is not None
     complete = np.flatnonzero((strata.observation_index >= 0).all(axis=1))
-    k = len(strata.within_cells)
-    out = np.zeros((len(complete), strata.n_observations))
-    for i, p in enumerate(complete):
-        out[i, strata.observation_index[p]] = 1.0 / k
-    return out, strata.between.matrix[complete]
+    return strata.observation_index[complete], strata.between.matrix[complete]
 
 
 def average_df(model: Model) -> int:
@@ -80,7 +78,6 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
     hyps = model.hypotheses
     maps = {n: {k: np.empty(n_vox) for k in stratum_map_names(t, hyps[n])} for n, t in tests.items()}
     mean_input = np.empty(n_vox)
-    transforms = {n: strata.transform_matrix(n) for n in tests}
     designs = {n: strata.design_of(n) for n in tests}
     average, x_avg = _average_map(model)
     resid_var = np.empty(n_vox)
@@ -88,16 +85,14 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
     bar = progress_bar(n_vox, "fitting", enabled=progress)
     try:
         for cols, y in data.chunks(chunk_voxels):
-            v = y.shape[1]
             scale = np.abs(y).max(axis=0)
             for name, t in tests.items():
-                z = (transforms[name] @ y).reshape(len(t.entered), t.within_df, v)
-                r = fit_stratum(designs[name], t, z, scale)
+                r = fit_stratum(designs[name], t, strata.transformed(name, y), scale)
                 _fill(maps[name], cols, r)
                 for k, values in strata_effect_sizes(hyps[name], t, r, ci_level).items():
                     maps[name][k][cols] = values
             mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
-            avg = average @ y
+            avg = y[average].mean(axis=1)  # each complete participant's average over the within cells
             fitted = x_avg @ np.linalg.lstsq(x_avg, avg, rcond=None)[0]
             resid_var[cols] = ((avg - fitted) ** 2).sum(axis=0) / max(df_avg, 1)
             bar.update(cols.stop - cols.start)

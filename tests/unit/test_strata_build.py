@@ -56,3 +56,21 @@ def test_build_writes_each_stratum(tmp_path: Path) -> None:
     assert (gain["session=post"], gain["session=mid"], gain["session=pre"]) == (1, 0, -1)
     design = pd.read_csv(out / "stratum-between_design.tsv", sep="\t")
     assert design.participant_id.tolist() == ["sub-01", "sub-02", "sub-03", "sub-04"]
+
+
+def test_transformed_data_equal_the_transform_matrix(tmp_path: Path) -> None:
+    # The gathered transform (observations by within cell, weights in one small product) against the dense
+    # transform matrix it replaces in the fits: the same numbers, also for a participant who enters a hypothesis
+    # without an observation the hypothesis gives no weight (sub-05 has no post; mid - pre needs none).
+    path = study(tmp_path)
+    spec = json.loads(path.read_text())
+    spec["hypotheses"]["mid_vs_pre"] = {"compare": {"session": ["mid", "pre"]}}
+    path.write_text(json.dumps(spec))
+    strata = build(path).strata
+    values = np.random.default_rng(2).standard_normal((strata.n_observations, 7))
+    assert strata.tests["mid_vs_pre"].entered.size == 5
+    for name, t in strata.tests.items():
+        got = strata.transformed(name, values)
+        dense = (strata.transform_matrix(name) @ values).reshape(len(t.entered), t.within_df, 7)
+        assert got.shape == dense.shape and got.flags.c_contiguous
+        np.testing.assert_allclose(got, dense, rtol=1e-13, atol=1e-13, err_msg=name)

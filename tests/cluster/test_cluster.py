@@ -15,6 +15,7 @@ import signal
 import sys
 from pathlib import Path
 
+import nibabel as nib
 import numpy as np
 import pandas as pd
 import pytest
@@ -105,6 +106,17 @@ def test_the_workers_find_the_mask_and_the_client_reads_no_matrix(client, study:
     on_cluster = fit_images(study, progress=False, inference=OPTS, client=client)
     _assert_same(local_fit, on_cluster, "workers' mask", same_chunks=True)
     assert on_cluster.mask_report == local_fit.mask_report and on_cluster.mask_report["voxels_in_mask"] > 0
+
+
+def test_an_image_without_finite_values_found_by_a_worker_is_one_image_error(client, tmp_path: Path) -> None:
+    spec = make_study(tmp_path / "nan", n=9)
+    _, source, _ = open_images(build(load_spec(spec)))
+    bad = source.refs[4].path
+    img = nib.load(bad)
+    nib.save(nib.Nifti1Image(np.full(img.shape, np.nan, dtype=np.float32), img.affine), bad)
+    with pytest.raises(ImageError, match="NaN/inf everywhere") as caught:
+        fit_images(spec, progress=False, inference=InferenceOptions(), client=client)
+    assert source.refs[4].label in str(caught.value) and caught.value.exit_code == 2
 
 
 def test_cluster_t_matches_statsmodels(client, study: Path) -> None:

@@ -288,7 +288,9 @@ def scan_tile(
     B = G.shape[0] // m
     o = np.empty(w)
     a = np.empty(w)
-    rest = np.ones(w)  # stays all ones for the fused rows when fewer than three nuisance rows move
+    # rest stays all ones for the fused rows when fewer than three nuisance rows move: they run first, and only the
+    # rows after them (maps, missing data: _sums) overwrite it
+    rest = np.ones(w)
     zeros = np.zeros(w)
     fused = bad.size == 0
     for b in range(stats.shape[0] if fused else 0, B if fused else 0):

@@ -13,7 +13,9 @@ What it does (all data invented and seeded, as in ``permutation_speed.py``):
      before the clock);
 
    alternating the two, ``--repeats`` times each (medians are printed), since the load of a shared
-   machine changes under a long run;
+   machine changes under a long run; and, once per worker count, the time the workers take to find the
+   analysis mask (``cluster_mask``: each scans groups of the images, the client holds no data matrix) against
+   reading the mask and the matrix here (``load_masked``), and whether the masks are the same;
 
    and prints the time per permutation, the scaling from 1 to 2 workers, the overhead of N workers
    against N local threads (goal: within 15%), the tasks and the measured cost per task.  The p maps of
@@ -43,6 +45,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from permutation_speed import FULL, QUICK, make_data  # noqa: E402
 
+from groupmodel.analysis.cluster_fit import cluster_mask  # noqa: E402
 from groupmodel.images import check_images, load_masked  # noqa: E402
 from groupmodel.images.columns import ColumnReader  # noqa: E402
 from groupmodel.images.sources import ImageRef, ImageSource  # noqa: E402
@@ -86,8 +89,9 @@ def main() -> None:
     print(f"load average before: {os.getloadavg()}")
     with tempfile.TemporaryDirectory() as tmp:
         source, mask_path, X = write_study(Path(tmp), cfg, args.smooth)
-        data = load_masked(source, mask_path, 4 * 2**30)
+        t_load, data = _timed(lambda: load_masked(source, mask_path, 4 * 2**30))
         reader = ColumnReader.of(source, data)
+        print(f"the mask and data matrix read here (load_masked): {t_load:.1f} s")
         n, V = data.data.shape
         print(f"{n} participants x {V} voxels, {J} permutations, images in {tmp} (uncompressed NIfTI)")
         L = np.zeros((1, X.shape[1]))
@@ -101,6 +105,9 @@ def main() -> None:
             ex = open_scheduler(f"local:{workers}")
             try:
                 ex.client.wait_for_workers(workers)
+                t_mask, found = _timed(lambda ex=ex: cluster_mask(ex.client, source, str(mask_path)))
+                print(f"{workers} worker(s): the mask found by the workers (cluster_mask, no matrix on the client) in "
+                      f"{t_mask:.1f} s; the same mask as load_masked: {np.array_equal(found.mask, data.mask)}")
                 for _ in range(args.repeats):  # local and cluster alternating: the load changes under us
                     t0, c0 = time.perf_counter(), time.process_time()
                     run_permutations(test, data.data, rearr, execution=Execution(threads=workers))

@@ -19,6 +19,7 @@ from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, VOXEL_SHA
 from ..errors import InputError
 from ..images.loading import load_masked
 from ..images.sources import ImageRef, ImageSource
+from ..runtime.progress import progress_bar
 from ..text import number_text
 from .context import AuditContext
 from .read import AuditFinding, participant_in_path, read_image_list
@@ -84,14 +85,17 @@ def image_variance_findings(ctx: AuditContext) -> list[AuditFinding]:
     ids = alignment.table.ids
     source = ImageSource(tuple(ImageRef(i, ids[t], p) for i, (p, t) in enumerate(zip(paths, claimed, strict=True))),
                          "column", f"--images {images.name}")
+    bar = progress_bar(len(source), "reading images for the variance check", unit="image")  # on a terminal only
     try:
-        with load_masked(source, None, CHECK_MEMORY) as data:
+        with load_masked(source, None, CHECK_MEMORY, progress=lambda done, _: bar.update_to(done)) as data:
             counts = _counts(data.data, u, groups)
             elements = "vertices" if data.grid.kind == "gifti" else "voxels"
     except InputError as exc:
         return [AuditFinding("note", "image_variances_unread",
                              f"{images.name}: the residual variances of the images were not checked: {exc}",
                              "variances")]  # type: ignore[arg-type]
+    finally:
+        bar.close()
     out = []
     for factor, (hit, total) in counts.items():
         if total and hit > VOXEL_SHARE_WARN * total:

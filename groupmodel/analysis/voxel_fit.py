@@ -223,27 +223,15 @@ def fit_images(
         its workers read the images themselves; ``memory_bytes`` is then also each worker's budget.  The
         results are those of the local run.
     """
-    from ..images import chunk_size_for
-
     clock = RunClock.start()
     if not isinstance(spec, ModelSpec):
         spec = load_spec(spec)
     if inference is None:
         inference = InferenceOptions.from_spec(spec)
     budget = MemoryBudget(memory_bytes)
-    model = build(spec)
-    require_fittable(model)
-    model, source, dropped = open_images(model, drop_missing)
-    require_fittable(model)
-    if model.strata is not None:
-        check_strata_inference(model, inference)
-        if client is not None:
-            raise InputError(f"{spec.name}: within-participant factors are fitted on this machine only, not on a "
-                             "Dask cluster; leave out --scheduler (client)")
-    prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
-    welch = welch_setup(model, prepared) if prepared is not None else None
-    if welch is not None:
-        check_welch_inference(inference)
+    opened = _opened(spec, inference, drop_missing, client)
+    model, source, dropped, prepared, welch = (opened.model, opened.source, opened.dropped, opened.prepared,
+                                               opened.welch)
     log = log if log is not None else StageLog(quiet=True)
     plan = parallel_plan(inference, budget)
     log.info(plan.cores.describe())
@@ -251,32 +239,18 @@ def fit_images(
         data = _load(source, mask if mask is not None else spec.mask, budget, progress, log, client)
     try:
         n_vox = data.n_in_mask
-        if chunk_voxels is None:
-            extra = STRATA_EXTRA_MAPS if model.strata is not None else 0  # the epsilon and corrected p maps
-            n_maps = sum(len(_map_names(h)) + extra for h in model.hypotheses.values()) + 1
-            chunk_voxels = chunk_size_for(model.design.n_observations, len(model.hypotheses),
-                                          budget.chunk_work_bytes(n_maps, n_vox))
+        chunk_voxels = chunk_voxels if chunk_voxels is not None else _default_chunk(model, budget, n_vox)
         session = None
         if client is not None:
             from .cluster_fit import cluster_session
 
             session = cluster_session(client, source, data, budget.permutation_bytes)
         tally = UnequalVarianceTally(model, prepared.u, prepared.centred) if prepared is not None else None
-        degrees: dict[str, tuple[int, int]] = {}
         with log.stage("fitting"):
-            if prepared is None:  # within-participant factors: each hypothesis in its error stratum
-                maps, resid_var, mean_input = strata_pass(model, data, chunk_voxels, progress, inference.ci_level)
-                extras = None
-                degrees, df_resid = strata_degrees(model), average_df(model)  # residual variance: averages'
-            elif welch is None:
-                maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress,
-                                                           ci_level=inference.ci_level, tally=tally, session=session,
-                                                           threads=plan.threads)
-                mean_input, df_resid = extras[0], prepared.df_resid
-            else:  # Welch's v and G: intervals only (no effect sizes)
-                maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, tally, session,
-                                                     ci_level=inference.ci_level, threads=plan.threads)
-                mean_input, df_resid = extras[0], prepared.df_resid
+            fitted = _fitted(opened, data, chunk_voxels, progress, inference.ci_level,
+                             _Where(tally, session, plan.threads))
+        maps, resid_var, extras = fitted.maps, fitted.resid_var, fitted.extras
+        mean_input, df_resid, degrees = fitted.mean_input, fitted.df_resid, fitted.degrees
         # A rank-deficient design is fitted (with a generalised inverse); say so where the fit is reported.
         warnings = ([f.message for f in model.findings if f.code == "rank_deficient"] + list(data.warnings)
                     + _flat_warnings(maps, n_vox, elements_of(data.grid))
@@ -293,13 +267,7 @@ def fit_images(
                                           inference, len(model.hypotheses)))
         for name, res in permuted.items():
             maps[name].update(res.maps)
-        report = {
-            "voxels_in_mask": int(n_vox),
-            "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
-            "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
-            "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
-        }
-        return VoxelFit(model, data.grid, data.mask, maps, resid_var, df_resid, report, dropped,
+        return VoxelFit(model, data.grid, data.mask, maps, resid_var, df_resid, _mask_report(data), dropped,
                         warnings, inference=inference.as_dict(),
                         records={n: r.record for n, r in permuted.items()},
                         tables={n: r.tables for n, r in permuted.items()},
@@ -312,6 +280,94 @@ def fit_images(
                         variance_groups=welch_record(welch) if welch is not None else None, degrees=degrees)
     finally:
         data.close()
+
+
+def _default_chunk(model: Model, budget: MemoryBudget, n_vox: int) -> int:
+    """Voxels per chunk from the memory budget and the maps every hypothesis keeps."""
+    from ..images import chunk_size_for
+
+    extra = STRATA_EXTRA_MAPS if model.strata is not None else 0  # the epsilon and corrected p maps
+    n_maps = sum(len(_map_names(h)) + extra for h in model.hypotheses.values()) + 1
+    return chunk_size_for(model.design.n_observations, len(model.hypotheses), budget.chunk_work_bytes(n_maps, n_vox))
+
+
+def _mask_report(data: Any) -> dict[str, int]:
+    """The voxels in the mask and those left out, by reason."""
+    return {
+        "voxels_in_mask": int(data.n_in_mask),
+        "voxels_left_out_nonfinite_in_some_images": int(data.n_nonfinite_excluded),
+        "voxels_left_out_nonfinite_in_all_images": int(data.n_nonfinite_everywhere),
+        "voxels_left_out_zero_in_all_images": int(data.n_zero_excluded),
+    }
+
+
+@dataclass(frozen=True)
+class _Opened:
+    """A spec built into a model whose images are resolved and checked, with what the fit needs of the design."""
+
+    model: Model
+    source: Any
+    dropped: list[tuple[str, str]]
+    prepared: Prepared | None  # None with within-participant factors (each hypothesis in its stratum)
+    welch: WelchSetup | None
+
+
+def _opened(spec: ModelSpec, inference: InferenceOptions, drop_missing: bool, client: Any) -> _Opened:
+    """The model and its images, after every check that needs no image data (so a refusal comes before reading)."""
+    model = build(spec)
+    require_fittable(model)
+    model, source, dropped = open_images(model, drop_missing)
+    require_fittable(model)
+    if model.strata is not None:
+        check_strata_inference(model, inference)
+        if client is not None:
+            raise InputError(f"{spec.name}: within-participant factors are fitted on this machine only, not on a "
+                             "Dask cluster; leave out --scheduler (client)")
+    prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
+    welch = welch_setup(model, prepared) if prepared is not None else None
+    if welch is not None:
+        check_welch_inference(inference)
+    return _Opened(model, source, dropped, prepared, welch)
+
+
+@dataclass(frozen=True)
+class _Where:
+    """Where the parametric pass runs and what it also counts: the unequal-variance tally, a Dask session, threads."""
+
+    tally: UnequalVarianceTally | None
+    session: Any
+    threads: int
+
+
+@dataclass(frozen=True)
+class _Fitted:
+    """The parametric pass: maps per hypothesis, residual variance, mean input image, residual df, each
+    hypothesis's (df1, df2) in its stratum (within-participant factors only), the per-participant sums."""
+
+    maps: dict[str, dict[str, np.ndarray]]
+    resid_var: np.ndarray
+    mean_input: np.ndarray
+    df_resid: int
+    degrees: dict[str, tuple[int, int]]
+    extras: Any
+
+
+def _fitted(opened: _Opened, data: Any, chunk_voxels: int, progress: bool, ci_level: float,
+            where: _Where) -> _Fitted:
+    """Every hypothesis's parametric maps: in its error stratum (within-participant factors), by OLS, or with
+    Welch's v and G (intervals only, no effect sizes)."""
+    model, prepared, welch = opened.model, opened.prepared, opened.welch
+    if prepared is None:
+        maps, resid_var, mean_input = strata_pass(model, data, chunk_voxels, progress, ci_level)
+        # the residual variance is the participant averages'
+        return _Fitted(maps, resid_var, mean_input, average_df(model), strata_degrees(model), None)
+    if welch is None:
+        maps, resid_var, extras = _parametric_pass(model, prepared, data, chunk_voxels, progress, ci_level=ci_level,
+                                                   tally=where.tally, session=where.session, threads=where.threads)
+    else:
+        maps, resid_var, extras = welch_maps(model, welch, data, chunk_voxels, progress, where.tally, where.session,
+                                             ci_level=ci_level, threads=where.threads)
+    return _Fitted(maps, resid_var, extras[0], prepared.df_resid, {}, extras)
 
 
 def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,

@@ -15,10 +15,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..engine.ols import Prepared, prepare
+from ..engine.ols import Prepared
 from ..engine.peaks import peak_element, statistic_map
-from ..errors import InputError
-from ..model.assembly import Model, build
+from ..model.assembly import Model
 from ..model.spec import ModelSpec, load_spec
 from ..outputs.provenance import RunClock, RunInputs
 from ..runtime.log import StageLog
@@ -33,14 +32,14 @@ from .corrections import (
     permutation_inference,
 )
 from .effect_maps import effect_size_names, effect_sizes
+from .fit_setup import Opened, open_images, opened_model
 from .parallel import parallel_plan, spill_warning
 from .participant_check import ParticipantCheck, residual_table
-from .strata_inference import check_strata_inference, strata_permutation_inference
+from .strata_inference import strata_permutation_inference
 from .strata_voxels import STRATA_EXTRA_MAPS, average_df, strata_degrees, strata_pass
-from .table_fit import require_fittable
 from .unequal_variances import UnequalVarianceTally
-from .welch_fit import WelchSetup, welch_maps, welch_record, welch_setup
-from .welch_inference import check_welch_inference, welch_permutation_inference
+from .welch_fit import WelchSetup, welch_maps, welch_record
+from .welch_inference import welch_permutation_inference
 
 #: Maps written for each kind of test (statistic names as in the sidecars).
 T_MAPS = ("effect", "se", "t", "z", "p", "mlog10p", "p_fdr", "p_bonferroni")
@@ -143,40 +142,6 @@ class VoxelFit:
         return pd.DataFrame(rows)
 
 
-def open_images(model: Model, drop_missing: bool = False) -> tuple[Model, Any, list[tuple[str, str]]]:
-    """Resolve and check the images of a model's observations; rebuild the model if some are dropped.
-
-    Returns
-    -------
-    model : Model
-        With participants without images left out (listed among the exclusions) when ``drop_missing``.
-    source : groupmodel.images.ImageSource
-        Checked, in design-row order.
-    dropped : list of (participant_id, reason)
-    """
-    from ..images import check_images, resolve_images
-
-    spec = model.spec
-    if not spec.images:
-        raise InputError(
-            f'{spec.name}: expected an "images" entry (a path pattern such as '
-            '"maps/{participant_id}_effect.nii.gz", a column of paths, or one 4-D file); found none; '
-            "add it, or fit one table column with --outcome"
-        )
-    # The participants table was read once, by build: its rows come from the sample.
-    sample = model.sample
-    source = resolve_images(spec.images, model.design.participant_ids, sample.table_rows(), spec.base_dir,
-                            source_label=f'{spec.name} "images"', file_rows=sample.file_rows,
-                            n_file_rows=sample.n_file_rows)
-    source, dropped = check_images(source, drop_missing=drop_missing)
-    if dropped:
-        model = model.without({pid: reason for pid, reason in dropped})
-        source = resolve_images(spec.images, model.design.participant_ids, model.sample.table_rows(),
-                                spec.base_dir, source_label=f'{spec.name} "images"')
-        source, _ = check_images(source)
-    return model, source, dropped
-
-
 def fit_images(
     spec: ModelSpec | Path | str,
     mask: Path | str | None = None,
@@ -229,7 +194,7 @@ def fit_images(
     if inference is None:
         inference = InferenceOptions.from_spec(spec)
     budget = MemoryBudget(memory_bytes)
-    opened = _opened(spec, inference, drop_missing, client)
+    opened = opened_model(spec, inference, drop_missing, client)
     model, source, dropped, prepared, welch = (opened.model, opened.source, opened.dropped, opened.prepared,
                                                opened.welch)
     log = log if log is not None else StageLog(quiet=True)
@@ -302,35 +267,6 @@ def _mask_report(data: Any) -> dict[str, int]:
 
 
 @dataclass(frozen=True)
-class _Opened:
-    """A spec built into a model whose images are resolved and checked, with what the fit needs of the design."""
-
-    model: Model
-    source: Any
-    dropped: list[tuple[str, str]]
-    prepared: Prepared | None  # None with within-participant factors (each hypothesis in its stratum)
-    welch: WelchSetup | None
-
-
-def _opened(spec: ModelSpec, inference: InferenceOptions, drop_missing: bool, client: Any) -> _Opened:
-    """The model and its images, after every check that needs no image data (so a refusal comes before reading)."""
-    model = build(spec)
-    require_fittable(model)
-    model, source, dropped = open_images(model, drop_missing)
-    require_fittable(model)
-    if model.strata is not None:
-        check_strata_inference(model, inference)
-        if client is not None:
-            raise InputError(f"{spec.name}: within-participant factors are fitted on this machine only, not on a "
-                             "Dask cluster; leave out --scheduler (client)")
-    prepared = prepare(model.design.matrix, model.tests()) if model.strata is None else None
-    welch = welch_setup(model, prepared) if prepared is not None else None
-    if welch is not None:
-        check_welch_inference(inference)
-    return _Opened(model, source, dropped, prepared, welch)
-
-
-@dataclass(frozen=True)
 class _Where:
     """Where the parametric pass runs and what it also counts: the unequal-variance tally, a Dask session, threads."""
 
@@ -352,7 +288,7 @@ class _Fitted:
     extras: Any
 
 
-def _fitted(opened: _Opened, data: Any, chunk_voxels: int, progress: bool, ci_level: float,
+def _fitted(opened: Opened, data: Any, chunk_voxels: int, progress: bool, ci_level: float,
             where: _Where) -> _Fitted:
     """Every hypothesis's parametric maps: in its error stratum (within-participant factors), by OLS, or with
     Welch's v and G (intervals only, no effect sizes)."""

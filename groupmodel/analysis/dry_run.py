@@ -17,15 +17,15 @@ from typing import Any
 
 import numpy as np
 
-from ..model.assembly import Model, build
+from ..model.assembly import Model
 from ..model.spec import ModelSpec, load_spec
 from ..runtime.log import duration_text
 from ..runtime.memory import MemoryBudget
 from .corrections import InferenceOptions, adjacency_for, hypothesis_method
+from .fit_setup import opened_model
 from .parallel import ParallelPlan, parallel_plan
-from .strata_inference import check_strata_inference, stratum_method
-from .table_fit import require_fittable
-from .voxel_fit import elements_of, open_images
+from .strata_inference import stratum_method
+from .voxel_fit import elements_of
 
 #: Rearrangements timed first by the calibration (four times more until it takes CALIBRATION_SECONDS).
 CALIBRATION_REARRANGEMENTS = 10
@@ -89,12 +89,8 @@ def dry_run(spec: ModelSpec | Path | str, mask: Path | str | None = None, memory
         spec = load_spec(spec)
     inference = inference if inference is not None else InferenceOptions.from_spec(spec)
     budget = MemoryBudget(memory_bytes)
-    model = build(spec)
-    require_fittable(model)
-    model, source, dropped = open_images(model, drop_missing)
-    require_fittable(model)
-    if model.strata is not None:
-        check_strata_inference(model, inference)
+    opened = opened_model(spec, inference, drop_missing, None)  # the fit's own checks, Welch's included
+    model, source, dropped = opened.model, opened.source, opened.dropped
     start = time.perf_counter()
     in_mask = _read_all(source, mask if mask is not None else spec.mask)
     reading = time.perf_counter() - start

@@ -17,6 +17,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from groupmodel.analysis.dry_run import dry_run
 from groupmodel.errors import InputError
 from groupmodel.fit import fit_images, write_voxel_fit
 from groupmodel.inference.rearrangements import permutation_set
@@ -196,6 +197,9 @@ def test_tfce_is_refused_with_variance_groups(tmp_path: Path) -> None:
     spec, _, _ = _study(tmp_path, HYPOTHESES)
     with pytest.raises(InputError, match="inference tfce: not available with variance_groups"):
         fit_images(spec, progress=False, inference=InferenceOptions(permutations=50, tfce=True))
+    # the dry run runs the fit's checks: the same refusal, before any image is read
+    with pytest.raises(InputError, match="inference tfce: not available with variance_groups"):
+        dry_run(spec, inference=InferenceOptions(permutations=50, tfce=True))
 
 
 def test_pooled_voxel_fit_warns_with_levene(tmp_path: Path) -> None:

@@ -14,7 +14,15 @@ from functools import partial
 
 import numpy as np
 
-from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, VOXEL_SHARE_WARN, screen, unequal
+from ..engine.variance_check import (
+    LEVENE_ALPHA,
+    VARIANCE_RATIO_WARN,
+    VOXEL_SHARE_WARN,
+    count_unequal,
+    screen,
+    unequal,
+    widespread,
+)
 from ..engine.welch import GROUP_DF_MIN, group_residual_df
 from ..model.assembly import Model
 from ..text import number_text
@@ -40,11 +48,7 @@ class _Factor:
 
 def chunk_counts(factors: tuple[_Factor, ...], resid: np.ndarray) -> dict[str, tuple[int, int]]:
     """Factor -> (voxels whose groups' variances differ, voxels tested) in one chunk's OLS residuals (n, v)."""
-    out = {}
-    for f in factors:
-        variances, p, checked = screen(resid, f.labels, f.rho)
-        out[f.name] = (int(np.count_nonzero(unequal(variances, p))), int(np.count_nonzero(checked)))
-    return out
+    return {f.name: count_unequal(resid, f.labels, f.rho) for f in factors}
 
 
 @dataclass
@@ -121,7 +125,7 @@ class UnequalVarianceTally:
         out = []
         for f in self._factors:
             hit, total = self.flagged.get(f.name, 0), self.tested.get(f.name, 0)
-            if total and hit > VOXEL_SHARE_WARN * total:
+            if widespread(hit, total):
                 out.append(
                     f"in {hit} of {total} {elements} ({number_text(100 * hit / total)}%) the residual variances "
                     f"of the groups of {f.name!r} differ by more than a factor of {number_text(VARIANCE_RATIO_WARN)} "

@@ -5,7 +5,8 @@ are read as a fit reads them (:func:`groupmodel.images.loading.load_masked`: vox
 not zero in all), fitted with the hand-written design, and for every identified factor the voxels are counted
 where the rule of :mod:`groupmodel.engine.variance_check` holds (group variance ratio above
 ``VARIANCE_RATIO_WARN`` and Levene's test, ``scipy.stats.levene`` centred on medians, below ``LEVENE_ALPHA``),
-as a voxelwise fit counts them.  More than ``VOXEL_SHARE_WARN`` of the voxels: a warning suggesting
+as a voxelwise fit counts them (:func:`~groupmodel.engine.variance_check.count_unequal`).  More than
+``VOXEL_SHARE_WARN`` of the voxels: a warning suggesting
 ``variance_groups`` (Welch's v and G).
 """
 
@@ -15,14 +16,14 @@ from pathlib import Path
 
 import numpy as np
 
-from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, VOXEL_SHARE_WARN, screen, unequal
+from ..engine.variance_check import LEVENE_ALPHA, VARIANCE_RATIO_WARN, count_unequal, widespread
 from ..errors import InputError
 from ..images.loading import load_masked
 from ..images.sources import ImageRef, ImageSource
 from ..runtime.progress import progress_bar
 from ..text import number_text
 from .context import AuditContext
-from .read import AuditFinding, participant_in_path, read_image_list
+from .read import AuditFinding, listed_file, participant_in_path, read_image_list
 from .variances import FactorGroups, checkable_groups, column_space
 
 __all__ = ["CHECK_MEMORY", "image_variance_findings"]
@@ -47,8 +48,8 @@ def _listed_paths(ctx: AuditContext, claimed: np.ndarray) -> list[Path] | None:
         pid = participant_in_path(text)
         if pid is not None and pid != ids[row]:
             return None
-        found = Path(text) if Path(text).exists() else path.parent / text
-        if not found.exists():
+        found = listed_file(path, text)
+        if found is None:
             return None
         out.append(found)
     return out
@@ -62,15 +63,16 @@ def _counts(y: np.ndarray, u: np.ndarray, groups: list[FactorGroups]) -> dict[st
         block = np.asarray(y[:, s : s + _CHUNK], dtype=np.float64)
         resid = block - u @ (u.T @ block)
         for g in groups:
-            variances, p, checked = screen(resid, g.labels, g.rho)
-            hit[g.factor] += int(np.count_nonzero(unequal(variances, p)))
-            tested[g.factor] += int(np.count_nonzero(checked))
+            h, t = count_unequal(resid, g.labels, g.rho)
+            hit[g.factor] += h
+            tested[g.factor] += t
     return {f: (hit[f], tested[f]) for f in hit}
 
 
 def image_variance_findings(ctx: AuditContext) -> list[AuditFinding]:
     """A warning for each identified factor whose groups' residual variances differ in more than
-    ``VOXEL_SHARE_WARN`` of the voxels of the listed images; a note when the images cannot be read."""
+    ``VOXEL_SHARE_WARN`` of the voxels of the listed images (:func:`~groupmodel.engine.variance_check.widespread`);
+    a note when the images cannot be read."""
     images, alignment = ctx.request.images, ctx.alignment
     if images is None or ctx.columns is None or alignment is None or alignment.claimed is None:
         return []
@@ -78,9 +80,11 @@ def image_variance_findings(ctx: AuditContext) -> list[AuditFinding]:
     if np.any(claimed < 0):
         return []
     paths = _listed_paths(ctx, claimed)
+    if paths is None:
+        return []
     u = column_space(ctx)
     groups = checkable_groups(ctx, u, claimed)
-    if paths is None or not groups:
+    if not groups:
         return []
     ids = alignment.table.ids
     source = ImageSource(tuple(ImageRef(i, ids[t], p) for i, (p, t) in enumerate(zip(paths, claimed, strict=True))),
@@ -98,7 +102,7 @@ def image_variance_findings(ctx: AuditContext) -> list[AuditFinding]:
         bar.close()
     out = []
     for factor, (hit, total) in counts.items():
-        if total and hit > VOXEL_SHARE_WARN * total:
+        if widespread(hit, total):
             out.append(AuditFinding(
                 "warning", "unequal_variances_images",
                 f"{images.name} (fitted with this design): in {hit} of {total} {elements} "

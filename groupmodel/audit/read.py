@@ -334,6 +334,15 @@ def read_image_list(path: Path) -> list[tuple[int, str]]:
     return out
 
 
+def listed_file(list_path: Path, entry: str) -> Path | None:
+    """An image-list entry as an existing file: relative to the current folder, else to the list's folder; None
+    when neither exists."""
+    for candidate in (Path(entry), list_path.parent / entry):
+        if candidate.exists():
+            return candidate
+    return None
+
+
 _SUBJECT = re.compile(r"sub-([A-Za-z0-9]+)")
 
 

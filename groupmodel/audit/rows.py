@@ -8,12 +8,10 @@ paths.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 
 from .context import AuditContext
-from .read import AuditFinding, listing, participant_in_path, read_image_list
+from .read import AuditFinding, listed_file, listing, participant_in_path, read_image_list
 
 
 def _rows(severity: str, code: str, message: str) -> AuditFinding:
@@ -110,8 +108,7 @@ def image_findings(ctx: AuditContext) -> list[AuditFinding]:
         out.append(_rows("error", "image_order",
                          f"{name} does not follow the design rows (the same participants in another order): "
                          f"{listing(wrong)}; list the images in design-row order"))
-    base = path.parent
-    missing = [f"line {ln}" for ln, p in entries if not (Path(p).exists() or (base / p).exists())]
+    missing = [f"line {ln}" for ln, p in entries if listed_file(path, p) is None]
     if missing:
         out.append(_rows("note", "image_missing",
                          f"{name}: {len(missing)} listed image(s) do not exist (relative to the current folder or to "

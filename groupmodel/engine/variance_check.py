@@ -11,7 +11,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "VOXEL_SHARE_WARN", "group_variances", "screen", "unequal"]
+__all__ = ["LEVENE_ALPHA", "VARIANCE_RATIO_WARN", "VOXEL_SHARE_WARN", "count_unequal", "group_variances", "screen",
+           "unequal", "widespread"]
 
 #: Largest over smallest residual variance of a factor's groups above which a fit warns (with Levene's p).
 VARIANCE_RATIO_WARN = 2.0
@@ -52,6 +53,19 @@ def screen(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> tuple[np.n
     if np.any(wanted):
         p[wanted] = _levene_p(resid[:, wanted], labels, rho.size)
     return variances, p, checked
+
+
+def count_unequal(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> tuple[int, int]:
+    """(voxels whose groups' variances differ, voxels checked) in residuals (n, v): :func:`screen` and
+    :func:`unequal`, counted (added over chunks, then judged by :func:`widespread`)."""
+    variances, p, checked = screen(resid, labels, rho)
+    return int(np.count_nonzero(unequal(variances, p))), int(np.count_nonzero(checked))
+
+
+def widespread(hit: int, tested: int) -> bool:
+    """Whether voxels whose groups' variances differ are more than :data:`VOXEL_SHARE_WARN` of those tested (the
+    voxelwise warning)."""
+    return tested > 0 and hit > VOXEL_SHARE_WARN * tested
 
 
 def _variances(resid: np.ndarray, labels: np.ndarray, rho: np.ndarray) -> np.ndarray:

@@ -105,7 +105,7 @@ def main() -> None:
             ex = open_scheduler(f"local:{workers}")
             try:
                 ex.client.wait_for_workers(workers)
-                t_mask, found = _timed(lambda ex=ex: cluster_mask(ex.client, source, str(mask_path)))
+                t_mask, found = _timed(lambda ex=ex: cluster_mask(ex, source, str(mask_path)))
                 print(f"{workers} worker(s): the mask found by the workers (cluster_mask, no matrix on the client) in "
                       f"{t_mask:.1f} s; the same mask as load_masked: {np.array_equal(found.mask, data.mask)}")
                 for _ in range(args.repeats):  # local and cluster alternating: the load changes under us

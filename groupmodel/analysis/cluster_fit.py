@@ -19,13 +19,13 @@ from typing import Any
 import numpy as np
 
 from ..errors import ImageError, InputError
-from ..images.columns import ColumnReader, first_unreadable
+from ..images.columns import ColumnReader, first_unreadable, image_paths
 from ..images.mask_scan import ScanPart, masked_columns, scan_part
 from ..inference.distributed import cached_columns, home_worker
 from ..runtime.cluster import CONNECT_TIMEOUT, DaskExecutor, dask_executor
 from .chunk_fit import ChunkFit, ChunkParts
 
-__all__ = ["ClusterSession", "cluster_mask", "cluster_session", "fitted_chunks"]
+__all__ = ["ClusterSession", "cluster_mask", "cluster_ready", "cluster_session", "fitted_chunks"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -46,16 +46,23 @@ class ClusterSession:
 SCAN_GROUPS_PER_THREAD = 4
 
 
-def _ready(client: Any, source: Any) -> DaskExecutor:
-    """The executor on ``client`` once a worker has joined and every worker can read every image."""
+def cluster_ready(client: Any, source: Any) -> DaskExecutor:
+    """The executor of a fit on ``client``, once a worker has joined and every worker can read every image.
+
+    Raises
+    ------
+    InputError
+        No worker joined the scheduler within :data:`CONNECT_TIMEOUT` seconds.
+    ImageError
+        A worker cannot read an image (the first such path is named).
+    """
     executor = dask_executor(client)
     try:
         executor.client.wait_for_workers(1, timeout=CONNECT_TIMEOUT)
     except (TimeoutError, OSError):
         raise InputError(f"the Dask scheduler has no workers after {CONNECT_TIMEOUT:g} s; start workers "
                          "(dask worker <scheduler address>, or a batch job of them) and run again") from None
-    paths = list(dict.fromkeys(str(r.path) for r in source.refs if r.path is not None))
-    missing = executor.on_every_worker(first_unreadable, paths)
+    missing = executor.on_every_worker(first_unreadable, image_paths(source))
     for worker, path in sorted(missing.items()):
         if path is not None:
             raise ImageError(f"Dask worker {worker}: cannot read image {path} (from {source.origin}); the workers "
@@ -64,21 +71,18 @@ def _ready(client: Any, source: Any) -> DaskExecutor:
     return executor
 
 
-def cluster_mask(client: Any, source: Any, mask: Any, mask_label: str = "mask",
+def cluster_mask(executor: DaskExecutor, source: Any, mask: Any, mask_label: str = "mask",
                  progress: Callable[[int, int], None] | None = None) -> Any:
-    """The analysis mask found by the workers, each scanning groups of the images (one image at a time), and a
-    :class:`~groupmodel.images.MaskedData` whose columns are read from the files when asked for
-    (:func:`groupmodel.images.mask_scan.masked_columns`): the same mask, exclusions and warnings as reading the
-    images here.  ``progress(done, total)`` counts images.
+    """The analysis mask found by the workers of ``executor`` (:func:`cluster_ready`), each scanning groups of the
+    images (one image at a time), and a :class:`~groupmodel.images.MaskedData` whose columns are read from the
+    files when asked for (:func:`groupmodel.images.mask_scan.masked_columns`): the same mask, exclusions and
+    warnings as reading the images here.  ``progress(done, total)`` counts images.
 
     Raises
     ------
-    InputError
-        No worker joined the scheduler within :data:`CONNECT_TIMEOUT` seconds.
     ImageError
-        A worker cannot read an image, or an image has no finite value.
+        An image has no finite value (or cannot be read after all).
     """
-    executor = _ready(client, source)
 
     def run(groups: list[tuple[int, ...]], cand: Any) -> Iterator[ScanPart]:
         source_f, cand_f = executor.put(source), executor.put(cand)
@@ -97,18 +101,10 @@ def cluster_mask(client: Any, source: Any, mask: Any, mask_label: str = "mask",
     return masked_columns(source, mask, mask_label, run, groups=SCAN_GROUPS_PER_THREAD * executor.workers)
 
 
-def cluster_session(client: Any, source: Any, data: Any, cache_bytes: int) -> ClusterSession:
-    """The session of one fit: waits for a worker, checks that every worker can read every image.
-    ``cache_bytes``: what each worker may keep of the data it read, for later tasks.
-
-    Raises
-    ------
-    InputError
-        No worker joined the scheduler within :data:`CONNECT_TIMEOUT` seconds.
-    ImageError
-        A worker cannot read an image (the first such path is named).
-    """
-    return ClusterSession(_ready(client, source), ColumnReader.of(source, data), int(cache_bytes))
+def cluster_session(executor: DaskExecutor, source: Any, data: Any, cache_bytes: int) -> ClusterSession:
+    """The session of one fit on the workers of ``executor`` (:func:`cluster_ready`), reading the columns of
+    ``data``'s mask; ``cache_bytes``: what each worker may keep of the data it read, for later tasks."""
+    return ClusterSession(executor, ColumnReader.of(source, data), int(cache_bytes))
 
 
 def _fit_task(reader: ColumnReader, work: ChunkFit, s: int, e: int, cache_bytes: int) -> tuple[int, int, ChunkParts]:

@@ -200,16 +200,21 @@ def fit_images(
     log = log if log is not None else StageLog(quiet=True)
     plan = parallel_plan(inference, budget)
     log.info(plan.cores.describe())
-    with log.stage("reading images" if client is None else "finding the mask on the cluster"):
-        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log, client)
+    executor = None
+    if client is not None:  # a worker has joined and every worker can read every image, before any reading
+        from .cluster_fit import cluster_ready
+
+        executor = cluster_ready(client, source)
+    with log.stage("reading images" if executor is None else "finding the mask on the cluster"):
+        data = _load(source, mask if mask is not None else spec.mask, budget, progress, log, executor)
     try:
         n_vox = data.n_in_mask
         chunk_voxels = chunk_voxels if chunk_voxels is not None else _default_chunk(model, budget, n_vox)
         session = None
-        if client is not None:
+        if executor is not None:
             from .cluster_fit import cluster_session
 
-            session = cluster_session(client, source, data, budget.permutation_bytes)
+            session = cluster_session(executor, source, data, budget.permutation_bytes)
         tally = UnequalVarianceTally(model, prepared.u, prepared.centred) if prepared is not None else None
         with log.stage("fitting"):
             fitted = _fitted(opened, data, chunk_voxels, progress, inference.ci_level,
@@ -307,13 +312,13 @@ def _fitted(opened: Opened, data: Any, chunk_voxels: int, progress: bool, ci_lev
 
 
 def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: bool,
-          log: StageLog | None = None, client: Any = None) -> Any:
+          log: StageLog | None = None, executor: Any = None) -> Any:
     """The masked image data; reading (decompressing) is usually the longest step: it gets its own bar (and
-    progress lines for logs).  With a Dask ``client`` the workers find the mask and the columns stay in the
-    files (:func:`~.cluster_fit.cluster_mask`)."""
+    progress lines for logs).  With the ``executor`` of a Dask cluster the workers find the mask and the columns
+    stay in the files (:func:`~.cluster_fit.cluster_mask`)."""
     from ..images import load_masked
 
-    what = "reading images" if client is None else "scanning images on the cluster"
+    what = "reading images" if executor is None else "scanning images on the cluster"
     bar = progress_bar(len(source), what, unit="image", enabled=progress)
 
     def report(done: int, total: int) -> None:
@@ -322,10 +327,10 @@ def _load(source: Any, mask: Path | str | None, budget: MemoryBudget, progress: 
             log.progress(what, done, total, "images")
 
     try:
-        if client is not None:
+        if executor is not None:
             from .cluster_fit import cluster_mask
 
-            return cluster_mask(client, source, mask, progress=report if bar.shown or log else None)
+            return cluster_mask(executor, source, mask, progress=report if bar.shown or log else None)
         return load_masked(source, mask, budget.data_bytes, progress=report if bar.shown or log else None)
     finally:
         bar.close()

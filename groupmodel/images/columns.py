@@ -17,7 +17,7 @@ from .masked import MaskedData
 from .reading import _iter_arrays
 from .sources import ImageSource
 
-__all__ = ["ColumnReader", "first_unreadable"]
+__all__ = ["ColumnReader", "first_unreadable", "image_paths"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -62,7 +62,7 @@ class ColumnReader:
     @property
     def paths(self) -> list[str]:
         """Every image file, once each, in observation order."""
-        return list(dict.fromkeys(str(r.path) for r in self.source.refs if r.path is not None))
+        return image_paths(self.source)
 
     def __getitem__(self, key: tuple[slice, slice]) -> np.ndarray:
         """``reader[:, a:b]``: columns ``a:b`` of every row, read as :meth:`read` does (so that the reader may stand
@@ -81,6 +81,11 @@ class ColumnReader:
             with np.errstate(over="ignore", invalid="ignore"):  # as load_masked: float64 beyond float32 is inf
                 out[rows] = arr.reshape(-1)[where].astype(self.dtype, copy=False)
         return out
+
+
+def image_paths(source: ImageSource) -> list[str]:
+    """Every image file of ``source``, once each, in observation order."""
+    return list(dict.fromkeys(str(r.path) for r in source.refs if r.path is not None))
 
 
 def first_unreadable(paths: list[str]) -> str | None:

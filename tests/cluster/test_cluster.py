@@ -25,7 +25,7 @@ distributed = pytest.importorskip("distributed", reason='Dask is an optional ext
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "unit"))
 from test_fit_voxelwise import make_study  # noqa: E402
 
-from groupmodel.analysis.cluster_fit import cluster_session  # noqa: E402
+from groupmodel.analysis.cluster_fit import cluster_ready  # noqa: E402
 from groupmodel.analysis.corrections import InferenceOptions  # noqa: E402
 from groupmodel.analysis.voxel_fit import open_images  # noqa: E402
 from groupmodel.cli import main  # noqa: E402
@@ -180,11 +180,10 @@ def test_a_worker_without_the_images_is_exit_2_naming_the_first_missing_path(cli
     copy = tmp_path / "study"
     shutil.copytree(study.parent, copy)
     model, source, _ = open_images(build(load_spec(copy / "model.json")))
-    with load_masked(source, None, 10**8) as data:
-        gone = source.refs[3].path
-        gone.unlink()  # the client read it; the workers now cannot
-        with pytest.raises(ImageError) as caught:
-            cluster_session(client, source, data, 10**7)
+    gone = source.refs[3].path
+    gone.unlink()  # checked here by open_images; the workers now cannot read it
+    with pytest.raises(ImageError) as caught:
+        cluster_ready(client, source)  # what a fit asks before any image is read
     assert str(gone) in str(caught.value) and caught.value.exit_code == 2
 
 

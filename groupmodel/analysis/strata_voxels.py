@@ -52,7 +52,7 @@ def strata_degrees(model: Model) -> dict[str, tuple[int, int]]:
     return out
 
 
-def _average_map(model: Model) -> tuple[np.ndarray, np.ndarray]:
+def _complete_cells(model: Model) -> tuple[np.ndarray, np.ndarray]:
     """The observations of each complete participant by within cell, (n_complete, k), and their between design
     (each participant's average over the within cells is the mean of its row's observations)."""
     strata = model.strata
@@ -63,7 +63,7 @@ def _average_map(model: Model) -> tuple[np.ndarray, np.ndarray]:
 
 def average_df(model: Model) -> int:
     """Residual df of the participant averages (the residual variance map of a model with strata)."""
-    _, x = _average_map(model)
+    _, x = _complete_cells(model)
     return int(x.shape[0] - matrix_rank(x))
 
 
@@ -79,7 +79,7 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
     maps = {n: {k: np.empty(n_vox) for k in stratum_map_names(t, hyps[n])} for n, t in tests.items()}
     mean_input = np.empty(n_vox)
     designs = {n: strata.design_of(n) for n in tests}
-    average, x_avg = _average_map(model)
+    complete_cells, x_avg = _complete_cells(model)
     resid_var = np.empty(n_vox)
     df_avg = x_avg.shape[0] - matrix_rank(x_avg)
     bar = progress_bar(n_vox, "fitting", enabled=progress)
@@ -92,7 +92,7 @@ def strata_pass(model: Model, data: Any, chunk_voxels: int, progress: bool, ci_l
                 for k, values in strata_effect_sizes(hyps[name], t, r, ci_level).items():
                     maps[name][k][cols] = values
             mean_input[cols] = np.mean(y, axis=0, dtype=np.float64)
-            avg = y[average].mean(axis=1)  # each complete participant's average over the within cells
+            avg = y[complete_cells].mean(axis=1)  # each complete participant's average over the within cells
             fitted = x_avg @ np.linalg.lstsq(x_avg, avg, rcond=None)[0]
             resid_var[cols] = ((avg - fitted) ** 2).sum(axis=0) / max(df_avg, 1)
             bar.update(cols.stop - cols.start)

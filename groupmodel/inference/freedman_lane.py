@@ -345,7 +345,8 @@ def residualise(plan: ContrastPlan, chunk: np.ndarray) -> tuple[np.ndarray, np.n
         0 for voxels whose residuals are at rounding level (constant data), which then get a NaN
         statistic.
     """
-    if type(chunk) is not np.ndarray or chunk.dtype != np.float64:
+    copied = type(chunk) is not np.ndarray or chunk.dtype != np.float64
+    if copied:
         chunk = np.array(chunk, dtype=np.float64, order="C", copy=True)  # read once (a file-backed map, say)
     n, v = chunk.shape
     # The largest |value| per voxel without an |chunk| temporary: max(max, -min) is the same number.
@@ -355,7 +356,7 @@ def residualise(plan: ContrastPlan, chunk: np.ndarray) -> tuple[np.ndarray, np.n
         W = plan.nuisance @ (plan.nuisance.T @ chunk)
         np.subtract(chunk, W, out=W)
     else:
-        W = np.array(chunk, dtype=np.float64, order="C", copy=True)
+        W = chunk if copied else np.array(chunk, dtype=np.float64, order="C", copy=True)  # the caller's stays as is
     ss = np.einsum("ij,ij->j", W, W)
     # Residuals at rounding level (e.g. a constant voxel against an intercept) are no data: their
     # statistic would be noise, so they are marked (ss = 0 -> NaN statistic), as in groupmodel.ols.

@@ -13,7 +13,7 @@ products ``L (x) C``):
 * one ``c`` that is neither (e.g. the mean at one session): **mixed**, on each participant's weighted sum ``c``.
 
 In every stratum the transformed data of each participant (a linear map of that participant's observations,
-:meth:`Strata.transform_matrix`) are fitted with the between-participant design, and the hypothesis is the
+:meth:`Strata.transformed`) are fitted with the between-participant design, and the hypothesis is the
 between weights ``l`` mapped through that design's cell rows.  A participant without an observation in a
 within cell the hypothesis needs is left out of it (with the reason) and kept for the others.
 """
@@ -122,28 +122,14 @@ class Strata:
     def cell_label(self, cell: Cell) -> str:
         return ", ".join(f"{f}={lv}" for f, lv in zip(self.within_factors, cell, strict=True))
 
-    def transform_matrix(self, name: str) -> np.ndarray:
-        """The linear map from all observations (design rows) to a hypothesis's transformed data, shape
-        (n_entered * c, n_observations), participant-major: row ``i * c + j`` is entered participant ``i``'s
-        ``j``-th transformed value."""
-        t = self.tests[name]
-        k, c = t.within_weights.shape
-        out = np.zeros((len(t.entered) * c, int(self.observation_index.max()) + 1))
-        for i, p in enumerate(t.entered):
-            for w in range(k):
-                obs = self.observation_index[p, w]
-                if obs >= 0:
-                    out[i * c:(i + 1) * c, obs] += t.within_weights[w]
-        return out
-
     def transformed(self, name: str, values: np.ndarray) -> np.ndarray:
         """A hypothesis's transformed data from values over the observations (n_obs, v): (n_entered, c, v).
 
-        The same numbers as ``transform_matrix(name) @ values`` (to rounding), without that matrix: each entered
-        participant's observations are gathered by within cell, (k, n_entered, v), and the (c, k) within weights
-        applied to them in one product, so the work grows with the observations, not with their square (a
-        dense transform of 1,000 participants x 4 sessions is 3,000 x 4,000 and costs 12 million multiply-adds
-        per voxel)."""
+        Row ``i * c + j`` of the result's (n_entered * c, v) reshaping is entered participant ``i``'s ``j``-th
+        transformed value: the within weights' column ``j`` over that participant's observations.  They are
+        gathered by within cell, (k, n_entered, v), and the (c, k) within weights applied in one product, so the
+        work grows with the observations, not with their square as a dense (n_entered * c, n_obs) transform's
+        would (1,000 participants x 4 sessions: 12 million multiply-adds per voxel)."""
         t = self.tests[name]
         k, c = t.within_weights.shape
         index = self.observation_index[t.entered].T  # (k, n_entered); -1: no observation (its weight unused)
